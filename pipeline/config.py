@@ -1,0 +1,267 @@
+"""The configuration schema: defaults, validation and ``--set key=value`` overrides.
+
+A configuration is YAML (loaded with ``yaml.safe_load``: nothing in it is executed), validated by
+pydantic models that refuse unknown keys, wrong types and out-of-range values with a one-line message
+naming the key, the value and what is allowed.
+"""
+
+from __future__ import annotations
+
+import copy
+from pathlib import Path
+from typing import Any, Literal, Optional, Union
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from .errors import ConfigError
+
+__all__ = ["Config", "load_config", "apply_overrides", "config_from_dict"]
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+
+
+class ColumnSpec(_Section):
+    """Per-column overrides: type, discretisation, fixed bin edges, unit for labels."""
+
+    type: Optional[Literal["numeric", "categorical", "boolean", "timestamp", "ignore"]] = None
+    discretise: Optional[Literal["categorical", "quantile", "uniform", "fixed"]] = None
+    bins: Optional[int] = Field(default=None, ge=2, le=64)
+    edges: Optional[list[float]] = None
+    unit: Optional[str] = None
+    rename: Optional[str] = None
+
+
+class InputSettings(_Section):
+    """How the extract is read (ingest stage)."""
+
+    format: Literal["auto", "csv", "parquet", "jsonl"] = "auto"
+    delimiter: Optional[str] = None  # None: detected from the first lines
+    quote_char: str = '"'
+    encoding: str = "utf-8"
+    header: bool = True
+    columns: Optional[list[str]] = None  # None: every column
+    rename: dict[str, str] = Field(default_factory=dict)
+    null_values: list[str] = Field(
+        default_factory=lambda: ["", "NA", "N/A", "NaN", "nan", "null", "NULL", "None", "-"]
+    )
+
+
+class CleanSettings(_Section):
+    """Which columns and rows the tests may see (clean stage)."""
+
+    drop_constant: bool = True
+    id_unique_ratio: float = Field(default=0.95, gt=0.0, le=1.0)
+    max_missing_fraction: float = Field(default=0.5, ge=0.0, le=1.0)
+    rare_level_min_count: int = Field(default=0, ge=0)
+    duplicates: Literal["keep", "drop"] = "keep"
+    text_in_numeric: Literal["quarantine", "refuse", "categorical"] = "quarantine"
+    min_rows: int = Field(default=20, ge=1)
+    timestamp_features: bool = False
+
+
+class DiscretiseSettings(_Section):
+    """How each kept column becomes small integer codes (discretise stage)."""
+
+    default: Literal["auto", "categorical", "quantile", "uniform"] = "auto"
+    bins: int = Field(default=4, ge=2, le=64)
+    max_categorical_levels: int = Field(default=12, ge=2)
+    reuse_from: Optional[str] = None  # a run folder whose bin edges and levels are reused
+
+
+class TestSettings(_Section):
+    """The conditional-independence test used by every battery."""
+
+    method: Literal["g", "chi2", "permutation"] = "g"
+    alpha: float = Field(default=0.05, gt=0.0, lt=1.0)
+    sparse_policy: Literal["flag", "independent", "dependent"] = "flag"
+    min_rows_per_cell: float = Field(default=5.0, ge=0.0)
+    missing: Literal["drop", "level"] = "drop"
+    permutations: int = Field(default=999, ge=19, le=1_000_000)
+    permutation_stop_hits: int = Field(default=20, ge=0)  # 0: no early stopping
+    permutation_batch: int = Field(default=100, ge=1)
+    permutation_score: Literal["g", "cmi"] = "g"
+    seed: int = Field(default=0, ge=0)
+
+
+class SearchSettings(_Section):
+    """The skeleton search (PC-stable) and optional orientation."""
+
+    max_order: Optional[int] = Field(default=None, ge=0)
+    orient: bool = False
+    collider_rule: Literal["plain", "conservative", "majority"] = "conservative"
+    resamples: int = Field(default=0, ge=0)
+    resample_fraction: float = Field(default=0.5, gt=0.0, le=1.0)
+    resample_method: Literal["subsample", "bootstrap"] = "subsample"
+    stable_threshold: float = Field(default=0.6, gt=0.0, le=1.0)
+    near_alpha_factor: float = Field(default=2.0, gt=1.0)
+
+    @field_validator("max_order", mode="before")
+    @classmethod
+    def _none_words(cls, value: Any) -> Any:
+        if isinstance(value, str) and value.strip().lower() in {"none", "null", "unlimited", ""}:
+            return None
+        return value
+
+
+class KnowledgeSettings(_Section):
+    """Background knowledge from the experts."""
+
+    required: list[tuple[str, str]] = Field(default_factory=list)
+    forbidden: list[tuple[str, str]] = Field(default_factory=list)
+    tiers: list[list[str]] = Field(default_factory=list)
+    review_file: Optional[str] = None
+
+
+class ParallelSettings(_Section):
+    """Where and how wide the batteries run."""
+
+    jobs: int = Field(default=1, ge=-1)
+    backend: Literal["local", "dask"] = "local"
+    scheduler: Optional[str] = None
+    partition_rows: int = Field(default=2_000_000, ge=1_000)
+
+
+class LimitSettings(_Section):
+    """Sizes refused with a clear message instead of exhausting the machine."""
+
+    max_columns: int = Field(default=500, ge=2)
+    max_levels: int = Field(default=1_000, ge=2)
+    max_table_cells: int = Field(default=50_000_000, ge=4)
+    max_rows: int = Field(default=500_000_000, ge=1)
+
+
+class OutputSettings(_Section):
+    """Where runs are written."""
+
+    root: Optional[str] = None
+    keep_runs: int = Field(default=30, ge=1)
+    png: bool = True
+
+
+class NightlySettings(_Section):
+    """Unattended runs over an inbox of snapshots."""
+
+    inbox: Optional[str] = None
+    settle_seconds: float = Field(default=60.0, ge=0.0)
+    ready_marker: Optional[str] = None  # e.g. "_SUCCESS": only folders holding it are picked up
+    max_attempts: int = Field(default=3, ge=1)
+    lock_wait_seconds: float = Field(default=0.0, ge=0.0)
+
+
+class CompareSettings(_Section):
+    """How two runs are compared."""
+
+    category_mismatch: Literal["warn", "refuse"] = "warn"
+
+
+class Config(_Section):
+    """The whole configuration; every key has a default that serves a typical extract."""
+
+    input: InputSettings = Field(default_factory=InputSettings)
+    columns: dict[str, ColumnSpec] = Field(default_factory=dict)
+    clean: CleanSettings = Field(default_factory=CleanSettings)
+    discretise: DiscretiseSettings = Field(default_factory=DiscretiseSettings)
+    test: TestSettings = Field(default_factory=TestSettings)
+    search: SearchSettings = Field(default_factory=SearchSettings)
+    knowledge: KnowledgeSettings = Field(default_factory=KnowledgeSettings)
+    parallel: ParallelSettings = Field(default_factory=ParallelSettings)
+    limits: LimitSettings = Field(default_factory=LimitSettings)
+    output: OutputSettings = Field(default_factory=OutputSettings)
+    nightly: NightlySettings = Field(default_factory=NightlySettings)
+    compare: CompareSettings = Field(default_factory=CompareSettings)
+    name: Optional[str] = None  # names the configuration's output folder; default: the file's stem
+
+    def section(self, name: str) -> dict[str, Any]:
+        """The plain-data slice of one section, for cache keys and the manifest."""
+        return getattr(self, name).model_dump(mode="json") if name != "columns" else {
+            k: v.model_dump(mode="json") for k, v in self.columns.items()
+        }
+
+
+def _describe(err: ValidationError, data: dict[str, Any]) -> str:
+    first = err.errors()[0]
+    key = ".".join(str(p) for p in first["loc"])
+    value: Any = data
+    for part in first["loc"]:
+        value = value.get(part, "?") if isinstance(value, dict) else "?"
+    if first["type"] == "extra_forbidden":
+        parent = first["loc"][:-1]
+        model: Any = Config
+        for part in parent:
+            field = model.model_fields.get(str(part)) if hasattr(model, "model_fields") else None
+            model = field.annotation if field is not None else None
+        allowed = sorted(model.model_fields) if hasattr(model, "model_fields") else []
+        hint = f"; allowed keys here: {', '.join(allowed)}" if allowed else ""
+        return f"Unknown configuration key `{key}`{hint}."
+    return f"Configuration key `{key}` = {value!r} is not allowed: {first['msg']}."
+
+
+def config_from_dict(data: dict[str, Any] | None) -> Config:
+    """Validate a plain dictionary into a `Config`, raising `ConfigError` with one clear line."""
+    data = data or {}
+    if not isinstance(data, dict):
+        raise ConfigError(f"The configuration must be a mapping of sections, got {type(data).__name__}.")
+    try:
+        return Config.model_validate(data)
+    except ValidationError as err:
+        raise ConfigError(_describe(err, data)) from err
+
+
+def _parse_value(text: str) -> Any:
+    try:
+        return yaml.safe_load(text)
+    except yaml.YAMLError:
+        return text
+
+
+def apply_overrides(data: dict[str, Any], overrides: list[str]) -> dict[str, Any]:
+    """Return a copy of `data` with ``key.sub=value`` overrides applied (values parsed as YAML)."""
+    out = copy.deepcopy(data or {})
+    for item in overrides:
+        if "=" not in item:
+            raise ConfigError(f"`--set {item}` has no `=`; write it as `--set section.key=value`.")
+        key, raw = item.split("=", 1)
+        parts = [p for p in key.strip().split(".") if p]
+        if not parts:
+            raise ConfigError(f"`--set {item}` names no key; write it as `--set section.key=value`.")
+        node = out
+        for part in parts[:-1]:
+            child = node.get(part)
+            if child is None:
+                child = node[part] = {}
+            if not isinstance(child, dict):
+                raise ConfigError(f"`--set {item}`: `{part}` is a value, not a section.")
+            node = child
+        node[parts[-1]] = _parse_value(raw)
+    return out
+
+
+def load_config(path: Union[str, Path, None] = None, overrides: Optional[list[str]] = None) -> Config:
+    """Read a YAML configuration (or the defaults when `path` is None) and apply overrides.
+
+    Examples
+    --------
+    >>> cfg = load_config(None, ["test.alpha=0.01", "search.max_order=none"])
+    >>> cfg.test.alpha, cfg.search.max_order
+    (0.01, None)
+    """
+    data: dict[str, Any] = {}
+    if path is not None:
+        p = Path(path)
+        if not p.is_file():
+            raise ConfigError(f"Configuration file `{p}` does not exist; check the path given to --config.")
+        try:
+            data = yaml.safe_load(p.read_text(encoding="utf-8")) or {}
+        except (yaml.YAMLError, UnicodeDecodeError) as err:
+            line = getattr(getattr(err, "problem_mark", None), "line", None)
+            where = f" at line {line + 1}" if line is not None else ""
+            raise ConfigError(f"Configuration file `{p}` is not valid YAML{where}; fix its syntax.") from err
+        if not isinstance(data, dict):
+            raise ConfigError(f"Configuration file `{p}` must hold a mapping of sections.")
+        if "name" not in data:
+            data["name"] = p.stem
+    data = apply_overrides(data, overrides or [])
+    return config_from_dict(data)

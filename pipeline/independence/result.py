@@ -1,0 +1,53 @@
+"""The one result type every test returns."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from typing import Any
+
+__all__ = ["CITestResult"]
+
+
+@dataclass(frozen=True)
+class CITestResult:
+    """One test of ``x`` independent of ``y`` given ``given``.
+
+    ``pvalue`` is always the raw p-value of the test; ``independent`` is the decision after the
+    data-sufficiency policy (``policy``) was applied, so the two can disagree only when
+    ``policy_applied`` is true.
+    """
+
+    x: str
+    y: str
+    given: tuple[str, ...]
+    statistic: float
+    dof: int
+    pvalue: float
+    n: int
+    method: str
+    cmi_bits: float
+    cramers_v: float
+    sparse: bool
+    degenerate: bool
+    independent: bool
+    policy: str
+    policy_applied: bool
+    permutations: int = 0
+
+    @property
+    def flags(self) -> tuple[str, ...]:
+        """Words that say what is shaky about this test."""
+        out = []
+        if self.sparse:
+            out.append("sparse")
+        if self.degenerate:
+            out.append("degenerate")
+        if self.policy_applied:
+            out.append(f"policy:{self.policy}")
+        return tuple(out)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-data form (the conditioning set as a list)."""
+        d = asdict(self)
+        d["given"] = list(self.given)
+        return d

@@ -1,0 +1,101 @@
+"""The one place that maps tasks to workers: serial, local processes (joblib), or a dask cluster.
+
+Workers are module-level functions over plain data; results come back in task order, so the
+outcome never depends on the number of workers. The large shared array (the coded table) is passed
+as a read-only memory map to local workers and scattered once to a dask cluster's workers.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from dataclasses import dataclass
+from typing import Any, Callable, Iterator, Sequence
+
+import numpy as np
+
+from .errors import ConfigError
+
+__all__ = ["ParallelContext", "parallel_context", "share_array"]
+
+
+def share_array(data: np.ndarray, folder: str | os.PathLike[str] | None = None) -> np.ndarray:
+    """Return `data` as a read-only memory map (saved once to `folder` or a temporary folder)."""
+    if isinstance(data, np.memmap):
+        return data
+    base = os.fspath(folder) if folder is not None else tempfile.mkdtemp(prefix="edgeproof-")
+    path = os.path.join(base, "codes.npy")
+    np.save(path, np.ascontiguousarray(data))
+    return np.load(path, mmap_mode="r")
+
+
+@dataclass
+class ParallelContext:
+    """Runs ``fn(shared, task)`` for every task, in task order."""
+
+    jobs: int
+    backend: str
+    _parallel: Any = None
+    _client: Any = None
+    _shared_future: Any = None
+    _shared: Any = None
+
+    def map(self, fn: Callable[[Any, Any], Any], shared: Any, tasks: Sequence[Any]) -> list[Any]:
+        """Apply `fn` to each task with the shared payload; results in task order."""
+        if not tasks:
+            return []
+        if self._parallel is None and self._client is None:
+            return [fn(shared, t) for t in tasks]
+        if self._client is not None:
+            if self._shared is not shared:
+                self._shared_future = self._client.scatter(shared, broadcast=True)
+                self._shared = shared
+            futures = self._client.map(fn, [self._shared_future] * len(tasks), list(tasks), pure=False)
+            return self._client.gather(futures)
+        from joblib import delayed
+
+        return list(self._parallel(delayed(fn)(shared, t) for t in tasks))
+
+    @property
+    def width(self) -> int:
+        """How many tasks can run at once (for chunking)."""
+        if self._client is not None:
+            info = self._client.scheduler_info()
+            return max(1, sum(w.get("nthreads", 1) for w in info.get("workers", {}).values()))
+        return max(1, self.jobs)
+
+
+@contextlib.contextmanager
+def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | None = None) -> Iterator[ParallelContext]:
+    """Open the workers once for a whole run (a local process pool or a dask client)."""
+    if backend == "dask":
+        if not scheduler:
+            raise ConfigError(
+                "`parallel.backend` = dask needs `parallel.scheduler` = tcp://HOST:PORT of a running scheduler."
+            )
+        try:
+            from distributed import Client
+        except ImportError as err:  # pragma: no cover - depends on the install
+            raise ConfigError(
+                "`parallel.backend` = dask needs dask.distributed: pip install 'edgeproof[cluster]'."
+            ) from err
+        try:
+            client = Client(scheduler, timeout="20s", set_as_default=False)
+        except OSError as err:
+            raise ConfigError(
+                f"Cannot reach the dask scheduler at `{scheduler}`; start it or fix `parallel.scheduler`."
+            ) from err
+        try:
+            yield ParallelContext(jobs=jobs, backend=backend, _client=client)
+        finally:
+            client.close()
+        return
+    n = (os.cpu_count() or 1) if jobs == -1 else jobs
+    if n <= 1:
+        yield ParallelContext(jobs=1, backend="serial")
+        return
+    from joblib import Parallel
+
+    with Parallel(n_jobs=n, backend="loky") as par:
+        yield ParallelContext(jobs=n, backend="local", _parallel=par)

@@ -1,0 +1,223 @@
+"""PC-stable skeleton search (Colombo & Maathuis 2014), level by level, each level a parallel battery.
+
+Order of work, fixed and documented so the result never depends on column order or worker count:
+
+* pairs are unordered and named ``(a, b)`` with ``a < b`` by name;
+* level 0 tests every pair that is not forbidden with the empty conditioning set;
+* at level ``l`` the adjacencies are frozen for the whole level; the candidate conditioning sets of
+  ``(a, b)`` are the size-``l`` subsets of the neighbours of ``a`` (without ``b``), in lexicographic
+  order of the sorted names, then the size-``l`` subsets of the neighbours of ``b`` (without ``a``)
+  not already listed, in the same order;
+* a pair's candidates are tested in that order until the first one that makes it independent: that
+  set is the separating set and the pair is removed when the level ends;
+* the search stops when no pair has a candidate set of the next size, or at ``max_order``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from itertools import combinations
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from ..independence.engine import CIEngine, EngineSettings
+from ..independence.result import CITestResult
+from ..parallel import ParallelContext
+from .knowledge import Knowledge
+
+__all__ = ["TestRecord", "SkeletonResult", "pc_stable_skeleton", "candidate_sets"]
+
+Pair = tuple[str, str]
+
+
+@dataclass(frozen=True)
+class TestRecord:
+    """One test run by the search, with the level it belongs to."""
+
+    level: int
+    result: CITestResult
+
+
+@dataclass(frozen=True)
+class SkeletonResult:
+    """The skeleton and everything needed to explain it."""
+
+    names: tuple[str, ...]
+    edges: frozenset[Pair]
+    separating_sets: dict[Pair, tuple[str, ...]]
+    removed_by: dict[Pair, int]  # pair -> index into `tests` of the test that removed it
+    tests: tuple[TestRecord, ...]
+    levels: int  # number of levels run
+    disagreements: frozenset[Pair] = frozenset()  # required pairs some test called independent
+    forbidden: frozenset[Pair] = frozenset()
+
+    def adjacency(self) -> np.ndarray:
+        """Boolean adjacency matrix in the order of `names`."""
+        idx = {n: i for i, n in enumerate(self.names)}
+        m = np.zeros((len(self.names), len(self.names)), dtype=bool)
+        for a, b in self.edges:
+            m[idx[a], idx[b]] = m[idx[b], idx[a]] = True
+        return m
+
+
+@dataclass
+class SearchState:
+    """What a finished level leaves behind; enough to resume the search at the next level."""
+
+    level: int  # next level to run
+    edges: set[Pair]
+    separating_sets: dict[Pair, tuple[str, ...]] = field(default_factory=dict)
+    removed_by: dict[Pair, int] = field(default_factory=dict)
+    tests: list[TestRecord] = field(default_factory=list)
+    disagreements: set[Pair] = field(default_factory=set)
+
+
+def _pair(a: str, b: str) -> Pair:
+    return (a, b) if a <= b else (b, a)
+
+
+def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) -> list[tuple[str, ...]]:
+    """Candidate conditioning sets of the pair at a level, in the documented order."""
+    if level == 0:
+        return [()]
+    out: list[tuple[str, ...]] = []
+    seen: set[tuple[str, ...]] = set()
+    for side, other in ((a, b), (b, a)):
+        pool = sorted(neighbours[side] - {other})
+        for s in combinations(pool, level):
+            if s not in seen:
+                seen.add(s)
+                out.append(s)
+    return out
+
+
+def _battery_worker(shared: tuple[Any, ...], chunk: list[tuple[str, str, list[tuple[str, ...]]]]):
+    """Test each pair of a chunk along its candidate sets until the first independence."""
+    data, names, cards, settings = shared
+    engine = CIEngine(data, names, cards, settings)
+    out = []
+    for a, b, cands in chunk:
+        results = []
+        for s in cands:
+            r = engine.test(a, b, s)
+            results.append(r)
+            if r.independent:
+                break
+        out.append(results)
+    return out
+
+
+def _chunks(items: list[Any], weights: list[int], n_chunks: int) -> list[list[Any]]:
+    """Split items (kept in order) into about `n_chunks` runs of similar total weight."""
+    if n_chunks <= 1 or len(items) <= 1:
+        return [items]
+    total = sum(weights) or 1
+    target = total / n_chunks
+    chunks: list[list[Any]] = [[]]
+    acc = 0.0
+    for item, w in zip(items, weights):
+        if acc >= target and chunks[-1]:
+            chunks.append([])
+            acc = 0.0
+        chunks[-1].append(item)
+        acc += w
+    return chunks
+
+
+def pc_stable_skeleton(
+    data: np.ndarray,
+    names: Sequence[str],
+    cards: Sequence[int],
+    settings: EngineSettings,
+    *,
+    max_order: int | None = None,
+    knowledge: Knowledge | None = None,
+    context: ParallelContext | None = None,
+    resume: SearchState | None = None,
+    on_level: Callable[[SearchState], None] | None = None,
+    progress: Callable[[int, int], None] | None = None,
+) -> SkeletonResult:
+    """Search the skeleton with PC-stable.
+
+    Parameters
+    ----------
+    data : coded table shaped (variables, rows), -1 for missing.
+    names, cards : variable names and level counts, in the order of `data`.
+    settings : the test settings (method, alpha, sparse policy, ...).
+    max_order : largest conditioning-set size tried (None: no cap).
+    knowledge : required and forbidden pairs.
+    context : where batteries run (serial when None).
+    resume : the state saved after a finished level, to go on from there.
+    on_level : called with the state after each finished level (for checkpoints).
+    progress : called with (level, pairs to test) before each level.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> z = rng.integers(0, 2, 3000); x = (z + (rng.random(3000) < .1)) % 2
+    >>> y = (z + (rng.random(3000) < .1)) % 2
+    >>> res = pc_stable_skeleton(np.vstack([x, y, z]).astype(np.int8), ["x", "y", "z"], [2, 2, 2],
+    ...                          EngineSettings())
+    >>> sorted(res.edges), res.separating_sets[("x", "y")]
+    ([('x', 'z'), ('y', 'z')], ('z',))
+    """
+    names = list(names)
+    knowledge = knowledge or Knowledge()
+    shared = (data, names, list(cards), settings)
+    all_pairs = [_pair(a, b) for a, b in combinations(sorted(names), 2)]
+    forbidden = frozenset(p for p in all_pairs if knowledge.is_forbidden(*p))
+    if resume is None:
+        state = SearchState(level=0, edges={p for p in all_pairs if p not in forbidden})
+    else:
+        state = resume
+    width = context.width if context is not None else 1
+    while max_order is None or state.level <= max_order:
+        level = state.level
+        neighbours: dict[str, set[str]] = {n: set() for n in names}
+        for a, b in state.edges:
+            neighbours[a].add(b)
+            neighbours[b].add(a)
+        work = []
+        for a, b in sorted(state.edges):
+            cands = candidate_sets(a, b, neighbours, level)
+            if cands:
+                work.append((a, b, cands))
+        if not work:
+            break
+        if progress is not None:
+            progress(level, len(work))
+        n_chunks = 1 if width <= 1 else min(len(work), 4 * width)
+        chunks = _chunks(work, [len(w[2]) for w in work], n_chunks)
+        if context is None:
+            outcome = [_battery_worker(shared, c) for c in chunks]
+        else:
+            outcome = context.map(_battery_worker, shared, chunks)
+        removals = []
+        for chunk, results_of_chunk in zip(chunks, outcome):
+            for (a, b, _), results in zip(chunk, results_of_chunk):
+                for r in results:
+                    state.tests.append(TestRecord(level=level, result=r))
+                last = results[-1]
+                if last.independent:
+                    pair = (a, b)
+                    if knowledge.is_required(a, b):
+                        state.disagreements.add(pair)
+                    elif pair not in state.removed_by:
+                        removals.append(pair)
+                        state.separating_sets[pair] = last.given
+                        state.removed_by[pair] = len(state.tests) - 1
+        state.edges.difference_update(removals)
+        state.level = level + 1
+        if on_level is not None:
+            on_level(state)
+    return SkeletonResult(
+        names=tuple(names),
+        edges=frozenset(state.edges),
+        separating_sets=dict(state.separating_sets),
+        removed_by=dict(state.removed_by),
+        tests=tuple(state.tests),
+        levels=state.level,
+        disagreements=frozenset(state.disagreements),
+        forbidden=forbidden,
+    )
