@@ -1,0 +1,434 @@
+"""The Python API the command line is a thin layer over: run a configuration, load a finished run.
+
+Examples
+--------
+>>> from pipeline.api import run_pipeline, load_run          # doctest: +SKIP
+>>> res = run_pipeline(load_config("configs/demo.yaml"), "outputs/demo/inbox/2026-11-01.csv")
+>>> res.evidence.query("linked")[["var_a", "var_b", "pvalue"]]
+>>> load_run(res.out_dir).graph.edges
+"""
+
+from __future__ import annotations
+
+import glob
+import json
+import os
+import platform
+import shutil
+import time
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .config import Config
+from .errors import ConfigError, DataError
+from .independence.engine import EngineSettings
+from .parallel import parallel_context, share_array
+from .progress import Reporter
+from .runs import (
+    StageCache,
+    atomic_write_json,
+    atomic_write_parquet,
+    atomic_write_text,
+    fingerprint_paths,
+    output_root,
+    publish_run,
+    run_lock,
+    safe_name,
+    stable_hash,
+)
+from .search.knowledge import Knowledge
+from .stages import battery, clean, discretise, ingest, report, skeleton
+from .stages.skeleton import state_from_json, state_to_json
+
+__all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
+
+_PACKAGES = ["numpy", "pandas", "scipy", "pyarrow", "networkx", "joblib", "pydantic", "graphviz"]
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """A finished run: its folder, evidence and tests as DataFrames, manifest, and graph."""
+
+    out_dir: Path
+    evidence: pd.DataFrame
+    tests: pd.DataFrame
+    manifest: dict[str, Any]
+    graph: nx.Graph = field(repr=False)
+
+
+def evidence_graph(evidence: pd.DataFrame) -> nx.Graph:
+    """The linked pairs of an evidence table as a networkx graph with the evidence on its edges."""
+    g = nx.Graph()
+    g.add_nodes_from(sorted(set(evidence["var_a"]) | set(evidence["var_b"])))
+    for row in evidence[evidence["linked"]].to_dict("records"):
+        g.add_edge(row["var_a"], row["var_b"], **{k: v for k, v in row.items() if k not in ("var_a", "var_b")})
+    return g
+
+
+def load_run(run_dir: str | os.PathLike[str]) -> RunResult:
+    """Load a finished run folder (or a `latest` link) back into a `RunResult`."""
+    d = Path(run_dir)
+    if not (d / "manifest.json").is_file():
+        raise DataError(f"`{d}` is not a finished edgeproof run folder (no manifest.json).")
+    manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
+    evidence = pd.read_parquet(d / "evidence.parquet")
+    tests = pd.read_parquet(d / "tests.parquet")
+    return RunResult(out_dir=d.resolve(), evidence=evidence, tests=tests, manifest=manifest, graph=evidence_graph(evidence))
+
+
+def _input_files(path: Path) -> list[Path]:
+    text = str(path)
+    if any(ch in text for ch in "*?["):
+        files = [Path(p) for p in sorted(glob.glob(text, recursive=True)) if Path(p).is_file()]
+    elif path.is_dir():
+        files = sorted(
+            p for p in path.rglob("*") if p.is_file() and not any(part.startswith((".", "_")) for part in p.relative_to(path).parts)
+        )
+    elif path.is_file():
+        files = [path]
+    else:
+        raise DataError(f"Input `{path}` does not exist; check the path given to --input.")
+    if not files:
+        raise DataError(f"Input `{path}` holds no data files; point --input at a file, a glob or a folder of partitions.")
+    return files
+
+
+def _link_or_copy(src: Path, dst: Path) -> None:
+    dst.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dst.with_name(f".{dst.name}.tmp")
+    if tmp.exists():
+        tmp.unlink()
+    try:
+        os.link(src, tmp)
+    except OSError:
+        shutil.copyfile(src, tmp)
+    os.replace(tmp, dst)
+
+
+def _versions() -> dict[str, str]:
+    out = {"python": platform.python_version(), "edgeproof": __version__}
+    for name in _PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "missing"
+    return out
+
+
+def _review_knowledge(cfg: Config, names: list[str]) -> tuple[list[tuple[str, str]], list[tuple[str, str]], list[dict[str, Any]], list[str]]:
+    """Pairs confirmed and rejected in a reviewed evidence file, their comments, and what no longer fits."""
+    path = cfg.knowledge.review_file
+    if not path:
+        return [], [], [], []
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"`knowledge.review_file` = `{p}` does not exist; fix the path or remove the key.")
+    from .report._exports import read_review_file
+
+    review = read_review_file(p)
+    known = set(names)
+    confirm, reject, comments, warnings = [], [], [], []
+    for row in review.to_dict("records"):
+        verdict = str(row.get("verdict") or "").strip().lower()
+        a, b = str(row.get("var_a")), str(row.get("var_b"))
+        if not verdict:
+            continue
+        missing = [n for n in (a, b) if n not in known]
+        if missing:
+            warnings.append(
+                f"Review verdict `{verdict}` on `{a}` - `{b}` was not applied: "
+                f"{', '.join(f'`{m}`' for m in missing)} is not among this run's signals."
+            )
+            continue
+        if verdict == "confirm":
+            confirm.append((a, b))
+        elif verdict == "reject":
+            reject.append((a, b))
+        else:
+            warnings.append(f"Review verdict `{verdict}` on `{a}` - `{b}` is not `confirm` or `reject`; ignored.")
+            continue
+        comments.append({"var_a": min(a, b), "var_b": max(a, b), "verdict": verdict, "comment": str(row.get("comment") or "")})
+    return confirm, reject, comments, warnings
+
+
+def _truth_edges(cfg: Config, input_path: Path) -> list[tuple[str, str]] | None:
+    path = cfg.report.truth_file
+    if not path:
+        return None
+    p = Path(path)
+    if not p.is_file():
+        raise ConfigError(f"`report.truth_file` = `{p}` does not exist; fix the path or remove the key.")
+    data = json.loads(p.read_text(encoding="utf-8"))
+    edges = data.get("edges", [])
+    if isinstance(edges, dict):  # per snapshot
+        key = input_path.stem
+        edges = edges.get(key) or edges.get(input_path.name) or next(iter(edges.values()), [])
+    return [tuple(e) for e in edges]  # type: ignore[misc]
+
+
+def _coded_matrix(codes: pd.DataFrame) -> np.ndarray:
+    dtype = np.result_type(*[codes[c].dtype for c in codes.columns]) if len(codes.columns) else np.int8
+    out = np.empty((codes.shape[1], codes.shape[0]), dtype=dtype)
+    for i, c in enumerate(codes.columns):
+        out[i] = codes[c].to_numpy()
+    return out
+
+
+def run_pipeline(
+    cfg: Config,
+    input_path: str | os.PathLike[str],
+    out_dir: str | os.PathLike[str] | None = None,
+    *,
+    run_name: str | None = None,
+    config_path: str | os.PathLike[str] | None = None,
+    reporter: Reporter | None = None,
+) -> RunResult:
+    """Run every stage on one extract and publish the run folder.
+
+    The run is assembled in ``.<name>.partial`` beside `out_dir` and renamed into place at the end,
+    so a failed or killed run never replaces a finished one. Stage results are cached beside the
+    runs (``.cache``), keyed by their inputs, their slice of the configuration and the version; a
+    second run on the same input and configuration recomputes nothing.
+    """
+    rep = reporter or Reporter("quiet")
+    started = time.strftime("%Y-%m-%dT%H:%M:%S%z")
+    t_start = time.perf_counter()
+    source = Path(input_path)
+    files = _input_files(source)
+    if out_dir is None:
+        stem = safe_name(source.stem if source.is_file() else source.name)
+        out_dir = output_root(cfg, config_path) / (safe_name(run_name) if run_name else f"{stem}-{time.strftime('%Y%m%dT%H%M%S')}")
+    final = Path(out_dir)
+    final.parent.mkdir(parents=True, exist_ok=True)
+    partial = final.parent / f".{final.name}.partial"
+    cache = StageCache(final.parent / ".cache")
+    with run_lock(final.parent / f".{final.name}.lock-dir", 0.0):
+        if partial.exists():
+            shutil.rmtree(partial)
+        partial.mkdir(parents=True)
+        result = _run_stages(cfg, source, files, partial, cache, rep)
+        manifest = result["manifest"]
+        manifest.update(started=started, finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                        seconds=round(time.perf_counter() - t_start, 3), out_dir=str(final.resolve()))
+        atomic_write_json(partial / "manifest.json", manifest)
+        publish_run(partial, final)
+    rep.event("done", out=str(final), seconds=manifest["seconds"])
+    return load_run(final)
+
+
+def _stage(name: str, timings: dict[str, Any], rep: Reporter):
+    class _Timer:
+        def __enter__(self) -> "_Timer":
+            self.t = time.perf_counter()
+            self.reused = False
+            rep.event("stage", name=name, status="start")
+            return self
+
+        def __exit__(self, *exc: Any) -> None:
+            sec = round(time.perf_counter() - self.t, 3)
+            timings[name] = {"seconds": sec, "reused": self.reused}
+            if exc[0] is None:
+                rep.event("stage", name=name, status="reused" if self.reused else "done", seconds=sec)
+
+    return _Timer()
+
+
+def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: StageCache, rep: Reporter) -> dict[str, Any]:
+    timings: dict[str, Any] = {}
+    fp = fingerprint_paths(files)
+    version = __version__
+    k_ingest = stable_hash(["ingest", version, fp, cfg.section("input"), cfg.section("limits")])
+    k_clean = stable_hash(["clean", k_ingest, cfg.section("clean"), cfg.section("columns")])
+    reuse_levels = None
+    if cfg.discretise.reuse_from:
+        ref = Path(cfg.discretise.reuse_from) / "levels.json"
+        if not ref.is_file():
+            raise ConfigError(
+                f"`discretise.reuse_from` = `{cfg.discretise.reuse_from}` holds no levels.json; name a finished run folder."
+            )
+        reuse_levels = json.loads(ref.read_text(encoding="utf-8"))
+    k_disc = stable_hash(["discretise", k_clean, cfg.section("discretise"), cfg.test.missing, reuse_levels])
+
+    # ingest + clean + discretise (each cached; a later hit skips the earlier stages entirely)
+    disc_dir = cache.hit("discretise", k_disc)
+    clean_dir = cache.hit("clean", k_clean)
+    ingest_dir = cache.hit("ingest", k_ingest)
+    with _stage("ingest", timings, rep) as st:
+        if disc_dir or clean_dir or ingest_dir:
+            st.reused = True
+            ingested = None
+        else:
+            ingested = ingest.run(source, cfg.input, cfg.limits)
+            d = cache.begin("ingest", k_ingest)
+            atomic_write_parquet(d / "ingest.parquet", ingested.table)
+            atomic_write_parquet(d / "rejected.parquet", ingested.rejected)
+            atomic_write_json(d / "ingest.json", {"rows_read": ingested.rows_read, "sources": ingested.sources, "summary": ingested.summary})
+            cache.finish("ingest", k_ingest)
+            ingest_dir = d
+    with _stage("clean", timings, rep) as st:
+        if disc_dir or clean_dir:
+            st.reused = True
+            cleaned = None
+        else:
+            if ingested is None:
+                assert ingest_dir is not None
+                meta = json.loads((ingest_dir / "ingest.json").read_text(encoding="utf-8"))
+                ingested = ingest.Ingested(
+                    table=pd.read_parquet(ingest_dir / "ingest.parquet"),
+                    rejected=pd.read_parquet(ingest_dir / "rejected.parquet"),
+                    rows_read=meta["rows_read"], sources=meta["sources"], summary=meta["summary"],
+                )
+            cleaned = clean.run(ingested, cfg)
+            d = cache.begin("clean", k_clean)
+            atomic_write_parquet(d / "clean.parquet", cleaned.table)
+            atomic_write_parquet(d / "quarantined.parquet", cleaned.quarantined)
+            atomic_write_parquet(d / "rejected.parquet", pd.concat([ingested.rejected, cleaned.quarantined], ignore_index=True))
+            atomic_write_json(d / "cleaning.json", cleaned.summary)
+            atomic_write_json(d / "clean-meta.json", {"kinds": cleaned.kinds, "columns": cleaned.columns, "rows_read": ingested.rows_read, "rejected": len(ingested.rejected), "quarantined": len(cleaned.quarantined), "sources": ingested.sources})
+            cache.finish("clean", k_clean)
+            clean_dir = d
+    with _stage("discretise", timings, rep) as st:
+        if disc_dir:
+            st.reused = True
+        else:
+            if cleaned is None:
+                assert clean_dir is not None
+                meta = json.loads((clean_dir / "clean-meta.json").read_text(encoding="utf-8"))
+                cleaned = clean.Cleaned(
+                    table=pd.read_parquet(clean_dir / "clean.parquet"), kinds=meta["kinds"], columns=meta["columns"],
+                    quarantined=pd.read_parquet(clean_dir / "quarantined.parquet"),
+                    summary=json.loads((clean_dir / "cleaning.json").read_text(encoding="utf-8")),
+                )
+            disc = discretise.run(cleaned, cfg, reuse_levels)
+            d = cache.begin("discretise", k_disc)
+            atomic_write_parquet(d / "discretised.parquet", disc.codes)
+            atomic_write_json(d / "levels.json", {"levels": disc.levels, "edges": disc.edges, "kinds": disc.kinds})
+            atomic_write_json(d / "discretise.json", disc.summary)
+            for name in ("rejected.parquet", "cleaning.json", "clean-meta.json"):
+                _link_or_copy(clean_dir / name, d / name)
+            cache.finish("discretise", k_disc)
+            disc_dir = d
+    assert disc_dir is not None
+    for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json"):
+        _link_or_copy(disc_dir / name, out / name)
+    clean_meta = json.loads((disc_dir / "clean-meta.json").read_text(encoding="utf-8"))
+    levels_doc = json.loads((disc_dir / "levels.json").read_text(encoding="utf-8"))
+    codes = pd.read_parquet(disc_dir / "discretised.parquet")
+    names = [str(c) for c in codes.columns]
+    if len(names) < 2:
+        raise DataError(
+            f"Only {len(names)} usable column(s) left after cleaning ({', '.join(names) or 'none'}); "
+            "see cleaning.json for why the others were dropped."
+        )
+    cards = [max(1, len(levels_doc["levels"][n])) for n in names]
+
+    # knowledge: configuration + reviewed evidence file
+    confirm, reject, comments, review_warnings = _review_knowledge(cfg, names)
+    knowledge = Knowledge.build(
+        names,
+        required=[*cfg.knowledge.required, *confirm],
+        forbidden=[*cfg.knowledge.forbidden, *reject],
+        tiers=cfg.knowledge.tiers,
+    )
+    settings = EngineSettings.from_config(cfg)
+    k_battery = stable_hash(["battery", k_disc, cfg.section("test"), sorted(knowledge.required), sorted(knowledge.forbidden)])
+    k_search = stable_hash(["search", k_battery, cfg.search.max_order, cfg.search.orient, cfg.search.collider_rule, [list(t) for t in knowledge.tiers]])
+    data = _coded_matrix(codes)
+    par = cfg.parallel
+    with parallel_context(par.jobs, par.backend, par.scheduler) as ctx:
+        if ctx.backend == "local":
+            data = share_array(data, cache.begin("shared", k_disc) if not cache.hit("shared", k_disc) else cache.folder("shared", k_disc))
+        with _stage("battery", timings, rep) as st:
+            hit = cache.hit("battery", k_battery)
+            if hit:
+                st.reused = True
+                state = state_from_json((hit / "state.json").read_text(encoding="utf-8"))
+                marginal_tests = pd.read_parquet(hit / "marginal.parquet")
+            else:
+                marginal = battery.run(data, names, cards, settings, knowledge, ctx)
+                d = cache.begin("battery", k_battery)
+                atomic_write_parquet(d / "marginal.parquet", marginal.tests)
+                atomic_write_text(d / "state.json", state_to_json(marginal.state))
+                cache.finish("battery", k_battery)
+                state, marginal_tests = marginal.state, marginal.tests
+        atomic_write_parquet(out / "marginal.parquet", marginal_tests)
+        with _stage("skeleton", timings, rep) as st:
+            hit = cache.hit("skeleton", k_search)
+            if hit:
+                st.reused = True
+                evidence = pd.read_parquet(hit / "evidence.parquet")
+                tests = pd.read_parquet(hit / "tests.parquet")
+            else:
+                d = cache.begin("skeleton", k_search) if not (cache.folder("skeleton", k_search) / "checkpoint.json").is_file() else cache.folder("skeleton", k_search)
+                outcome = skeleton.run(
+                    data, names, cards, settings, knowledge, state,
+                    max_order=cfg.search.max_order, orient_graph=cfg.search.orient,
+                    collider_rule=cfg.search.collider_rule, context=ctx,
+                    checkpoint=d / "checkpoint.json", progress=rep.level,
+                )
+                rep.close()
+                evidence, tests = outcome.evidence, outcome.tests
+                atomic_write_parquet(d / "evidence.parquet", evidence)
+                atomic_write_parquet(d / "tests.parquet", tests)
+                cache.finish("skeleton", k_search)
+    atomic_write_parquet(out / "evidence.parquet", evidence)
+    atomic_write_parquet(out / "tests.parquet", tests)
+
+    dropped = {c["column"]: c.get("reason", "") for c in clean_meta["columns"] if c.get("action") == "dropped"}
+    rows = {
+        "read": int(clean_meta["rows_read"]),
+        "rejected": int(clean_meta["rejected"]),
+        "quarantined": int(clean_meta["quarantined"]),
+        "kept": int(len(codes)),
+    }
+    warnings = list(review_warnings)
+    if rows["read"] != rows["kept"] + rows["rejected"] + rows["quarantined"]:
+        warnings.append(
+            f"Row counts do not reconcile: read {rows['read']} != kept {rows['kept']} + rejected "
+            f"{rows['rejected']} + quarantined {rows['quarantined']}."
+        )
+    manifest: dict[str, Any] = {
+        "edgeproof_version": version,
+        "config": cfg.model_dump(mode="json"),
+        "input": {"path": str(source), "files": [str(f) for f in files], "fingerprint": fp},
+        "rows": rows,
+        "columns": {"kept": names, "dropped": dropped},
+        "stages": timings,
+        "packages": _versions(),
+        "platform": {"machine": platform.machine(), "cpus": os.cpu_count()},
+        "cache_keys": {"ingest": k_ingest, "clean": k_clean, "discretise": k_disc, "battery": k_battery, "skeleton": k_search},
+        "edges": int(evidence["linked"].sum()),
+        "tests": int(len(tests)),
+        "review": comments,
+        "warnings": warnings,
+        "status": "ok",
+    }
+    with _stage("report", timings, rep):
+        ctx_report = report.ReportContext(
+            title=cfg.report.title or f"edgeproof run on {source.name}",
+            summary={
+                "input": str(source), "rows": rows, "columns_kept": names, "columns_dropped": dropped,
+                "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},
+                "timings": timings,
+            },
+            levels=levels_doc["levels"],
+            alpha=cfg.test.alpha,
+            orient=cfg.search.orient,
+            truth_edges=_truth_edges(cfg, source),
+            review={(c["var_a"], c["var_b"]): c for c in comments} or None,
+            warnings=warnings,
+        )
+        written = report.run(evidence, tests, ctx_report, out)
+    manifest["artifacts"] = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
+    manifest["artifacts"] = sorted(set(manifest["artifacts"]) | {"manifest.json"} | {Path(p).name for p in written.values()})
+    for w in warnings:
+        rep.event("warning", message=w)
+    return {"manifest": manifest}
+

@@ -1,0 +1,172 @@
+"""The `edgeproof` command line: a thin layer over `pipeline.api`.
+
+Every failure prints one line naming the problem and the fix and exits non-zero
+(2 usage or configuration, 3 data, 4 lock held, 5 limit exceeded, 6 graph changed, 1 anything else);
+``--debug`` adds the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from pathlib import Path
+from typing import Sequence
+
+from . import __version__
+from .errors import EXIT_FAILURE, EXIT_USAGE, ConfigError, EdgeproofError
+
+__all__ = ["main", "build_parser"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # one line, exit code 2
+        raise ConfigError(f"{message}; see `edgeproof {self.prog.split()[-1]} --help`." if " " in self.prog else f"{message}; see `edgeproof --help`.")
+
+
+def _common(p: argparse.ArgumentParser, config_required: bool = False) -> None:
+    p.add_argument("--config", required=config_required, help="YAML configuration file")
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override one configuration key, e.g. --set test.alpha=0.01 (repeatable)")
+    p.add_argument("--debug", action="store_true", help="show the traceback of a failure")
+    p.add_argument("--log-format", choices=["plain", "json"], default="plain", help="progress lines as text or JSON lines")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every subcommand."""
+    parser = _Parser(prog="edgeproof", description="Which operational signals are directly linked, night after night.")
+    parser.add_argument("--version", action="version", version=f"edgeproof {__version__}")
+    sub = parser.add_subparsers(dest="command", parser_class=_Parser)
+
+    p = sub.add_parser("run", help="run every stage on one extract")
+    _common(p)
+    p.add_argument("--input", required=True, help="a file, a glob or a folder of partitions")
+    p.add_argument("--out", help="run folder to write (default: a new folder under the output root)")
+
+    p = sub.add_parser("probe", help="one test on demand: is X independent of Y given the set?")
+    _common(p)
+    p.add_argument("--input", required=True)
+    p.add_argument("x")
+    p.add_argument("y")
+    p.add_argument("--given", default="", help="comma-separated conditioning set")
+    p.add_argument("--method", choices=["g", "chi2", "permutation"])
+    p.add_argument("--json", action="store_true", help="print JSON")
+
+    p = sub.add_parser("nightly", help="process every snapshot in the inbox that has no successful run yet")
+    _common(p, config_required=True)
+
+    p = sub.add_parser("compare", help="what changed between two runs")
+    _common(p)
+    p.add_argument("run_a", help="run folder, or `previous` with --config")
+    p.add_argument("run_b", help="run folder, or `latest` with --config")
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--fail-on-change", type=int, default=None, metavar="N", help="exit 6 when more than N edges changed")
+    p.add_argument("--out", help="folder for diff.parquet, diff.csv, diff.svg, diff.html")
+
+    p = sub.add_parser("history", help="every edge over the last nights")
+    _common(p, config_required=True)
+    p.add_argument("--last", type=int, default=None, metavar="N")
+    p.add_argument("--out", help="folder for history.html and history.csv")
+
+    p = sub.add_parser("demo", help="generate the invented demo scenario and run the nightly pipeline on it")
+    _common(p)
+    p.add_argument("--data", default="outputs/demo", help="where the demo snapshots are written")
+    return parser
+
+
+def _load(args: argparse.Namespace):
+    from .config import load_config
+
+    return load_config(args.config, args.overrides)
+
+
+def _reporter(args: argparse.Namespace):
+    from .progress import Reporter
+
+    return Reporter("quiet" if args.quiet else args.log_format)
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from .api import run_pipeline
+
+    cfg = _load(args)
+    res = run_pipeline(cfg, args.input, args.out, config_path=args.config, reporter=_reporter(args))
+    linked = int(res.evidence["linked"].sum())
+    print(f"{res.out_dir}: {linked} linked pairs of {len(res.evidence)}; report {res.out_dir / 'report.html'}")
+    return 0
+
+
+def _cmd_probe(args: argparse.Namespace) -> int:
+    from .probe import probe
+
+    cfg = _load(args)
+    if args.method:
+        cfg.test.method = args.method
+    given = [g.strip() for g in args.given.split(",") if g.strip()]
+    result = probe(cfg, args.input, args.x, args.y, given)
+    if args.json:
+        print(json.dumps(result, sort_keys=True, default=str))
+    else:
+        for k in ("x", "y", "given", "method", "statistic", "dof", "pvalue", "n", "cmi_bits", "cramers_v", "independent", "flags"):
+            print(f"{k:>12}: {result[k]}")
+    return 0
+
+
+def _cmd_nightly(args: argparse.Namespace) -> int:
+    from .nightly import nightly_main
+
+    cfg = _load(args)
+    return int(nightly_main(cfg, Path(args.config), log=_reporter(args)))
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from .compare import compare_main
+
+    cfg = _load(args) if args.config else None
+    return int(compare_main(args.run_a, args.run_b, cfg=cfg, config_path=Path(args.config) if args.config else None,
+                            json_out=args.json, fail_on_change=args.fail_on_change, out_dir=args.out))
+
+
+def _cmd_history(args: argparse.Namespace) -> int:
+    from .history import history_main
+
+    cfg = _load(args)
+    return int(history_main(cfg, Path(args.config), last=args.last, out_dir=args.out))
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .demo_run import demo_main
+
+    return int(demo_main(args.data, args.config or "configs/demo.yaml", args.overrides, reporter=_reporter(args)))
+
+
+_COMMANDS = {"run": _cmd_run, "probe": _cmd_probe, "nightly": _cmd_nightly, "compare": _cmd_compare,
+             "history": _cmd_history, "demo": _cmd_demo}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the `edgeproof` command; returns the exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    try:
+        args = build_parser().parse_args(argv)
+        if not args.command:
+            build_parser().print_help()
+            return EXIT_USAGE
+        return _COMMANDS[args.command](args)
+    except EdgeproofError as err:
+        if debug:
+            traceback.print_exc()
+        print(f"edgeproof: error: {err}", file=sys.stderr)
+        return err.exit_code
+    except KeyboardInterrupt:
+        print("edgeproof: interrupted; the last finished run is untouched.", file=sys.stderr)
+        return 130
+    except Exception as err:  # noqa: BLE001 - one line unless --debug
+        if debug:
+            traceback.print_exc()
+        first = str(err).splitlines()[0] if str(err) else ""
+        print(f"edgeproof: internal error: {type(err).__name__}: {first} (rerun with --debug for the traceback)", file=sys.stderr)
+        return EXIT_FAILURE

@@ -1,0 +1,38 @@
+"""One test on demand, through the same ingest, clean and discretise stages as a run."""
+
+from __future__ import annotations
+
+import difflib
+import os
+from typing import Any, Sequence
+
+from .config import Config
+from .errors import ConfigError
+from .independence.engine import CIEngine, EngineSettings
+from .stages import clean, discretise, ingest
+
+__all__ = ["probe"]
+
+
+def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given: Sequence[str] = ()) -> dict[str, Any]:
+    """Test `x` independent of `y` given `given` on an extract; returns the result as plain data."""
+    from .api import _coded_matrix, _input_files  # the same input resolution as a run
+
+    _input_files(__import__("pathlib").Path(input_path))
+    ing = ingest.run(input_path, cfg.input, cfg.limits)
+    cl = clean.run(ing, cfg)
+    disc = discretise.run(cl, cfg, None)
+    names = [str(c) for c in disc.codes.columns]
+    for n in (x, y, *given):
+        if n not in names:
+            close = difflib.get_close_matches(n, names, n=3)
+            hint = f" (did you mean {', '.join(f'`{c}`' for c in close)}?)" if close else ""
+            raise ConfigError(f"`{n}` is not a usable signal of this extract{hint}; see cleaning.json of a run for dropped columns.")
+    if len({x, y, *given}) != 2 + len(given):
+        raise ConfigError("x, y and the --given signals must all be different.")
+    cards = [max(1, len(disc.levels[n])) for n in names]
+    engine = CIEngine(_coded_matrix(disc.codes), names, cards, EngineSettings.from_config(cfg))
+    r = engine.test(x, y, list(given))
+    out = r.to_dict()
+    out["flags"] = list(r.flags)
+    return out

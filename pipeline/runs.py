@@ -1,0 +1,193 @@
+"""Run folders: atomic writes, the stage cache, fingerprints, locks and name safety.
+
+Every artifact is written to a temporary name in the same folder and renamed into place, so a crash
+never leaves a half-written file under its final name. A run is assembled in a hidden sibling folder
+``.<name>.partial`` and renamed into place only when every stage has finished.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import io
+import json
+import os
+import re
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any, Iterator
+
+import pandas as pd
+
+from .errors import ConfigError, LockHeldError
+
+__all__ = [
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "atomic_write_json",
+    "atomic_write_parquet",
+    "fingerprint_paths",
+    "stable_hash",
+    "output_root",
+    "run_lock",
+    "safe_name",
+    "StageCache",
+    "publish_run",
+]
+
+REPO_OUTPUTS = Path("outputs")
+
+
+def _fsync_dir(folder: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(folder, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
+    """Write `data` to `path` through a temporary file and an atomic rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+    _fsync_dir(path.parent)
+    return path
+
+
+def atomic_write_text(path: str | os.PathLike[str], text: str) -> Path:
+    """Write UTF-8 text atomically."""
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_json(path: str | os.PathLike[str], data: Any) -> Path:
+    """Write JSON (sorted keys, indented, no NaN) atomically."""
+    return atomic_write_text(path, json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n")
+
+
+def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> Path:
+    """Write a DataFrame as Parquet atomically (no index, no pandas metadata timestamps)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    buf = io.BytesIO()
+    pq.write_table(table, buf, compression="zstd")
+    return atomic_write_bytes(path, buf.getvalue())
+
+
+def stable_hash(obj: Any) -> str:
+    """A short hash of plain data, independent of dict order."""
+    text = json.dumps(obj, sort_keys=True, default=str, separators=(",", ":"))
+    return hashlib.blake2b(text.encode("utf-8"), digest_size=12).hexdigest()
+
+
+def fingerprint_paths(paths: list[Path]) -> str:
+    """Content hash of input files (names relative to their common folder, then bytes)."""
+    h = hashlib.blake2b(digest_size=16)
+    for p in sorted(paths):
+        h.update(p.name.encode("utf-8") + b"\0")
+        with open(p, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 22), b""):
+                h.update(block)
+    return h.hexdigest()
+
+
+_SAFE = re.compile(r"[^A-Za-z0-9._=+-]+")
+
+
+def safe_name(raw: str) -> str:
+    """A run or snapshot name that cannot escape its folder (no separators, no dot-dot, no leading dot)."""
+    name = _SAFE.sub("_", os.path.basename(str(raw).replace("\\", "/").rstrip("/")))
+    name = name.strip("._") or "run"
+    if name in {".", ".."}:
+        name = "run"
+    return name[:120]
+
+
+def output_root(cfg: Any, config_path: str | os.PathLike[str] | None = None) -> Path:
+    """The folder that holds a configuration's runs: `output.root`, or ``outputs/<name>``."""
+    if cfg.output.root:
+        return Path(cfg.output.root)
+    name = cfg.name or (Path(config_path).stem if config_path else "default")
+    return REPO_OUTPUTS / safe_name(name)
+
+
+@contextlib.contextmanager
+def run_lock(folder: str | os.PathLike[str], wait_seconds: float = 0.0) -> Iterator[None]:
+    """Hold the lock of an output folder, or raise `LockHeldError` after `wait_seconds`."""
+    from filelock import FileLock, Timeout
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    lock = FileLock(str(folder / ".lock"))
+    try:
+        lock.acquire(timeout=wait_seconds if wait_seconds > 0 else 0)
+    except Timeout as err:
+        raise LockHeldError(
+            f"Another edgeproof run holds the lock on `{folder}`; wait for it to finish "
+            "(or raise `nightly.lock_wait_seconds`)."
+        ) from err
+    try:
+        yield
+    finally:
+        lock.release()
+
+
+class StageCache:
+    """Artifacts of a stage keyed by its inputs, its slice of the configuration and the version.
+
+    A cached stage is a folder ``<root>/<stage>-<key>/`` holding its files and a ``done`` marker
+    written last; a folder without the marker is an interrupted attempt and is ignored.
+    """
+
+    def __init__(self, root: str | os.PathLike[str]) -> None:
+        self.root = Path(root)
+
+    def folder(self, stage: str, key: str) -> Path:
+        """Where a stage's artifacts for this key live."""
+        return self.root / f"{stage}-{key}"
+
+    def hit(self, stage: str, key: str) -> Path | None:
+        """The folder of a finished cached stage, or None."""
+        f = self.folder(stage, key)
+        return f if (f / "done").is_file() else None
+
+    def begin(self, stage: str, key: str) -> Path:
+        """A fresh folder to write a stage's artifacts into (an interrupted attempt is cleared)."""
+        f = self.folder(stage, key)
+        if f.exists() and not (f / "done").is_file():
+            shutil.rmtree(f, ignore_errors=True)
+        f.mkdir(parents=True, exist_ok=True)
+        return f
+
+    def finish(self, stage: str, key: str) -> None:
+        """Mark a stage's artifacts complete."""
+        atomic_write_text(self.folder(stage, key) / "done", key + "\n")
+
+
+def publish_run(partial: Path, final: Path) -> None:
+    """Move a finished run folder into place; an older folder of that name is replaced only then."""
+    if final.is_symlink():
+        raise ConfigError(f"`{final}` is a symbolic link; give a real folder as the run's --out.")
+    if final.exists():
+        old = final.with_name(f".{final.name}.old")
+        shutil.rmtree(old, ignore_errors=True)
+        os.replace(final, old)
+        os.replace(partial, final)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.replace(partial, final)
+    _fsync_dir(final.parent)
