@@ -1,0 +1,77 @@
+"""The configuration: defaults, overrides, and one-line refusals naming key, value and what is allowed."""
+
+from __future__ import annotations
+
+import pytest
+
+from pipeline.config import apply_overrides, config_from_dict, load_config
+from pipeline.errors import ConfigError
+
+
+def test_defaults_validate():
+    """The empty configuration is valid and has the documented defaults."""
+    cfg = load_config(None)
+    assert cfg.test.method == "g"
+    assert cfg.test.alpha == 0.05
+    assert cfg.search.max_order is None
+    assert cfg.parallel.jobs == 1
+    assert cfg.discretise.default == "auto"
+
+
+def test_overrides_parse_values_as_yaml():
+    """`--set` values are typed: numbers, booleans, and `none` for no order cap."""
+    cfg = load_config(None, ["test.alpha=0.01", "search.max_order=none", "search.orient=true", "parallel.jobs=2"])
+    assert cfg.test.alpha == 0.01 and cfg.search.max_order is None
+    assert cfg.search.orient is True and cfg.parallel.jobs == 2
+    assert load_config(None, ["search.max_order=3"]).search.max_order == 3
+
+
+def test_unknown_key_is_refused_with_the_allowed_keys():
+    """A misspelt key names itself and lists what the section allows."""
+    with pytest.raises(ConfigError, match=r"Unknown configuration key `test.alpah`.*alpha"):
+        load_config(None, ["test.alpah=0.1"])
+
+
+def test_out_of_range_value_names_key_and_value():
+    """An alpha outside (0, 1) is refused with the key and the value."""
+    with pytest.raises(ConfigError, match=r"`test.alpha` = 1.5"):
+        load_config(None, ["test.alpha=1.5"])
+
+
+def test_wrong_choice_names_allowed_values():
+    """A method that does not exist is refused, naming the allowed ones."""
+    with pytest.raises(ConfigError, match=r"`test.method` = 'fisher'.*'g', 'chi2' or 'permutation'"):
+        load_config(None, ["test.method=fisher"])
+
+
+def test_override_without_equals_is_refused():
+    """`--set` without `=` explains the form."""
+    with pytest.raises(ConfigError, match="section.key=value"):
+        apply_overrides({}, ["test.alpha"])
+
+
+def test_yaml_file_is_loaded_safely(tmp_path):
+    """A YAML tag that would build a Python object is refused, not executed."""
+    p = tmp_path / "evil.yaml"
+    p.write_text("test: !!python/object/apply:os.system ['echo pwned']\n")
+    with pytest.raises(ConfigError, match="not valid YAML"):
+        load_config(p)
+
+
+def test_missing_config_file(tmp_path):
+    """A configuration path that does not exist is a configuration error naming it."""
+    with pytest.raises(ConfigError, match="does not exist"):
+        load_config(tmp_path / "nope.yaml")
+
+
+def test_config_name_defaults_to_file_stem(tmp_path):
+    """The configuration's name (its output folder) defaults to the file's stem."""
+    p = tmp_path / "nightly-api.yaml"
+    p.write_text("test: {alpha: 0.01}\n")
+    assert load_config(p).name == "nightly-api"
+
+
+def test_top_level_must_be_mapping():
+    """A list at the top level is refused."""
+    with pytest.raises(ConfigError, match="mapping"):
+        config_from_dict([1, 2])  # type: ignore[arg-type]

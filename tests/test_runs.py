@@ -1,0 +1,73 @@
+"""Run folders: atomic writes, names that cannot escape, locks, the stage cache."""
+
+from __future__ import annotations
+
+import os
+
+import pandas as pd
+import pytest
+
+from pipeline.errors import LockHeldError
+from pipeline.runs import StageCache, atomic_write_parquet, atomic_write_text, publish_run, run_lock, safe_name
+
+
+def test_atomic_write_leaves_no_temporary_files(tmp_path):
+    """After an atomic write only the final file is in the folder."""
+    atomic_write_text(tmp_path / "a.txt", "hello")
+    atomic_write_parquet(tmp_path / "b.parquet", pd.DataFrame({"x": [1, 2]}))
+    assert sorted(os.listdir(tmp_path)) == ["a.txt", "b.parquet"]
+    assert pd.read_parquet(tmp_path / "b.parquet")["x"].tolist() == [1, 2]
+
+
+def test_parquet_bytes_are_repeatable(tmp_path):
+    """The same frame written twice gives byte-identical Parquet (no timestamps inside)."""
+    frame = pd.DataFrame({"a": ["x", "y"], "p": [0.5, 0.25]})
+    atomic_write_parquet(tmp_path / "1.parquet", frame)
+    atomic_write_parquet(tmp_path / "2.parquet", frame)
+    assert (tmp_path / "1.parquet").read_bytes() == (tmp_path / "2.parquet").read_bytes()
+
+
+@pytest.mark.parametrize(
+    "raw", ["../../etc/passwd", "/abs/path/night", "..", ".", "a/../../b", "..\\..\\win", "night\x00x", ".hidden"]
+)
+def test_safe_name_cannot_escape(raw, tmp_path):
+    """A snapshot or run name taken from a file name stays inside its folder."""
+    name = safe_name(raw)
+    assert name and "/" not in name and "\\" not in name and not name.startswith(".")
+    assert (tmp_path / name).resolve().parent == tmp_path.resolve()
+
+
+def test_lock_refuses_a_second_holder(tmp_path):
+    """While one run holds the lock of a folder, a second gets LockHeldError (exit code 4)."""
+    with run_lock(tmp_path):
+        with pytest.raises(LockHeldError) as info:
+            with run_lock(tmp_path):
+                pass
+    assert info.value.exit_code == 4
+    with run_lock(tmp_path):  # released again
+        pass
+
+
+def test_stage_cache_ignores_an_interrupted_attempt(tmp_path):
+    """A cache folder without its done marker is not a hit, and is cleared by the next attempt."""
+    cache = StageCache(tmp_path)
+    d = cache.begin("clean", "k1")
+    (d / "half.parquet").write_bytes(b"partial")
+    assert cache.hit("clean", "k1") is None
+    d = cache.begin("clean", "k1")
+    assert not (d / "half.parquet").exists()
+    cache.finish("clean", "k1")
+    assert cache.hit("clean", "k1") == d
+
+
+def test_publish_replaces_only_when_complete(tmp_path):
+    """Publishing moves the finished folder into place, replacing the old one."""
+    final = tmp_path / "run"
+    final.mkdir()
+    (final / "old.txt").write_text("old")
+    partial = tmp_path / ".run.partial"
+    partial.mkdir()
+    (partial / "new.txt").write_text("new")
+    publish_run(partial, final)
+    assert sorted(os.listdir(final)) == ["new.txt"]
+    assert not partial.exists()
