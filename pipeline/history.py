@@ -1,0 +1,251 @@
+"""The history of every link over the last nightly runs: nights present, first and last seen, p-values.
+
+Runs are the successful run folders under the output root (``manifest.json`` with ``status: ok``),
+in name order, which for date-named snapshots is time order. An *edge* is a pair linked in at least
+one of the runs shown. Per night, a pair is *linked*, *not linked* (with the p-value of the test that
+removed it), or *not tested* (a column of the pair was not kept that night).
+
+``history.csv`` has one row per edge: ``var_a, var_b, nights_present, nights, first_seen,
+last_seen, pattern, changes`` and one ``pvalue_<night>`` column per night. ``pattern`` spells the
+nights with ``#`` linked, ``.`` not linked, ``?`` not tested. ``history.html`` shows the same as an
+edge-by-night grid whose cells carry a symbol (filled disc linked, open circle not linked, dash not
+tested) and the p-value, so it reads in grey-scale print; a night where the edge appeared or
+disappeared has a thick border and a ``+`` or ``-``.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+import os
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional, Sequence, Union
+
+import pandas as pd
+
+from .config import Config
+from .errors import ConfigError, DataError, EXIT_OK
+
+__all__ = ["History", "run", "edge_history", "history_main"]
+
+_LINKED, _UNLINKED, _UNTESTED = "#", ".", "?"
+
+
+@dataclass(frozen=True)
+class History:
+    """The nights shown and one row per edge (columns as in ``history.csv``)."""
+
+    nights: tuple[str, ...]
+    table: pd.DataFrame
+
+    def row(self, a: str, b: str) -> Optional[dict]:
+        """The row of pair (a, b) in either order, or None when it was never linked."""
+        key = (a, b) if a <= b else (b, a)
+        hit = self.table[(self.table["var_a"] == key[0]) & (self.table["var_b"] == key[1])]
+        return None if hit.empty else hit.iloc[0].to_dict()
+
+
+def run(cfg: Config, config_path: Optional[Path] = None, last: Optional[int] = None) -> History:
+    """History of the last `last` successful runs under the configuration's output root.
+
+    Parameters
+    ----------
+    cfg : Config
+        The configuration whose nightly runs are read.
+    config_path : Path, optional
+        The configuration file, used to find the default output root.
+    last : int, optional
+        How many of the most recent runs to show; default all.
+
+    Returns
+    -------
+    History
+
+    Raises
+    ------
+    DataError
+        There is no successful run under the output root yet.
+    """
+    from .nightly import successful_runs
+    from .runs import output_root
+
+    if last is not None and last < 1:
+        raise ConfigError(f"`--last {last}` must be 1 or more.")
+    root = Path(output_root(cfg, config_path))
+    names = successful_runs(root)
+    if last is not None:
+        names = names[-last:]
+    if not names:
+        raise DataError(
+            f"No successful run under `{root}` yet; run `edgeproof nightly --config FILE` first."
+        )
+    evidence = []
+    for name in names:
+        path = root / name / "evidence.parquet"
+        try:
+            evidence.append((name, pd.read_parquet(path, columns=["var_a", "var_b", "linked", "pvalue"])))
+        except Exception as err:  # noqa: BLE001 - pyarrow raises several types
+            raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    return edge_history(evidence)
+
+
+def edge_history(runs: Sequence[tuple[str, pd.DataFrame]]) -> History:
+    """History of the links in `runs`, a sequence of (night name, evidence table) in time order.
+
+    Examples
+    --------
+    >>> ev = lambda linked, p: pd.DataFrame({"var_a": ["x"], "var_b": ["y"],
+    ...                                      "linked": [linked], "pvalue": [p]})
+    >>> h = edge_history([("d1", ev(True, 1e-5)), ("d2", ev(False, 0.3)), ("d3", ev(True, 1e-4))])
+    >>> r = h.row("x", "y")
+    >>> r["pattern"], r["nights_present"], r["first_seen"], r["last_seen"], r["changes"]
+    ('#.#', 2, 'd1', 'd3', '-d2; +d3')
+    """
+    nights = tuple(name for name, _ in runs)
+    if len(set(nights)) != len(nights):
+        raise DataError(f"Night names repeat in {list(nights)}; every run needs its own name.")
+    per_night: list[dict[tuple[str, str], tuple[bool, float]]] = []
+    for _name, ev in runs:
+        cells = {}
+        for a, b, linked, p in zip(ev["var_a"], ev["var_b"], ev["linked"], ev["pvalue"]):
+            a, b = str(a), str(b)
+            cells[(a, b) if a <= b else (b, a)] = (bool(linked), _float(p))
+        per_night.append(cells)
+    edges = sorted({pair for cells in per_night for pair, (linked, _) in cells.items() if linked})
+    rows = []
+    for pair in edges:
+        marks, pvalues = [], []
+        for cells in per_night:
+            if pair in cells:
+                marks.append(_LINKED if cells[pair][0] else _UNLINKED)
+                pvalues.append(cells[pair][1])
+            else:
+                marks.append(_UNTESTED)
+                pvalues.append(float("nan"))
+        present = [n for n, m in zip(nights, marks) if m == _LINKED]
+        changes = []
+        for i in range(1, len(marks)):
+            before, now = marks[i - 1], marks[i]
+            if before != now and _UNTESTED not in (before, now):
+                changes.append(("+" if now == _LINKED else "-") + nights[i])
+        row = {
+            "var_a": pair[0], "var_b": pair[1], "nights_present": len(present),
+            "nights": len(nights), "first_seen": present[0], "last_seen": present[-1],
+            "pattern": "".join(marks), "changes": "; ".join(changes),
+        }
+        row.update({f"pvalue_{n}": p for n, p in zip(nights, pvalues)})
+        rows.append(row)
+    columns = ["var_a", "var_b", "nights_present", "nights", "first_seen", "last_seen", "pattern",
+               "changes"] + [f"pvalue_{n}" for n in nights]
+    return History(nights, pd.DataFrame(rows, columns=columns))
+
+
+def history_main(
+    cfg: Config,
+    config_path: Optional[Path] = None,
+    last: Optional[int] = None,
+    out_dir: Optional[Union[str, "os.PathLike[str]"]] = None,
+) -> int:
+    """Command-line body of ``edgeproof history``: print the table, write history.csv and .html."""
+    from .runs import output_root
+
+    hist = run(cfg, config_path, last)
+    out = Path(out_dir) if out_dir is not None else Path(output_root(cfg, config_path))
+    out.mkdir(parents=True, exist_ok=True)
+    csv, page = out / "history.csv", out / "history.html"
+    _atomic_text(csv, hist.table.to_csv(index=False))
+    _atomic_text(page, _html(hist))
+    print(_text(hist))
+    print(f"Written: {csv}, {page}", file=sys.stderr)
+    return EXIT_OK
+
+
+def _float(value: object) -> float:
+    """A float, NaN for missing."""
+    try:
+        return float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return float("nan")
+
+
+def _fmt(p: float) -> str:
+    """A p-value in three significant digits ('' for NaN)."""
+    return "" if not math.isfinite(p) else f"{p:.3g}"
+
+
+def _atomic_text(path: Path, text: str) -> None:
+    """Write to a temporary sibling and rename over `path`."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def _text(hist: History) -> str:
+    """The plain table printed to standard output."""
+    t = hist.table
+    if t.empty:
+        return f"No links in the {len(hist.nights)} runs shown."
+    width = max(len(f"{a} -- {b}") for a, b in zip(t["var_a"], t["var_b"]))
+    lines = [
+        f"Links over {len(hist.nights)} nights ({hist.nights[0]} .. {hist.nights[-1]}); "
+        f"pattern: # linked, . not linked, ? not tested",
+        f"{'edge':<{width}}  {'pattern':<{max(7, len(hist.nights))}}  nights  first       last        changes",
+    ]
+    for r in t.itertuples(index=False):
+        lines.append(
+            f"{f'{r.var_a} -- {r.var_b}':<{width}}  {r.pattern:<{max(7, len(hist.nights))}}  "
+            f"{r.nights_present:>2}/{r.nights:<3}  {r.first_seen:<10}  {r.last_seen:<10}  {r.changes}"
+        )
+    return "\n".join(lines)
+
+
+_CSS = """
+body{font-family:Helvetica,Arial,sans-serif;margin:1.5em;color:#111}
+table{border-collapse:collapse;margin:.5em 0 1.5em}th,td{border:1px solid #888;padding:.2em .45em}
+th{background:#ddd;font-weight:600}td.cell{text-align:center;min-width:4.5em;line-height:1.15}
+td.linked{background:#d0d0d0}td.unlinked{background:#fff}td.untested{background:#f3f3f3;color:#555}
+td.flip{border:3px solid #000}.sym{font-size:1.25em}.p{font-size:.78em;display:block}
+td.num{text-align:right}
+"""
+
+
+def _html(hist: History) -> str:
+    """Self-contained page: the edge-by-night grid and the summary table, every string escaped."""
+    e = html.escape
+    t = hist.table
+    symbols = {_LINKED: ("\u25cf", "linked"), _UNLINKED: ("\u25cb", "unlinked"),
+               _UNTESTED: ("\u2013", "untested")}
+    head = "".join(f"<th>{e(n)}</th>" for n in hist.nights)
+    rows = []
+    for r in t.to_dict("records"):
+        cells = []
+        for i, (night, mark) in enumerate(zip(hist.nights, r["pattern"])):
+            sym, cls = symbols[mark]
+            prev = r["pattern"][i - 1] if i else mark
+            flip = prev != mark and _UNTESTED not in (prev, mark)
+            sign = ("+" if mark == _LINKED else "\u2212") if flip else ""
+            p = _fmt(r[f"pvalue_{night}"])
+            title = f"{r['var_a']} -- {r['var_b']} on {night}: {cls}" + (f", p = {p}" if p else "")
+            cells.append(
+                f"<td class='cell {cls}{' flip' if flip else ''}' title='{e(title)}'>"
+                f"<span class='sym'>{e(sign)}{sym}</span><span class='p'>{e(p)}</span></td>"
+            )
+        rows.append(
+            f"<tr><th scope='row'>{e(r['var_a'])} &ndash; {e(r['var_b'])}</th>{''.join(cells)}"
+            f"<td class='num'>{r['nights_present']}/{r['nights']}</td><td>{e(r['first_seen'])}</td>"
+            f"<td>{e(r['last_seen'])}</td><td>{e(r['changes'])}</td></tr>"
+        )
+    title = f"Link history, {hist.nights[0]} to {hist.nights[-1]}" if hist.nights else "Link history"
+    return "".join([
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        f"<title>{e(title)}</title><style>{_CSS}</style></head><body><h1>{e(title)}</h1>",
+        "<p>Key: \u25cf linked (shaded) &nbsp; \u25cb not linked &nbsp; \u2013 not tested "
+        "(a column was not kept). The small number is the p-value the night's verdict rests on. "
+        "A thick border with + or \u2212 marks the night the link appeared or disappeared.</p>",
+        f"<table><thead><tr><th>edge</th>{head}<th>nights</th><th>first seen</th><th>last seen</th>"
+        f"<th>changes</th></tr></thead><tbody>{''.join(rows)}</tbody></table>",
+        "" if rows else "<p>No links in these runs.</p>",
+        "</body></html>\n",
+    ])
