@@ -1,0 +1,278 @@
+"""Type inference and column rules behind the clean stage (private).
+
+Text columns are processed through their distinct values (`pandas.factorize`), so a million rows
+with a handful of levels cost a handful of string operations.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from typing import Any, Optional
+
+import numpy as np
+import pandas as pd
+
+from ..config import CleanSettings, ColumnSpec
+from ..errors import DataError
+from ._data_common import (
+    FALSE_WORDS, INFINITY_WORDS, MISSING_WORDS, TRUE_WORDS, format_number, integer_like,
+)
+
+OTHER_LEVEL = "(other)"
+HOUR_BANDS = ["night", "morning", "afternoon", "evening"]  # 0-5, 6-11, 12-17, 18-23 h
+WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
+_DATE_LIKE = re.compile(r"^\d{4}-\d{2}-\d{2}([ T]\d{1,2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?$")
+
+
+@dataclass
+class Typed:
+    """One column after type inference (working record, not a result)."""
+
+    name: str
+    kind: str  # numeric | categorical | boolean | timestamp | ignore
+    values: Any  # pandas Series aligned with the ingested rows
+    declared: bool = False
+    bad_rows: Optional[np.ndarray] = None  # positions of rows with text in a numeric column
+    bad_values: list = field(default_factory=list)
+    non_finite: int = 0
+    notes: list = field(default_factory=list)
+
+
+# ----------------------------------------------------------------------------- inference
+
+
+def infer(name: str, series: pd.Series, spec: Optional[ColumnSpec], settings: CleanSettings) -> Typed:
+    """The type of one column (declared in `columns:` or inferred) and its values in that type."""
+    declared = spec.type if spec is not None else None
+    if declared == "ignore":
+        return Typed(name, "ignore", series, declared=True)
+    dtype = series.dtype
+    if pd.api.types.is_bool_dtype(dtype):
+        return _from_bool(name, series, declared)
+    if pd.api.types.is_numeric_dtype(dtype) and not isinstance(dtype, pd.CategoricalDtype):
+        return _from_number(name, series, declared)
+    if pd.api.types.is_datetime64_any_dtype(dtype):
+        return _from_datetime(name, series, declared)
+    return _from_text(name, series, declared, settings)
+
+
+def _from_bool(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+    values = series.astype("boolean")
+    if declared == "numeric":
+        return Typed(name, "numeric", values.astype("Float64").astype(float), True)
+    if declared == "categorical":
+        text = values.map({True: "true", False: "false"}).astype(object)
+        return Typed(name, "categorical", text.where(values.notna(), None), True)
+    if declared == "timestamp":
+        raise DataError(f"Column `{name}` holds true/false values and cannot be declared a timestamp; "
+                        "fix `columns:`.")
+    return Typed(name, "boolean", values, declared is not None)
+
+
+def _from_number(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+    arr = series.to_numpy(dtype=float, na_value=np.nan)
+    infinite = np.isinf(arr)
+    non_finite = int(infinite.sum())
+    if non_finite:
+        arr = np.where(infinite, np.nan, arr)
+    if declared == "categorical":
+        return Typed(name, "categorical", _number_labels(arr, series.index), True, non_finite=non_finite)
+    if declared == "boolean":
+        ok = np.isnan(arr) | (arr == 0) | (arr == 1)
+        if not ok.all():
+            raise DataError(f"Column `{name}` is declared boolean but holds numbers other than 0 and 1 "
+                            f"(e.g. {format_number(arr[~ok][0])}); fix `columns:` or the extract.")
+        out = pd.array(np.where(np.isnan(arr), pd.NA, arr == 1), dtype="boolean")
+        return Typed(name, "boolean", pd.Series(out, index=series.index), True, non_finite=non_finite)
+    if declared == "timestamp":
+        raise DataError(f"Column `{name}` holds numbers and cannot be declared a timestamp; "
+                        "fix `columns:` or write the times as ISO 8601 text.")
+    typed = Typed(name, "numeric", pd.Series(arr, index=series.index), declared is not None)
+    typed.non_finite = non_finite
+    return typed
+
+
+def _from_datetime(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+    if declared == "numeric":
+        naive = series.dt.tz_convert(None) if getattr(series.dt, "tz", None) is not None else series
+        stamps = naive.to_numpy(dtype="datetime64[ns]")
+        seconds = np.where(np.isnat(stamps), np.nan, stamps.astype("int64") / 1e9)
+        return Typed(name, "numeric", pd.Series(seconds, index=series.index), True)
+    if declared == "categorical":
+        text = series.astype(str).astype(object).where(series.notna(), None)
+        return Typed(name, "categorical", text, True)
+    if declared == "boolean":
+        raise DataError(f"Column `{name}` holds timestamps and cannot be declared boolean; fix `columns:`.")
+    return Typed(name, "timestamp", series, declared is not None)
+
+
+def _number_labels(arr: np.ndarray, index: pd.Index) -> pd.Series:
+    codes, uniques = pd.factorize(arr, use_na_sentinel=True)
+    labels = np.array([format_number(float(u)) for u in uniques] + [None], dtype=object)
+    return pd.Series(labels[codes], index=index, dtype=object)
+
+
+def _from_text(name: str, series: pd.Series, declared: Optional[str], settings: CleanSettings) -> Typed:
+    codes, uniques = pd.factorize(series.astype(object), use_na_sentinel=True)
+    text = pd.Index(uniques, dtype=object).map(str).str.strip()
+    low = text.str.lower()
+    infinite = np.asarray(low.isin(INFINITY_WORDS), dtype=bool)
+    missing = np.asarray(low.isin(MISSING_WORDS), dtype=bool) | infinite
+    numbers = pd.to_numeric(pd.Series(np.asarray(text, dtype=object)), errors="coerce").to_numpy(float)
+    parsed_inf = np.isinf(numbers) & ~missing
+    infinite |= parsed_inf
+    missing |= parsed_inf
+    parsed = ~missing & np.isfinite(numbers)
+    is_text = ~missing & ~parsed
+    counts = np.bincount(codes[codes >= 0], minlength=len(text))
+    n_present = int(counts[~missing].sum())
+    n_text = int(counts[is_text].sum())
+    non_finite = int(counts[infinite].sum())
+    present_low = set(low[~missing])
+
+    kind = declared
+    if kind is None:
+        if n_present == 0:
+            kind = "categorical"
+        elif n_text == 0:
+            kind = "numeric"
+        elif present_low <= (TRUE_WORDS | FALSE_WORDS):
+            kind = "boolean"
+        elif n_text <= settings.numeric_text_max_fraction * n_present:
+            kind = "numeric"
+        elif _looks_like_time(text[~missing]):
+            kind = "timestamp"
+        else:
+            kind = "categorical"
+
+    if kind == "numeric":
+        per_unique = np.where(parsed, numbers, np.nan)
+        values = pd.Series(_take(per_unique, codes, np.nan), index=series.index)
+        typed = Typed(name, "numeric", values, declared is not None, non_finite=non_finite)
+        if n_text:
+            rows = np.flatnonzero(is_text[codes] & (codes >= 0))
+            typed.bad_rows = rows
+            typed.bad_values = [str(text[codes[r]]) for r in rows[:3]]
+        if n_present:
+            typed.notes.append("numbers stored as text converted")
+        return typed
+    if kind == "boolean":
+        truth = low.isin(TRUE_WORDS | {"1", "1.0"})
+        falsity = low.isin(FALSE_WORDS | {"0", "0.0"})
+        bad = ~missing & ~np.asarray(truth | falsity, dtype=bool)
+        if bad.any():
+            shown = ", ".join(f"`{v}`" for v in list(text[bad])[:3])
+            raise DataError(f"Column `{name}` is declared boolean but holds {shown}; use true/false, "
+                            "yes/no or 1/0, or change its `type` in `columns:`.")
+        per_unique = np.array([True if t else False for t in truth] + [pd.NA], dtype=object)
+        per_unique[:-1][missing] = pd.NA
+        values = pd.Series(pd.array(per_unique[codes], dtype="boolean"), index=series.index)
+        return Typed(name, "boolean", values, declared is not None, non_finite=non_finite)
+    if kind == "timestamp":
+        stamps = pd.to_datetime(pd.Series(np.asarray(text, dtype=object)).where(~missing, None),
+                                errors="coerce", format="ISO8601")
+        unparsed = ~missing & stamps.isna().to_numpy()
+        if unparsed.any():
+            rows = np.flatnonzero(unparsed[codes] & (codes >= 0))
+            raise DataError(
+                f"Column `{name}` has {len(rows)} values that are not timestamps (e.g. "
+                f"`{text[codes[rows[0]]]}` at row {rows[0] + 1}); write ISO 8601 times or change its "
+                "`type` in `columns:`."
+            )
+        values = pd.Series(stamps.to_numpy()[np.where(codes >= 0, codes, 0)], index=series.index)
+        values[codes < 0] = pd.NaT
+        return Typed(name, "timestamp", values, declared is not None)
+    labels = np.asarray(text, dtype=object).copy()
+    labels[missing] = None
+    values = pd.Series(_take(labels, codes, None), index=series.index, dtype=object)
+    return Typed(name, "categorical", values, declared is not None, non_finite=non_finite)
+
+
+def _take(per_unique: np.ndarray, codes: np.ndarray, fill: Any) -> np.ndarray:
+    out = np.append(per_unique, np.array([fill], dtype=per_unique.dtype))
+    return out[np.where(codes >= 0, codes, len(per_unique))]
+
+
+def _looks_like_time(present: pd.Index) -> bool:
+    sample = list(present[:200])
+    return bool(sample) and all(_DATE_LIKE.match(str(v)) for v in sample)
+
+
+# ----------------------------------------------------------------------------- derived columns
+
+
+def time_features(typed: Typed) -> list[tuple[Typed, list[str]]]:
+    """Hour band and weekday columns derived from a timestamp column, with their level orders."""
+    stamps = pd.Series(typed.values)
+    present = stamps.notna().to_numpy()
+    hours = stamps.dt.hour.to_numpy(dtype=float, na_value=np.nan)
+    band = np.array(HOUR_BANDS + [None], dtype=object)
+    band_idx = np.where(present, (np.nan_to_num(hours) // 6).astype(int), len(HOUR_BANDS))
+    days = stamps.dt.dayofweek.to_numpy(dtype=float, na_value=np.nan)
+    day = np.array(WEEKDAYS + [None], dtype=object)
+    day_idx = np.where(present, np.nan_to_num(days).astype(int), len(WEEKDAYS))
+    idx = stamps.index
+    return [
+        (Typed(f"{typed.name}_hour_band", "categorical", pd.Series(band[band_idx], index=idx, dtype=object),
+               notes=[f"derived from `{typed.name}`: night 0-6 h, morning 6-12 h, afternoon 12-18 h, "
+                      "evening 18-24 h"]), HOUR_BANDS),
+        (Typed(f"{typed.name}_weekday", "categorical", pd.Series(day[day_idx], index=idx, dtype=object),
+               notes=[f"derived from `{typed.name}`: day of the week"]), WEEKDAYS),
+    ]
+
+
+# ----------------------------------------------------------------------------- column rules
+
+
+def decide(
+    typed: Typed, values: pd.Series, settings: CleanSettings, has_features: bool
+) -> tuple[Optional[str], pd.Series, dict[str, Any]]:
+    """The drop reason (None: kept), the final values and the facts for the column summary."""
+    n = len(values)
+    missing = int(values.isna().sum())
+    try:
+        distinct = int(values.nunique(dropna=True))
+    except TypeError:
+        distinct = int(values.astype(str).nunique(dropna=True))
+    facts: dict[str, Any] = {"missing": missing, "distinct": distinct, "pooled_levels": 0}
+    if typed.kind == "ignore":
+        return "declared `type: ignore` in `columns:`", values, facts
+    if typed.kind == "timestamp":
+        derived = "; hour band and weekday were derived from it" if has_features else (
+            "; set `clean.timestamp_features: true` to derive hour band and weekday")
+        return ("timestamp column: its values mark moments rather than states, so it is not "
+                "tested" + derived), values, facts
+    if missing == n:
+        return "entirely missing", values, facts
+    if missing / n > settings.max_missing_fraction:
+        return (f"{missing / n:.0%} of values missing, above `clean.max_missing_fraction` = "
+                f"{settings.max_missing_fraction:g}"), values, facts
+    if distinct == 1 and settings.drop_constant:
+        only = values.dropna().iloc[0]
+        shown = format_number(float(only)) if typed.kind == "numeric" else str(only)
+        return f"one value only (`{shown}`): a constant cannot be linked to anything", values, facts
+    if not typed.declared and _id_like(typed.kind, values, distinct, n - missing, settings):
+        return (f"looks like an identifier: {distinct} distinct values in {n - missing} rows "
+                f"(ratio >= `clean.id_unique_ratio` = {settings.id_unique_ratio:g})"), values, facts
+    if typed.kind == "categorical" and settings.rare_level_min_count > 0:
+        counts = values.value_counts(dropna=True)
+        rare = counts.index[counts < settings.rare_level_min_count]
+        if len(rare):
+            values = values.where(~values.isin(rare) | values.isna(), OTHER_LEVEL).astype(object)
+            values = values.where(values.notna(), None)
+            facts["pooled_levels"] = int(len(rare))
+            typed.notes.append(f"{len(rare)} levels seen fewer than {settings.rare_level_min_count} "
+                               f"times pooled into `{OTHER_LEVEL}`")
+            facts["distinct"] = int(values.nunique(dropna=True))
+            if facts["distinct"] == 1 and settings.drop_constant:
+                return f"one value only after pooling rare levels into `{OTHER_LEVEL}`", values, facts
+    return None, values, facts
+
+
+def _id_like(kind: str, values: pd.Series, distinct: int, present: int, settings: CleanSettings) -> bool:
+    if kind == "boolean" or distinct < 2 or present == 0:
+        return False
+    if kind == "numeric" and not integer_like(values.to_numpy(dtype=float)):
+        return False  # continuous measurements are all distinct; they get binned, not dropped
+    return distinct / present >= settings.id_unique_ratio
