@@ -47,6 +47,9 @@ class InputSettings(_Section):
     null_values: list[str] = Field(
         default_factory=lambda: ["", "NA", "N/A", "NaN", "nan", "null", "NULL", "None", "-"]
     )
+    # Lines whose bytes do not decode with `encoding`: "quarantine" sets them aside (with the reason)
+    # while they are a small minority of the file, "refuse" stops at the first one.
+    encoding_errors: Literal["quarantine", "refuse"] = "quarantine"
 
 
 class CleanSettings(_Section):
@@ -60,6 +63,9 @@ class CleanSettings(_Section):
     text_in_numeric: Literal["quarantine", "refuse", "categorical"] = "quarantine"
     min_rows: int = Field(default=20, ge=1)
     timestamp_features: bool = False
+    # A text column whose non-missing values all parse as numbers except at most this fraction is a
+    # numeric column holding stray text (handled per `text_in_numeric`); above it, it is categorical.
+    numeric_text_max_fraction: float = Field(default=0.1, ge=0.0, lt=1.0)
 
 
 class DiscretiseSettings(_Section):
