@@ -1,0 +1,220 @@
+"""File exports for review and for other tools: evidence.csv, GraphML and node-link JSON.
+
+The CSV is meant to be opened in a spreadsheet. A cell that a spreadsheet would run as a formula
+(text starting with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return) gets a leading apostrophe;
+a cell that is entirely a number stays as it is. `read_review_file` reads a reviewed copy back and
+removes those apostrophes.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import re
+from pathlib import Path
+from typing import Any, Sequence, Union
+
+import networkx as nx
+import pandas as pd
+
+from ..errors import DataError
+from ._common import direction, plain
+
+__all__ = [
+    "CSV_COLUMNS",
+    "evidence_csv",
+    "neutralise",
+    "unneutralise",
+    "read_review_file",
+    "build_nx_graph",
+    "graphml_bytes",
+    "node_link_json",
+]
+
+# evidence.parquet column -> readable header in evidence.csv (order of the CSV)
+CSV_COLUMNS: dict[str, str] = {
+    "var_a": "signal A",
+    "var_b": "signal B",
+    "linked": "linked",
+    "orientation": "direction",
+    "pvalue": "p-value",
+    "qvalue": "q-value",
+    "given": "conditioning set",
+    "level": "conditioning set size",
+    "statistic": "statistic",
+    "dof": "dof",
+    "n": "rows used",
+    "method": "test",
+    "n_tests": "tests run",
+    "max_given_size": "largest set tried",
+    "cmi_bits": "effect (CMI bits)",
+    "cramers_v": "Cramer's V",
+    "stability": "stability",
+    "sparse": "sparse",
+    "degenerate": "degenerate",
+    "policy_applied": "sparse policy applied",
+    "knowledge": "knowledge",
+    "data_disagrees": "data disagree",
+    "flags": "flags",
+    "explanation": "explanation",
+}
+_LEVEL_HEADERS = ("levels of A", "levels of B")
+_REVIEW_HEADERS = ("verdict", "comment")
+_DANGEROUS = ("=", "+", "-", "@", "\t", "\r")
+_NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
+_BOOL_COLUMNS = {"linked", "sparse", "degenerate", "policy_applied", "data_disagrees"}
+
+
+def neutralise(cell: str) -> str:
+    """Prefix an apostrophe to text a spreadsheet would treat as a formula (plain numbers stay)."""
+    if not cell:
+        return cell
+    if cell[0] in _DANGEROUS and not _NUMBER.match(cell):
+        return "'" + cell
+    if cell[0] == "'":  # keep the round trip exact for text that already starts with one
+        return "'" + cell
+    return cell
+
+
+def unneutralise(cell: str) -> str:
+    """Undo `neutralise`."""
+    if len(cell) >= 2 and cell[0] == "'" and (cell[1] in _DANGEROUS or cell[1] == "'"):
+        return cell[1:]
+    return cell
+
+
+def _cell(column: str, value: Any) -> str:
+    value = plain(value)
+    if value is None:
+        return ""
+    if column in _BOOL_COLUMNS or isinstance(value, bool):
+        return "yes" if bool(value) else "no"
+    if isinstance(value, float):
+        return repr(value) if not value.is_integer() or abs(value) >= 1e16 else str(int(value))
+    return str(value)
+
+
+def evidence_csv(evidence: pd.DataFrame, levels: dict[str, Sequence[str]]) -> bytes:
+    """The evidence table for spreadsheet review, ending with `verdict` and `comment` columns.
+
+    Those two are empty unless an earlier review (columns ``review_verdict`` / ``review_comment``)
+    is carried over.
+    """
+    present = [c for c in CSV_COLUMNS if c in evidence.columns]
+    header = [CSV_COLUMNS[c] for c in present] + list(_LEVEL_HEADERS) + list(_REVIEW_HEADERS)
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
+    writer.writerow([neutralise(h) for h in header])
+    for _, row in evidence.iterrows():
+        cells = [_cell(c, row[c]) for c in present]
+        cells += [" | ".join(map(str, levels.get(str(row[v]), []))) for v in ("var_a", "var_b")]
+        cells += [str(row.get("review_verdict", "") or ""), str(row.get("review_comment", "") or "")]
+        writer.writerow([neutralise(c) for c in cells])
+    return buf.getvalue().encode("utf-8")
+
+
+def read_review_file(path: Union[str, Path]) -> pd.DataFrame:
+    """Read a reviewed evidence.csv back: columns ``var_a, var_b, verdict, comment`` (strings).
+
+    Parameters
+    ----------
+    path : str or Path
+        A copy of ``evidence.csv`` with the ``verdict`` and ``comment`` columns filled in
+        (headers ``signal A`` / ``signal B``, or ``var_a`` / ``var_b``).
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per pair in the file, empty strings where the reviewer wrote nothing, with the
+        apostrophes added against formula injection removed.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "r.csv"
+    >>> _ = p.write_text("signal A,signal B,verdict,comment\\nx,y,keep,'=looks fine\\n")
+    >>> read_review_file(p).to_dict("records")
+    [{'var_a': 'x', 'var_b': 'y', 'verdict': 'keep', 'comment': '=looks fine'}]
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise DataError(f"Review file `{p}` does not exist; check `knowledge.review_file`.")
+    try:
+        frame = pd.read_csv(p, dtype=str, keep_default_na=False, encoding="utf-8-sig")
+    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as err:
+        raise DataError(
+            f"Review file `{p}` is not a readable CSV ({type(err).__name__}); save it as CSV (UTF-8)."
+        ) from err
+    frame.columns = [unneutralise(str(c)).strip() for c in frame.columns]
+    rename = {"signal A": "var_a", "signal B": "var_b"}
+    frame = frame.rename(columns=rename)
+    missing = [c for c in ("var_a", "var_b", "verdict", "comment") if c not in frame.columns]
+    if missing:
+        raise DataError(
+            f"Review file `{p}` lacks column(s) {', '.join(missing)}; keep the `signal A`, "
+            "`signal B`, `verdict` and `comment` headers of evidence.csv."
+        )
+    out = frame[["var_a", "var_b", "verdict", "comment"]].copy()
+    for col in out.columns:
+        out[col] = out[col].map(lambda s: unneutralise(str(s))).astype(object)
+    return out.reset_index(drop=True)
+
+
+def _attr(value: Any) -> Any:
+    """A GraphML-compatible attribute value (str, int, float or bool; missing as NaN or '')."""
+    value = plain(value)
+    if value is None:
+        return float("nan")
+    if isinstance(value, (bool, int, float, str)):
+        return value
+    return str(value)
+
+
+_EDGE_ATTRS = (
+    "pvalue", "qvalue", "statistic", "dof", "given", "n", "level", "method", "n_tests", "cmi_bits",
+    "cramers_v", "stability", "sparse", "degenerate", "policy_applied", "knowledge",
+    "data_disagrees", "orientation", "flags", "explanation",
+)
+
+
+def build_nx_graph(
+    evidence: pd.DataFrame, names: Sequence[str], levels: dict[str, Sequence[str]]
+) -> nx.Graph:
+    """The linked pairs as a networkx Graph, evidence on the edges, levels on the nodes."""
+    g = nx.Graph()
+    for name in names:
+        g.add_node(str(name), levels=" | ".join(map(str, levels.get(name, []))))
+    for _, row in evidence.iterrows():
+        if not bool(row["linked"]):
+            continue
+        attrs = {k: _attr(row[k]) for k in _EDGE_ATTRS if k in evidence.columns}
+        for k in ("orientation", "given", "method", "knowledge", "flags", "explanation"):
+            if k in attrs and isinstance(attrs[k], float) and math.isnan(attrs[k]):
+                attrs[k] = ""
+        head = direction(row)
+        attrs["directed"] = head is not None
+        attrs["tail"] = head[0] if head else ""
+        attrs["head"] = head[1] if head else ""
+        g.add_edge(str(row["var_a"]), str(row["var_b"]), **attrs)
+    return g
+
+
+def graphml_bytes(g: nx.Graph) -> bytes:
+    """The graph as GraphML."""
+    return ("\n".join(nx.generate_graphml(g, prettyprint=True)) + "\n").encode("utf-8")
+
+
+def _json_safe(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {k: _json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, list):
+        return [_json_safe(v) for v in obj]
+    return plain(obj)
+
+
+def node_link_json(g: nx.Graph) -> bytes:
+    """The graph as node-link JSON (networkx layout, ``edges`` key), NaN written as null."""
+    data = _json_safe(nx.node_link_data(g, edges="edges"))
+    return (json.dumps(data, indent=2, sort_keys=True, allow_nan=False) + "\n").encode("utf-8")

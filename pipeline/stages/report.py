@@ -1,0 +1,138 @@
+"""Report stage: the graph (DOT, SVG, PNG), the HTML report and the review and exchange files.
+
+Every file is written under a temporary name and renamed into place, so a crash never leaves a half
+file under its final name. The drawing and page building live in the private `pipeline.report`
+package.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Optional
+
+import pandas as pd
+
+from ..errors import DataError
+from ..report import _exports, _graph, _html
+from ..report._common import compare_truth, pair_key, signal_names
+from ..runs import atomic_write_bytes, atomic_write_text
+
+__all__ = ["ReportContext", "run"]
+
+_NEEDED = ("var_a", "var_b", "linked")
+
+
+@dataclass(frozen=True)
+class ReportContext:
+    """What the report says beside the evidence.
+
+    Attributes
+    ----------
+    title : str
+        Page and graph title.
+    summary : dict
+        ``{"input": path, "rows": {"read", "kept", "rejected", "quarantined"}, "dropped" (or
+        "columns_dropped"): {column: reason}, "settings": {...}, "timings": {stage: seconds or
+        {"seconds", "reused"}}}``; the manifest's ``columns.dropped`` and ``stages`` are accepted.
+    levels : dict
+        Signal -> level labels (code order).
+    alpha : float
+        Significance level of the tests.
+    orient : bool
+        Whether the search oriented edges (arrows are drawn only then).
+    truth_edges : list of (str, str) or None
+        A known true graph (the demo); the report then shows it beside the recovered one.
+    review : dict or None
+        Reviewer verdicts per pair, ``{(a, b) or "a|b": {"verdict": ..., "comment": ...}}``; shown
+        in the table and carried into the ``verdict`` / ``comment`` columns of evidence.csv.
+    warnings : list of str
+        Lines shown at the top of the summary.
+    png : bool
+        Also write ``graph.png``.
+    """
+
+    title: str = "edgeproof run"
+    summary: dict[str, Any] = field(default_factory=dict)
+    levels: dict[str, list[str]] = field(default_factory=dict)
+    alpha: float = 0.05
+    orient: bool = False
+    truth_edges: Optional[list[tuple[str, str]]] = None
+    review: Optional[dict[Any, dict[str, str]]] = None
+    warnings: list[str] = field(default_factory=list)
+    png: bool = True
+
+
+def _with_review(evidence: pd.DataFrame, review: Optional[dict[Any, dict[str, str]]]) -> pd.DataFrame:
+    """Add the reviewer's verdict and comment per pair (columns ``review_verdict``, ``review_comment``)."""
+    if not review:
+        return evidence
+    lookup: dict[tuple[str, str], dict[str, str]] = {}
+    for key, entry in review.items():
+        a, b = key if isinstance(key, tuple) else (str(key).split("|", 1) + [""])[:2]
+        lookup[pair_key(str(a), str(b))] = entry or {}
+    out = evidence.copy()
+    found = [lookup.get(pair_key(str(a), str(b)), {}) for a, b in zip(out["var_a"], out["var_b"])]
+    out["review_verdict"] = [str(e.get("verdict", "") or "") for e in found]
+    out["review_comment"] = [str(e.get("comment", "") or "") for e in found]
+    return out
+
+
+def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out_dir: Path) -> dict[str, Path]:
+    """Write the report files of one run into `out_dir`.
+
+    Parameters
+    ----------
+    evidence : pandas.DataFrame
+        One row per unordered pair (the ``evidence.parquet`` columns).
+    tests : pandas.DataFrame
+        Every test run (the ``tests.parquet`` columns).
+    context : ReportContext
+        Title, run summary, level labels and options.
+    out_dir : Path
+        The run folder.
+
+    Returns
+    -------
+    dict
+        File name -> path of every file written: ``evidence.csv``, ``graph.dot``, ``graph.svg``,
+        ``graph.png`` (unless ``context.png`` is False), ``graph.graphml``, ``graph.json`` and
+        ``report.html``.
+
+    Examples
+    --------
+    >>> import tempfile, pandas as pd
+    >>> ev = pd.DataFrame({"var_a": ["x"], "var_b": ["y"], "linked": [True], "pvalue": [0.001],
+    ...                    "cmi_bits": [0.2], "given": [""], "n_tests": [1]})
+    >>> files = run(ev, ev.iloc[:0], ReportContext(levels={"x": ["0", "1"], "y": ["a", "b"]},
+    ...             png=False), Path(tempfile.mkdtemp()))
+    >>> sorted(files)[:3]
+    ['evidence.csv', 'graph.dot', 'graph.graphml']
+    """
+    missing = [c for c in _NEEDED if c not in evidence.columns]
+    if missing:
+        raise DataError(f"Evidence table lacks column(s) {', '.join(missing)}; pass the skeleton stage's evidence.")
+    out = Path(out_dir)
+    ev = _with_review(evidence.reset_index(drop=True), context.review)
+    names = signal_names(ev, context.levels)
+    graph = _graph.build_graph(ev, names, context.levels, context.alpha, context.orient)
+    svg = _graph.render(graph, "svg", "graph.svg")
+    files = {
+        "graph.dot": atomic_write_text(out / "graph.dot", graph.source),
+        "graph.svg": atomic_write_bytes(out / "graph.svg", svg),
+    }
+    if context.png:
+        files["graph.png"] = atomic_write_bytes(out / "graph.png", _graph.render(graph, "png", "graph.png"))
+    files["evidence.csv"] = atomic_write_bytes(out / "evidence.csv", _exports.evidence_csv(ev, context.levels))
+    nxg = _exports.build_nx_graph(ev, names, context.levels)
+    files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", _exports.graphml_bytes(nxg))
+    files["graph.json"] = atomic_write_bytes(out / "graph.json", _exports.node_link_json(nxg))
+    truth_svg, split = None, None
+    if context.truth_edges is not None:
+        linked = [(str(a), str(b)) for a, b, k in zip(ev["var_a"], ev["var_b"], ev["linked"]) if bool(k)]
+        split = compare_truth(linked, context.truth_edges)
+        known = _graph.build_truth_graph(names, context.levels, context.truth_edges, linked)
+        truth_svg = _html.inline_svg(_graph.render(known, "svg", "the known graph"), "known-")
+    page = _html.build_html(context, ev, tests, names, _html.inline_svg(svg), truth_svg, split)
+    files["report.html"] = atomic_write_text(out / "report.html", page)
+    return files

@@ -1,0 +1,344 @@
+"""Property tests of the report stage on small hand-built tables (synthetic data: properties only)."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipeline.errors import EdgeproofError
+from pipeline.report import read_review_file
+from pipeline.report._exports import neutralise, unneutralise
+from pipeline.stages.report import ReportContext, run
+
+ROOT = Path(__file__).resolve().parents[1]
+EVIL = "<img src=x onerror=alert(1)>"
+QUOTY = 'say "hi" \\ back\\'
+FILES = {"evidence.csv", "graph.dot", "graph.svg", "graph.png", "graph.graphml", "graph.json", "report.html"}
+
+pytestmark = pytest.mark.skipif(shutil.which("dot") is None, reason="Graphviz `dot` is not installed")
+
+
+def _evidence() -> pd.DataFrame:
+    rows = [
+        # var_a, var_b, linked, p, given, n_tests, cmi, q, sparse, knowledge, orientation, flags
+        (EVIL, "alpha", True, 0.003, "beta;" + QUOTY, 6, 0.08, 0.004, False, "", f"{EVIL} -> alpha", ""),
+        (EVIL, "beta", False, 0.41, "alpha", 3, 0.001, np.nan, False, "", "", ""),
+        (EVIL, QUOTY, True, 0.2, "", 1, 0.01, 0.2, True, "", "ambiguous", "sparse"),
+        ("alpha", "beta", True, 1e-12, "", 4, 0.35, 1e-11, False, "required", "alpha -- beta", "required"),
+        ("alpha", QUOTY, False, 0.7, EVIL, 2, 0.0004, np.nan, False, "", "", ""),
+        ("beta", QUOTY, True, 0.01, "alpha", 3, 0.05, 0.012, False, "", "beta -> " + QUOTY, ""),
+    ]
+    cols = ["var_a", "var_b", "linked", "pvalue", "given", "n_tests", "cmi_bits", "qvalue", "sparse",
+            "knowledge", "orientation", "flags"]
+    ev = pd.DataFrame(rows, columns=cols)
+    ev["statistic"] = 12.5
+    ev["dof"] = 3
+    ev["n"] = 400
+    ev["level"] = [2, 1, 0, 0, 1, 1]
+    ev["method"] = "g"
+    ev["max_given_size"] = 2
+    ev["cramers_v"] = 0.2
+    ev["degenerate"] = False
+    ev["policy_applied"] = False
+    ev["data_disagrees"] = False
+    ev["stability"] = np.nan
+    ev["explanation"] = ""
+    return ev
+
+
+def _tests() -> pd.DataFrame:
+    rows = []
+    for i, (a, b, given, p) in enumerate([
+        (EVIL, "alpha", "", 1e-5), ("alpha", EVIL, "beta", 0.001), (EVIL, "alpha", "beta;" + QUOTY, 0.003),
+        (EVIL, "beta", "", 0.02), (EVIL, "beta", "alpha", 0.41), ("alpha", "beta", "", 1e-12),
+    ]):
+        rows.append({"test_id": i, "level": len([g for g in given.split(";") if g]), "var_a": a, "var_b": b,
+                     "given": given, "given_size": len([g for g in given.split(";") if g]),
+                     "statistic": 3.0, "dof": 1, "pvalue": p, "n": 400, "method": "g", "cmi_bits": 0.01,
+                     "sparse": False, "degenerate": False, "independent": p > 0.05, "policy": "flag"})
+    return pd.DataFrame(rows)
+
+
+def _context(**over) -> ReportContext:
+    base = dict(
+        title="Synthetic <run> & co",
+        summary={"input": "/data/x.csv", "rows": {"read": 410, "kept": 400, "rejected": 4, "quarantined": 6},
+                 "columns_dropped": {"row_id": "unique identifier", EVIL: "constant"},
+                 "settings": {"test": {"alpha": 0.05, "method": "g"}}, "timings": {"ingest": 0.12}},
+        levels={EVIL: ["=1+2", "plain"], "alpha": ["[0, 1)", "[1, 2]"], "beta": ["-3", "-x", "@home"],
+                QUOTY: ["yes", "no"]},
+        alpha=0.05,
+        orient=True,
+        truth_edges=[(EVIL, "alpha"), ("alpha", "beta"), ("beta", "gamma")],
+        warnings=[f"column {EVIL} looks odd"],
+    )
+    base.update(over)
+    return ReportContext(**base)
+
+
+@pytest.fixture(scope="module")
+def report_dir(tmp_path_factory):
+    out = tmp_path_factory.mktemp("report")
+    files = run(_evidence(), _tests(), _context(), out)
+    return out, files
+
+
+def _embedded(html_text: str) -> dict:
+    m = re.search(r'<script type="application/json" id="edgeproof-data">(.*?)</script>', html_text, re.S)
+    assert m is not None
+    return json.loads(m.group(1))
+
+
+def test_every_file_is_written(report_dir):
+    """The stage writes the seven report files, all non-empty, and leaves no temporary files."""
+    out, files = report_dir
+    assert set(files) == FILES
+    for name, path in files.items():
+        assert path == out / name and path.stat().st_size > 0
+    assert not [p for p in out.iterdir() if p.name.startswith(".") or p.suffix == ".tmp"]
+    assert (out / "graph.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_html_escapes_hostile_names(report_dir):
+    """A column named like an img tag never appears raw in report.html; its escaped forms do."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    assert "<img" not in text
+    assert "&lt;img src=x onerror=alert(1)&gt;" in text  # server-side html.escape and SVG text
+    assert "\\u003cimg src=x onerror=alert(1)\\u003e" in text  # inside the JSON block
+    assert "=1+2" in text and "Synthetic &lt;run&gt; &amp; co" in text
+
+
+def test_html_has_no_external_references(report_dir):
+    """report.html loads nothing from elsewhere: no remote src, no link element, no @import, no url()."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    for needle in ('src="http', "src='http", "<link", "@import", "url(", "<iframe", "<img"):
+        assert needle not in text
+    assert re.search(r"<script[^>]+src=", text) is None
+    assert "<svg" in text and "<?xml" not in text and "<!DOCTYPE svg" not in text
+
+
+def test_embedded_data_one_row_per_pair_and_all_tests(report_dir):
+    """The JSON block has one record per evidence pair and every test, matched in either order."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    data = _embedded(text)
+    ev = _evidence()
+    assert len(data["pairs"]) == len(ev)
+    assert [(p["a"], p["b"]) for p in data["pairs"]] == list(zip(ev["var_a"], ev["var_b"]))
+    assert sum(len(v) for v in data["tests"].values()) == len(_tests())
+    assert len(data["tests"]["0"]) == 3  # EVIL-alpha tests, one written as (alpha, EVIL)
+    assert data["tests"]["0"][2]["given_text"] == "{beta, " + QUOTY + "}"
+    reading = data["pairs"][1]["reading"]
+    assert reading.startswith("separated: independent given {alpha} (p = 0.410")
+
+
+def test_dot_escapes_labels_and_renders(report_dir):
+    """DOT labels carry names only as escaped text (no raw tag), and Graphviz accepts the file."""
+    dot = (report_dir[0] / "graph.dot").read_text(encoding="utf-8")
+    assert "<img" not in dot
+    assert "label=<&lt;img src=x onerror=alert(1)&gt;>" in dot
+    assert "&quot;hi&quot;" in dot
+    done = subprocess.run(["dot", "-Tsvg"], input=dot.encode(), capture_output=True, check=False)
+    assert done.returncode == 0, done.stderr
+    svg = (report_dir[0] / "graph.svg").read_text(encoding="utf-8")
+    assert "<img" not in svg and "&lt;img src=x onerror=alert(1)&gt;" in svg
+
+
+def test_edge_styles_distinguish_weak_sparse_and_required(report_dir):
+    """Sparse edges are dotted, weak ones dashed, required ones bold double, oriented ones have arrows."""
+    dot = (report_dir[0] / "graph.dot").read_text(encoding="utf-8")
+    edges = [line for line in dot.splitlines() if " -> " in line and "[" in line and "label=<<TABLE" not in line]
+    assert len(edges) == 4  # the four linked pairs
+    by_tip = {re.search(r"tooltip=\"(.*?) \u2014", e).group(1): e for e in edges}
+    assert "style=dotted" in by_tip["&lt;img src=x onerror=alert(1)&gt;"] or any(
+        "style=dotted" in e and "sparse" in e for e in edges)
+    required = next(e for e in edges if "required" in e)
+    assert "style=bold" in required and ":invis:" in required and "dir=none" in required
+    oriented = [e for e in edges if "dir=forward" in e]
+    assert len(oriented) == 2
+    assert "Legend" in dot
+
+
+def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
+    """evidence.csv has readable headers, apostrophes before formula-like text, and round-trips a review."""
+    raw = (report_dir[0] / "evidence.csv").read_text(encoding="utf-8")
+    rows = list(csv.reader(io.StringIO(raw)))
+    header = rows[0]
+    assert header[:3] == ["signal A", "signal B", "linked"]
+    assert header[-2:] == ["verdict", "comment"]
+    assert all(r[-1] == "" and r[-2] == "" for r in rows[1:])
+    col = {h: i for i, h in enumerate(header)}
+    first = rows[1]
+    assert first[col["levels of A"]] == "'=1+2 | plain"
+    beta = next(r for r in rows[1:] if r[col["signal A"]] == "beta")
+    assert beta[col["levels of A"]] == "'-3 | -x | @home"
+    for r in rows[1:]:
+        for cell in r:
+            assert not cell or cell[0] not in "=+-@\t\r" or re.fullmatch(r"-?[\d.]+(e-?\d+)?", cell)
+    assert len(rows) == 1 + len(_evidence())
+    # a reviewer fills in two cells, one of them formula-like
+    rows[1][-2], rows[1][-1] = "confirm", neutralise("=SUM(A1) is what I think")
+    buf = io.StringIO()
+    csv.writer(buf).writerows(rows)
+    path = tmp_path / "reviewed.csv"
+    path.write_text(buf.getvalue(), encoding="utf-8")
+    review = read_review_file(path)
+    assert list(review.columns) == ["var_a", "var_b", "verdict", "comment"]
+    assert review.loc[0].to_dict() == {"var_a": EVIL, "var_b": "alpha", "verdict": "confirm",
+                                       "comment": "=SUM(A1) is what I think"}
+    assert len(review) == len(_evidence())
+
+
+@pytest.mark.parametrize("cell", ["=1+2", "+x", "-x", "@x", "\tx", "\rx", "'=x", "'plain", "-1.5", "plain", ""])
+def test_neutralise_round_trip(cell):
+    """Neutralising then un-neutralising gives the cell back; plain numbers are left as they are."""
+    out = neutralise(cell)
+    assert unneutralise(out) == cell
+    if cell[:1] in ("=", "+", "@", "\t", "\r") or cell in ("-x",):
+        assert out.startswith("'")
+    if cell == "-1.5":
+        assert out == "-1.5"
+
+
+def test_graphml_and_json_load_with_networkx(report_dir):
+    """graph.graphml and graph.json load back into networkx with the evidence on the edges."""
+    g = nx.read_graphml(report_dir[0] / "graph.graphml")
+    assert g.number_of_nodes() == 4 and g.number_of_edges() == 4
+    attrs = g.edges["alpha", "beta"]
+    assert attrs["pvalue"] == pytest.approx(1e-12) and attrs["knowledge"] == "required"
+    assert attrs["directed"] is False
+    data = json.loads((report_dir[0] / "graph.json").read_text(encoding="utf-8"))
+    h = nx.node_link_graph(data, edges="edges")
+    assert sorted(map(sorted, h.edges())) == sorted(map(sorted, g.edges()))
+    tip = [d for _, _, d in h.edges(data=True) if d["directed"]]
+    assert {(d["tail"], d["head"]) for d in tip} == {(EVIL, "alpha"), ("beta", QUOTY)}
+
+
+def test_truth_comparison_counts(report_dir):
+    """With a known graph the page shows recovered, missed and extra counts (1 and 2 of 3; 2 extra)."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    assert "<b>2</b> of 3 true links recovered, <b>1</b> missed, <b>2</b> extra" in text
+    assert text.count("<svg") == 2
+
+
+def test_missing_dot_is_a_clear_error(tmp_path, monkeypatch):
+    """Without Graphviz on PATH the stage raises an EdgeproofError that says how to install it."""
+    monkeypatch.setenv("PATH", str(tmp_path / "empty"))
+    with pytest.raises(EdgeproofError, match=r"apt-get install graphviz"):
+        run(_evidence(), _tests(), _context(), tmp_path / "out")
+    assert not (tmp_path / "out" / "report.html").exists()
+
+
+def test_no_png_when_switched_off_and_missing_columns_refused(tmp_path):
+    """png=False skips graph.png; an evidence table without var_a is refused with a DataError."""
+    files = run(_evidence(), _tests(), _context(png=False, truth_edges=None), tmp_path)
+    assert "graph.png" not in files and not (tmp_path / "graph.png").exists()
+    with pytest.raises(ValueError, match="var_a"):
+        run(_evidence().drop(columns=["var_a"]), _tests(), _context(), tmp_path)
+
+
+def test_forty_signals_use_a_spring_layout(tmp_path):
+    """A 40-signal graph is laid out with neato (overlap removed) and renders to SVG."""
+    rng = np.random.default_rng(0)
+    names = [f"signal_{i:02d}" for i in range(40)]
+    rows = []
+    for i in range(40):
+        for j in range(i + 1, 40):
+            linked = bool(rng.random() < 0.06)
+            rows.append({"var_a": names[i], "var_b": names[j], "linked": linked,
+                         "pvalue": float(rng.random() * 0.01 if linked else 0.5), "given": "",
+                         "n_tests": 1, "cmi_bits": float(rng.random() * 0.3), "qvalue": 0.01 if linked else np.nan,
+                         "sparse": False, "knowledge": "", "orientation": "", "flags": ""})
+    files = run(pd.DataFrame(rows), _tests().iloc[:0], ReportContext(levels={n: ["a", "b"] for n in names}),
+                tmp_path)
+    dot = files["graph.dot"].read_text()
+    assert "layout=neato" in dot and "overlap=prism" in dot
+    assert files["graph.svg"].read_text().count('class="node"') == 40
+
+
+def test_review_verdicts_show_in_table_and_csv(tmp_path):
+    """A review passed in the context is carried into the page and the CSV verdict/comment cells."""
+    review = {("alpha", "beta"): {"verdict": "confirm", "comment": "=known from incident drills"}}
+    files = run(_evidence(), _tests(), _context(review=review), tmp_path)
+    data = _embedded(files["report.html"].read_text(encoding="utf-8"))
+    row = next(p for p in data["pairs"] if (p["a"], p["b"]) == ("alpha", "beta"))
+    assert "Reviewer: confirm (=known from incident drills)" in row["reading"]
+    back = read_review_file(files["evidence.csv"])
+    hit = back[(back.var_a == "alpha") & (back.var_b == "beta")].iloc[0]
+    assert (hit.verdict, hit.comment) == ("confirm", "=known from incident drills")
+
+
+# --------------------------------------------------------------------------- headless browser
+def _chromium() -> str:
+    path = shutil.which("chromium") or "/usr/bin/chromium"
+    if not Path(path).exists():
+        subprocess.run(["apt-get", "install", "-y", "-q", "chromium"], capture_output=True, check=False,
+                       timeout=600)
+    if not Path(path).exists():
+        pytest.skip("Debian's chromium is not installed and `apt-get install -y chromium` did not work")
+    return path
+
+
+@pytest.mark.browser
+def test_page_in_headless_chromium(report_dir):
+    """In Chromium the table shows one row per pair, sorts, filters, expands a row and shows no alert."""
+    sync_api = pytest.importorskip("playwright.sync_api", reason="the `playwright` package is not installed")
+    exe = _chromium()
+    args = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+            "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+    page_url = (report_dir[0] / "report.html").as_uri()
+    dialogs, requests = [], []
+    with sync_api.sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=exe, headless=True, args=args)
+        try:
+            page = browser.new_page(viewport={"width": 1400, "height": 1000})
+            page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
+            page.on("request", lambda r: requests.append(r.url))
+            page.goto(page_url)
+            rows = page.locator("#pairs-body tr.pair")
+            assert rows.count() == len(_evidence())
+            assert "showing 6 of 6 pairs" in page.locator("#pair-count").inner_text()
+
+            page.click('#pairs th[data-key="p"] button')
+            first_p = rows.nth(0).locator("td").nth(4).inner_text()
+            assert first_p == "1.0e-12"
+            page.click('#pairs th[data-key="p"] button')
+            assert rows.nth(0).locator("td").nth(4).inner_text() == "0.700"
+            assert page.get_attribute('#pairs th[data-key="p"]', "aria-sort") == "descending"
+
+            page.click('.controls button[data-show="separated"]')
+            assert rows.count() == 2
+            page.click('.controls button[data-show="flagged"]')
+            assert rows.count() == 2  # the sparse pair and the required pair
+            page.click('.controls button[data-show="all"]')
+            page.fill("#pair-filter", "BETA")
+            assert rows.count() == 3  # case-insensitive: the three pairs with beta
+            page.fill("#pair-filter", "")
+
+            page.click('#pairs-body tr.pair:has(td:text-is("beta")) >> nth=0 >> button.expand')
+            detail = page.locator("#pairs-body tr.detail")
+            assert detail.count() == 1
+            assert detail.locator("tbody tr").count() >= 1
+            assert "conditioning set" in detail.inner_text()
+            page.click("#pairs-body tr.pair >> nth=0 >> button.expand")
+            assert page.locator("#pairs-body tr.detail").count() == 2
+            # the hostile name is shown as text, never turned into an element
+            assert page.locator("#pairs-body img").count() == 0 and page.locator("img").count() == 0
+            assert page.locator(f'#pairs-body td:text-is("{EVIL}")').count() >= 1
+            shot = ROOT / "bench" / "report.png"
+            shot.parent.mkdir(exist_ok=True)
+            page.locator("#evidence").scroll_into_view_if_needed()
+            page.screenshot(path=str(shot), full_page=False)
+        finally:
+            browser.close()
+    assert dialogs == []
+    assert all(u.startswith(("file:", "data:", "about:")) for u in requests)
