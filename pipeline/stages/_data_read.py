@@ -416,7 +416,7 @@ def read_csv(
         "path": str(path), "format": "csv", "rows": len(frame), "rejected": len(out_rows),
         "delimiter": delimiter, "delimiter_detected": settings.delimiter is None,
         "delimiter_name": _DELIMITER_NAMES.get(delimiter, delimiter), "encoding": settings.encoding,
-        "header": settings.header, "columns": list(frame.columns),
+        "header": settings.header, "columns": list(frame.columns), "available": names,
     }
     return _Part(frame, out_rows, info)
 
@@ -450,7 +450,7 @@ def read_parquet(
     frame.columns = [n for n in names if wanted is None or n in wanted]
     frame.index = pd.Index(np.arange(1, len(frame) + 1, dtype=np.int64), name="line")
     info = {"path": str(path), "format": "parquet", "rows": len(frame), "rejected": 0,
-            "columns": list(frame.columns)}
+            "columns": list(frame.columns), "available": names}
     return _Part(frame, [], info)
 
 
@@ -490,7 +490,7 @@ def read_jsonl(
                 if isinstance(v, (list, dict, np.ndarray)) else v
             )
     info = {"path": str(path), "format": "jsonl", "rows": len(frame), "rejected": len(rejected),
-            "encoding": settings.encoding, "columns": list(frame.columns)}
+            "encoding": settings.encoding, "columns": list(frame.columns), "available": names}
     return _Part(frame, rejected, info)
 
 
@@ -528,7 +528,8 @@ def partition_columns(part: _Part, values: dict[str, str], wanted: Optional[list
     if not added:
         return part
     frame = pd.concat([frame, pd.DataFrame(added, index=frame.index)], axis=1)
-    info = dict(part.info, partition=values, columns=list(frame.columns))
+    info = dict(part.info, partition=values, columns=list(frame.columns),
+                available=list(part.info.get("available", [])) + list(values))
     return _Part(frame, part.rejected, info)
 
 

@@ -109,9 +109,11 @@ def _package(
 ) -> Ingested:
     """Join the parts, check selection and renames, and build the summary."""
     seen: list[str] = []
+    available: list[str] = []
     for part in parts:
         seen += [c for c in part.table.columns if c not in seen]
-    _read.check_wanted(wanted, seen)
+        available += [c for c in part.info.get("available", []) if c not in available]
+    _read.check_wanted(wanted, available)
     frames = [p.table for p in parts]
     table = frames[0] if len(frames) == 1 else pd.concat(frames, axis=0, join="outer", sort=False)
     table = table[[c for c in seen if wanted is None or c in wanted]]
