@@ -209,7 +209,7 @@ def time_features(typed: Typed) -> list[tuple[Typed, list[str]]]:
     hours = stamps.dt.hour.to_numpy(dtype=float, na_value=np.nan)
     band = np.array(HOUR_BANDS + [None], dtype=object)
     band_idx = np.where(present, (np.nan_to_num(hours) // 6).astype(int), len(HOUR_BANDS))
-    days = stamps.dt.dayofweek.to_numpy(dtype=float, na_value=np.nan)
+    days = stamps.dt.day_of_week.to_numpy(dtype=float, na_value=np.nan)
     day = np.array(WEEKDAYS + [None], dtype=object)
     day_idx = np.where(present, np.nan_to_num(days).astype(int), len(WEEKDAYS))
     idx = stamps.index

@@ -1,0 +1,260 @@
+"""Tests of the clean stage: type inference, drop rules with reasons, quarantine, limits."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipeline.config import config_from_dict
+from pipeline.errors import ConfigError, DataError, LimitError
+from pipeline.stages import clean, ingest
+
+BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+N = 40
+
+
+def _cfg(**sections):
+    return config_from_dict(sections)
+
+
+def _ingest_csv(tmp_path: Path, text: str, cfg=None):
+    path = tmp_path / "extract.csv"
+    path.write_text(text, encoding="utf-8")
+    cfg = cfg or _cfg()
+    return ingest.run(path, cfg.input, cfg.limits)
+
+
+def _frame_csv(tmp_path: Path, frame: pd.DataFrame, cfg=None):
+    path = tmp_path / "extract.csv"
+    frame.to_csv(path, index=False)
+    cfg = cfg or _cfg()
+    return ingest.run(path, cfg.input, cfg.limits)
+
+
+def _base(n: int = N) -> dict:
+    rng = np.random.default_rng(7)
+    return {
+        "zone": [["north", "south", "east"][i % 3] for i in range(n)],
+        "latency": rng.normal(200, 30, n).round(2),
+    }
+
+
+def _record(cleaned, name):
+    return next(r for r in cleaned.columns if r["column"] == name)
+
+
+# ----------------------------------------------------------------------------- types
+
+
+def test_types_are_inferred_and_numbers_stored_as_text_converted(tmp_path):
+    """Numeric, categorical, boolean and numbers-written-as-text columns get the right kinds."""
+    data = _base()
+    data["ok"] = ["yes" if i % 2 else "no" for i in range(N)]
+    data["depth_text"] = [f'"{i % 7}"' for i in range(N)]
+    ing = _ingest_csv(tmp_path, pd.DataFrame(data).to_csv(index=False, quoting=3, quotechar="'"))
+    got = clean.run(ing, _cfg())
+    assert got.kinds == {"zone": "categorical", "latency": "numeric", "ok": "boolean",
+                         "depth_text": "numeric"}
+    assert got.table["latency"].dtype == np.float64
+    assert got.table["ok"].dtype == "boolean"
+    assert got.table["zone"].dtype == object
+    assert got.table["depth_text"].tolist()[:8] == [0, 1, 2, 3, 4, 5, 6, 0]
+
+
+def test_type_overrides_from_columns_section(tmp_path):
+    """`columns: {x: {type: ...}}` overrides inference, including `ignore`."""
+    data = _base()
+    data["code"] = [i % 4 for i in range(N)]
+    data["note"] = ["a", "b"] * (N // 2)
+    cfg = _cfg(columns={"code": {"type": "categorical"}, "note": {"type": "ignore"}})
+    got = clean.run(_frame_csv(tmp_path, pd.DataFrame(data), cfg), cfg)
+    assert got.kinds["code"] == "categorical"
+    assert got.table["code"].tolist()[:5] == ["0", "1", "2", "3", "0"]
+    assert "note" not in got.table
+    assert "type: ignore" in got.summary["dropped"]["note"]
+
+
+def test_infinities_and_nan_spellings_become_missing_and_are_counted(tmp_path):
+    """inf, -inf, Infinity, +Inf, NaN, nan, #N/A, null and friends are missing, and counted."""
+    spellings = ["inf", "-inf", "Infinity", "+Inf", "-Infinity", "NaN", "nan", "#N/A", "null", "NULL"]
+    values = [str(i + 0.25) for i in range(N - len(spellings))] + spellings
+    data = _base()
+    data["load"] = values
+    got = clean.run(_frame_csv(tmp_path, pd.DataFrame(data)), _cfg())
+    assert got.kinds["load"] == "numeric"
+    assert got.table["load"].isna().sum() == len(spellings)
+    rec = _record(got, "load")
+    assert rec["missing"] == len(spellings)
+    assert rec["non_finite"] == 5  # the five infinity spellings; the NaN/null ones were nulls already
+    assert np.isfinite(got.table["load"].dropna()).all()
+
+
+def test_timestamp_column_is_dropped_with_reason_and_features_derived(tmp_path):
+    """A timestamp column is not tested (reason given); with features on, hour band and weekday appear."""
+    data = _base()
+    data["at"] = pd.date_range("2024-03-04 01:00", periods=N, freq="3h").strftime("%Y-%m-%dT%H:%M:%S")
+    ing = _frame_csv(tmp_path, pd.DataFrame(data))
+    plain = clean.run(ing, _cfg())
+    assert "timestamp" in plain.summary["dropped"]["at"]
+    assert "at_hour_band" not in plain.table
+    cfg = _cfg(clean={"timestamp_features": True})
+    got = clean.run(ing, cfg)
+    assert got.table["at_hour_band"].tolist()[:4] == ["night", "night", "morning", "morning"]
+    assert got.table["at_weekday"].iloc[0] == "Monday"  # 2024-03-04 was a Monday
+    assert _record(got, "at_hour_band")["action"] == "derived"
+    assert got.summary["level_order"]["at_hour_band"] == ["night", "morning", "afternoon", "evening"]
+
+
+# ----------------------------------------------------------------------------- drop rules
+
+
+def test_entirely_missing_and_one_value_columns_are_dropped_with_reasons(tmp_path):
+    """A column with no values and a column with one value are dropped, each with its reason."""
+    data = _base()
+    data["empty"] = [""] * N
+    data["site"] = ["s1"] * N
+    got = clean.run(_frame_csv(tmp_path, pd.DataFrame(data)), _cfg())
+    assert got.summary["dropped"]["empty"] == "entirely missing"
+    assert got.summary["dropped"]["site"].startswith("one value only (`s1`)")
+    assert {r["column"] for r in got.columns} == {"zone", "latency", "empty", "site"}
+
+
+def test_mostly_missing_column_is_dropped_above_the_threshold(tmp_path):
+    """A column missing in 60% of rows is dropped when `clean.max_missing_fraction` is 0.5."""
+    data = _base()
+    data["sparse"] = [None if i % 5 < 3 else i % 2 for i in range(N)]
+    got = clean.run(_frame_csv(tmp_path, pd.DataFrame(data)), _cfg())
+    assert "60% of values missing" in got.summary["dropped"]["sparse"]
+
+
+def test_id_like_columns_dropped_but_continuous_floats_kept(tmp_path):
+    """Text and integer columns with all-distinct values are IDs; an all-distinct float is kept."""
+    data = _base()
+    data["node"] = [f"node-{i}" for i in range(N)]
+    data["seq"] = list(range(N))
+    got = clean.run(_frame_csv(tmp_path, pd.DataFrame(data)), _cfg())
+    assert "identifier" in got.summary["dropped"]["node"]
+    assert "identifier" in got.summary["dropped"]["seq"]
+    assert pd.Series(data["latency"]).nunique() == N and got.kinds["latency"] == "numeric"
+
+
+def test_rare_levels_pooled_only_when_asked(tmp_path):
+    """With the default 0 levels never change; with a minimum count rare ones become `(other)`."""
+    data = _base()
+    data["plan"] = ["basic"] * 20 + ["pro"] * 17 + ["x", "y", "z"]
+    ing = _frame_csv(tmp_path, pd.DataFrame(data))
+    assert set(clean.run(ing, _cfg()).table["plan"]) == {"basic", "pro", "x", "y", "z"}
+    got = clean.run(ing, _cfg(clean={"rare_level_min_count": 5}))
+    assert set(got.table["plan"]) == {"basic", "pro", "(other)"}
+    assert _record(got, "plan")["pooled_levels"] == 3
+
+
+def test_duplicate_rows_dropped_into_quarantine_when_asked(tmp_path):
+    """`clean.duplicates: drop` removes repeated rows and lists them in the quarantine with lines."""
+    frame = pd.DataFrame(_base())
+    frame = pd.concat([frame, frame.iloc[[0, 5]]], ignore_index=True)
+    ing = _frame_csv(tmp_path, frame)
+    assert len(clean.run(ing, _cfg()).table) == N + 2
+    got = clean.run(ing, _cfg(clean={"duplicates": "drop"}))
+    assert len(got.table) == N
+    assert got.quarantined["line"].tolist() == [N + 2, N + 3]
+    assert got.summary["rows"]["duplicates_dropped"] == 2
+
+
+# ----------------------------------------------------------------------------- text in numeric columns
+
+
+def _with_text(n_text: int = 2) -> pd.DataFrame:
+    data = _base()
+    depth = [str(i % 9) for i in range(N)]
+    for k in range(n_text):
+        depth[3 + 10 * k] = "overflow"
+    data["queue_depth"] = depth
+    return pd.DataFrame(data)
+
+
+def test_text_in_numeric_column_quarantines_those_rows(tmp_path):
+    """Default policy: rows with text in a numeric column are quarantined, naming column and value."""
+    got = clean.run(_frame_csv(tmp_path, _with_text()), _cfg())
+    assert got.kinds["queue_depth"] == "numeric"
+    assert len(got.table) == N - 2
+    assert got.quarantined["line"].tolist() == [5, 15]  # rows 3 and 13 sit on lines 5 and 15
+    assert got.quarantined["reason"].iloc[0] == (
+        "column `queue_depth` holds text `overflow` where numbers are expected")
+    assert got.quarantined["raw"].iloc[0].endswith(",overflow")
+    assert got.summary["rows"]["quarantined"] == 2
+
+
+def test_text_in_numeric_column_refused(tmp_path):
+    """`clean.text_in_numeric: refuse` raises naming the column, the count and the first lines."""
+    cfg = _cfg(clean={"text_in_numeric": "refuse"})
+    with pytest.raises(DataError, match=r"Column `queue_depth` has 2 non-numeric values .*lines 5, 15 of `.*extract\.csv`"):
+        clean.run(_frame_csv(tmp_path, _with_text()), cfg)
+
+
+def test_text_in_numeric_column_treated_as_categorical(tmp_path):
+    """`clean.text_in_numeric: categorical` keeps every row and makes the column categorical."""
+    cfg = _cfg(clean={"text_in_numeric": "categorical"})
+    got = clean.run(_frame_csv(tmp_path, _with_text()), cfg)
+    assert got.kinds["queue_depth"] == "categorical"
+    assert len(got.table) == N and "overflow" in set(got.table["queue_depth"])
+
+
+# ----------------------------------------------------------------------------- limits and refusals
+
+
+def test_level_count_above_limit_is_a_limit_error(tmp_path):
+    """A categorical column with more levels than `limits.max_levels` names column, count and fix."""
+    data = _base()
+    data["host"] = [f"h{i % 30}" for i in range(N)]
+    cfg = _cfg(limits={"max_levels": 10}, clean={"id_unique_ratio": 1.0})
+    with pytest.raises(LimitError, match=r"Column `host` has 30 levels, above `limits\.max_levels` = 10.*type: ignore"):
+        clean.run(_frame_csv(tmp_path, pd.DataFrame(data), cfg), cfg)
+
+
+def test_fewer_rows_than_min_rows_is_refused_with_the_count(tmp_path):
+    """Fewer usable rows than `clean.min_rows` is a DataError stating how many remain."""
+    ing = _frame_csv(tmp_path, pd.DataFrame(_base(12)))
+    with pytest.raises(DataError, match=r"Only 12 usable rows remain in `.*extract\.csv`.*`clean\.min_rows` = 20"):
+        clean.run(ing, _cfg())
+
+
+def test_columns_section_naming_a_missing_column_lists_close_matches(tmp_path):
+    """A `columns:` entry for a column the input lacks is a ConfigError with close matches."""
+    cfg = _cfg(columns={"latncy": {"type": "numeric"}})
+    with pytest.raises(ConfigError, match=r"column `latncy`.*close matches: `latency`"):
+        clean.run(_frame_csv(tmp_path, pd.DataFrame(_base())), cfg)
+
+
+def test_names_with_spaces_unicode_and_markup_survive_cleaning(tmp_path):
+    """Odd column names are kept exactly (escaping them is the report's job)."""
+    data = _base()
+    frame = pd.DataFrame({"queue depth": data["latency"], "région": data["zone"],
+                          "<script>x</script>": [i % 2 for i in range(N)]})
+    got = clean.run(_frame_csv(tmp_path, frame), _cfg())
+    assert list(got.table.columns) == ["queue depth", "région", "<script>x</script>"]
+
+
+def test_summary_accounts_for_every_input_column_and_row(tmp_path):
+    """cleaning.json names every input column with an action, and rows reconcile."""
+    data = _with_text()
+    data["site"] = "s1"
+    ing = _frame_csv(tmp_path, data)
+    got = clean.run(ing, _cfg())
+    assert [r["column"] for r in got.columns] == list(ing.table.columns)
+    assert all(r["action"] in {"kept", "dropped", "derived"} and r["reason"] for r in got.columns)
+    rows = got.summary["rows"]
+    assert rows["kept"] + rows["quarantined"] == rows["ingested"] == len(ing.table)
+
+
+def test_alarm_benchmark_columns_all_kept_as_numeric():
+    """All 37 ALARM columns survive cleaning as numeric with their integer values unchanged."""
+    cfg = _cfg()
+    ing = ingest.run(BENCHMARKS / "alarm" / "data.txt", cfg.input, cfg.limits)
+    got = clean.run(ing, cfg)
+    assert got.table.shape == (10_000, 37) and set(got.kinds.values()) == {"numeric"}
+    raw = np.loadtxt(BENCHMARKS / "alarm" / "data.txt", skiprows=1)
+    np.testing.assert_array_equal(got.table.to_numpy(), raw)
