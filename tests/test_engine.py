@@ -1,0 +1,113 @@
+"""The test engine against causal-learn's CIT, and its policies for sparse tables and missing values."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipeline.errors import ConfigError
+from pipeline.independence import CIEngine, EngineSettings
+
+BENCH = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+
+
+def _load(name: str) -> tuple[np.ndarray, list[str], np.ndarray]:
+    path = BENCH / name / "data.txt"
+    header = path.read_text().split("\n", 1)[0].split()
+    raw = np.loadtxt(path, skiprows=1, dtype=np.int64)
+    codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])])
+    return codes.astype(np.int8), header, raw
+
+
+@pytest.mark.parametrize("name", ["asia", "child", "insurance", "alarm"])
+@pytest.mark.parametrize("method,cl_method", [("g", "gsq"), ("chi2", "chisq")])
+def test_pvalues_match_causal_learn(name, method, cl_method):
+    """p-values equal causal-learn's CIT (gsq / chisq) on the benchmark data for sets up to size 4, rtol 1e-10."""
+    from causallearn.utils.cit import CIT
+
+    codes, names, raw = _load(name)
+    cit = CIT(raw, cl_method)
+    eng = CIEngine(codes, names, settings=EngineSettings(method=method))
+    rng = np.random.default_rng(7)
+    p = codes.shape[0]
+    for _ in range(60):
+        x, y = (int(v) for v in rng.choice(p, 2, replace=False))
+        rest = [v for v in range(p) if v not in (x, y)]
+        k = int(rng.integers(0, min(4, len(rest)) + 1))
+        given = [int(v) for v in rng.choice(rest, k, replace=False)]
+        ours = eng.test(x, y, given)
+        assert ours.pvalue == pytest.approx(cit(x, y, given), rel=1e-10, abs=1e-300)
+
+
+def test_three_way_example_through_engine():
+    """Penn State STAT 504 three-way tables: dependent marginally, independent given the stratum (G2 = 0.1623, P = 0.983; from memory)."""
+    strata = [[[169, 42], [43, 11]], [[132, 20], [104, 14]], [[59, 2], [196, 8]]]
+    rows = [(x, y, z) for z, t in enumerate(strata) for x in range(2) for y in range(2) for _ in range(t[x][y])]
+    data = np.array(rows, dtype=np.int8).T
+    eng = CIEngine(data, ["x", "y", "z"], [2, 2, 3], EngineSettings(method="g"))
+    marginal = eng.test("x", "y")
+    conditional = eng.test("x", "y", ["z"])
+    assert not marginal.independent and marginal.statistic == pytest.approx(7.61, abs=5e-3)
+    assert conditional.independent
+    assert conditional.statistic == pytest.approx(0.1623, abs=5e-5)
+    assert conditional.dof == 3 and conditional.pvalue == pytest.approx(0.983, abs=5e-4)
+    np.testing.assert_array_equal(eng.table("x", "y", ["z"]), np.array(strata))
+
+
+def test_degenerate_table_flagged():
+    """A constant x leaves no degrees of freedom: statistic 0, p-value 1, flagged degenerate."""
+    rng = np.random.default_rng(0)
+    data = np.vstack([np.zeros(500), rng.integers(0, 3, 500)]).astype(np.int8)
+    r = CIEngine(data, ["x", "y"], [2, 3]).test("x", "y")
+    assert r.degenerate and r.dof == 0 and r.statistic == 0.0 and r.pvalue == 1.0
+    assert "degenerate" in r.flags
+
+
+@pytest.mark.parametrize("policy", ["flag", "independent", "dependent"])
+def test_sparse_policy_decides_and_keeps_raw_pvalue(policy):
+    """Below min_rows_per_cell rows per cell (5, common practice, Tsamardinos et al. 2006, from memory) the policy decides; the raw p-value is kept."""
+    rng = np.random.default_rng(3)
+    n = 150  # 4 * 4 * 3 * 3 = 144 cells: about 1 row per cell
+    z = rng.integers(0, 3, (2, n))
+    x = (z[0] + rng.integers(0, 2, n)) % 4
+    y = (x + rng.integers(0, 2, n)) % 4
+    data = np.vstack([x, y, z]).astype(np.int8)
+    names = ["x", "y", "a", "b"]
+    flag = CIEngine(data, names, [4, 4, 3, 3], EngineSettings(sparse_policy="flag")).test("x", "y", ["a", "b"])
+    r = CIEngine(data, names, [4, 4, 3, 3], EngineSettings(sparse_policy=policy)).test("x", "y", ["a", "b"])
+    assert r.sparse and flag.sparse
+    assert r.pvalue == flag.pvalue and r.statistic == flag.statistic
+    assert flag.independent == (flag.pvalue > 0.05)
+    expected = {"flag": flag.independent, "independent": True, "dependent": False}[policy]
+    assert r.independent == expected
+    assert r.policy_applied == (r.independent != flag.independent)
+    dense = CIEngine(data, names, [4, 4, 3, 3], EngineSettings(sparse_policy=policy)).test("x", "y")
+    assert not dense.sparse and not dense.policy_applied  # 150 rows over 16 cells
+
+
+def test_missing_values_testwise_deletion():
+    """Each test uses the rows where its own variables are present, and records that n (checked with pandas)."""
+    rng = np.random.default_rng(11)
+    data = rng.integers(0, 3, (4, 2000)).astype(np.int8)
+    data[rng.random(data.shape) < 0.1] = -1
+    frame = pd.DataFrame(data.T, columns=list("wxyz"))
+    eng = CIEngine(data, list("wxyz"), [3, 3, 3, 3])
+    for x, y, given in [("w", "x", []), ("w", "x", ["y"]), ("x", "z", ["w", "y"])]:
+        cols = [x, y, *given]
+        complete = frame[cols][(frame[cols] >= 0).all(axis=1)]
+        r = eng.test(x, y, given)
+        assert r.n == len(complete)
+        table = pd.crosstab([complete[c] for c in given] or [np.zeros(len(complete))],
+                            [complete[x], complete[y]]).to_numpy()
+        assert table.sum() == r.n
+
+
+def test_settings_refuse_unknown_words():
+    """An unknown method or sparse policy is a ConfigError naming the key."""
+    with pytest.raises(ConfigError, match="test.method"):
+        EngineSettings(method="fisher")
+    with pytest.raises(ConfigError, match="test.sparse_policy"):
+        EngineSettings(sparse_policy="maybe")
