@@ -27,6 +27,8 @@ class Reporter:
         """Emit one event (stage start/end, level start, warning, ...)."""
         if self.fmt == "quiet":
             return
+        if self.fmt == "plain" and fields.get("status") == "start":
+            return  # one line per stage: its end
         if self.fmt == "json":
             rec = {"time": time.strftime("%Y-%m-%dT%H:%M:%S%z"), "event": kind, **fields}
             self.stream.write(json.dumps(rec, default=str) + "\n")
