@@ -344,7 +344,12 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
     par = cfg.parallel
     with parallel_context(par.jobs, par.backend, par.scheduler) as ctx:
         if ctx.backend == "local":
-            data = share_array(data, cache.begin("shared", k_disc) if not cache.hit("shared", k_disc) else cache.folder("shared", k_disc))
+            shared_dir = cache.hit("shared", k_disc)
+            if shared_dir is None:
+                shared_dir = cache.begin("shared", k_disc)
+                share_array(data, shared_dir)
+                cache.finish("shared", k_disc)
+            data = share_array(data, shared_dir)
         with _stage("battery", timings, rep) as st:
             hit = cache.hit("battery", k_battery)
             if hit:

@@ -26,7 +26,13 @@ def share_array(data: np.ndarray, folder: str | os.PathLike[str] | None = None) 
         return data
     base = os.fspath(folder) if folder is not None else tempfile.mkdtemp(prefix="edgeproof-")
     path = os.path.join(base, "codes.npy")
-    np.save(path, np.ascontiguousarray(data))
+    if not os.path.isfile(path):
+        # written under a temporary name and renamed: a reader never maps a half-written file, and
+        # a process that has the old file mapped keeps reading it
+        fd, tmp = tempfile.mkstemp(prefix=".codes.", suffix=".npy", dir=base)
+        with os.fdopen(fd, "wb") as fh:
+            np.save(fh, np.ascontiguousarray(data))
+        os.replace(tmp, path)
     return np.load(path, mmap_mode="r")
 
 
