@@ -502,21 +502,23 @@ def _dot(cmp: Comparison) -> str:
     }, node_attr={"shape": "box", "fontname": "Helvetica", "fontsize": "11"},
         edge_attr={"fontname": "Helvetica", "fontsize": "10"})
     nodes = sorted(set(cmp.table["var_a"].astype(str)) | set(cmp.table["var_b"].astype(str)))
+    ids = {n: f"n{i}" for i, n in enumerate(nodes)}  # plain ids; names only ever appear as labels
     for n in nodes:
-        g.node(n)
+        g.node(ids[n], label=graphviz.escape(n))
     for r in cmp.table.itertuples(index=False):
-        a, b = str(r.var_a), str(r.var_b)
+        a, b = ids[str(r.var_a)], ids[str(r.var_b)]
+        names = {ids[str(r.var_a)]: str(r.var_a), ids[str(r.var_b)]: str(r.var_b)}
         if r.change == "added":
-            head, tail, direction = _direction((a, b), str(r.orientation_b))
+            head, tail, direction = _direction((a, b), str(r.orientation_b), names)
             g.edge(tail, head, label="+ added", style="bold", penwidth="3", color="#1f4e9c",
                    dir=direction)
         elif r.change == "removed":
-            head, tail, direction = _direction((a, b), str(r.orientation_a))
+            head, tail, direction = _direction((a, b), str(r.orientation_a), names)
             g.edge(tail, head, label="- removed", style="dashed", penwidth="1.5", color="#9c1f1f",
                    dir=direction)
         elif r.change == "kept":
-            head, tail, direction = _direction((a, b), str(r.orientation_b))
-            label = f"kept, turned (was {r.orientation_a})" if r.orientation_changed else ""
+            head, tail, direction = _direction((a, b), str(r.orientation_b), names)
+            label = graphviz.escape(f"kept, turned (was {r.orientation_a})") if r.orientation_changed else ""
             g.edge(tail, head, label=label, style="solid", penwidth="1", color="#333333",
                    dir=direction)
     with g.subgraph(name="cluster_legend") as key:
@@ -529,10 +531,13 @@ def _dot(cmp: Comparison) -> str:
     return g.source
 
 
-def _direction(pair: Pair, orientation: str) -> tuple[str, str, str]:
-    """(head, tail, dot dir) for an edge drawn from its orientation text."""
+def _direction(
+    pair: Pair, orientation: str, names: Optional[dict[str, str]] = None
+) -> tuple[str, str, str]:
+    """(head, tail, dot dir) for the edge between node ids `pair`, from its orientation text."""
     a, b = pair
-    marks = _marks(pair, orientation)
+    names = names or {a: a, b: b}
+    marks = _marks((names[a], names[b]), orientation)
     if marks == "a->b":
         return b, a, "forward"
     if marks == "b->a":
