@@ -33,6 +33,7 @@ from .parallel import parallel_context, share_array
 from .progress import Reporter
 from .runs import (
     StageCache,
+    atomic_write_bytes,
     atomic_write_json,
     atomic_write_parquet,
     atomic_write_text,
@@ -44,7 +45,7 @@ from .runs import (
     stable_hash,
 )
 from .search.knowledge import Knowledge
-from .stages import battery, clean, discretise, ingest, report, skeleton
+from .stages import battery, clean, discretise, ingest, report, skeleton, stability
 from .stages.skeleton import state_from_json, state_to_json
 
 __all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
@@ -179,6 +180,47 @@ def _coded_matrix(codes: pd.DataFrame) -> np.ndarray:
     for i, c in enumerate(codes.columns):
         out[i] = codes[c].to_numpy()
     return out
+
+
+def _stability_frame(evidence: pd.DataFrame, res: Any) -> pd.DataFrame:
+    """One row per pair: share of resamples linked, per direction, and whether the pair is stable."""
+    rows = []
+    for a, b in evidence[["var_a", "var_b"]].itertuples(index=False):
+        rows.append({
+            "var_a": a, "var_b": b,
+            "stability": float(res.linked.get((a, b), 0.0)),
+            "stability_a_to_b": float(res.directed.get((a, b), np.nan)) if res.directed else np.nan,
+            "stability_b_to_a": float(res.directed.get((b, a), np.nan)) if res.directed else np.nan,
+            "stable": (a, b) in res.stable_edges,
+        })
+    return pd.DataFrame(rows)
+
+
+def _stable_graph(evidence: pd.DataFrame, levels: dict[str, list[str]], cfg: Config, out: Path) -> dict[str, Path]:
+    """The stable graph (pairs linked in at least `search.stable_threshold` of the resamples), drawn
+    beside the single-run graph."""
+    from .report import _graph
+
+    stable = evidence.assign(linked=evidence["stable"].astype(bool))
+    names = sorted(set(evidence["var_a"]) | set(evidence["var_b"]))
+    g = _graph.build_graph(stable, names, levels, cfg.test.alpha, cfg.search.orient)
+    return {
+        "stable_graph.dot": atomic_write_text(out / "stable_graph.dot", g.source),
+        "stable_graph.svg": atomic_write_bytes(out / "stable_graph.svg", _graph.render(g, "svg", "stable_graph.svg")),
+    }
+
+
+def _with_stability(evidence: pd.DataFrame, shares: pd.DataFrame, info: dict[str, Any]) -> pd.DataFrame:
+    """The evidence table with the resampling figures filled in and unstable links flagged."""
+    ev = evidence.drop(columns=["stability"]).merge(shares, on=["var_a", "var_b"], how="left")
+    cols = [c for c in evidence.columns if c != "stability"]
+    at = cols.index("orientation") + 1
+    ev = ev[cols[:at] + ["stability", "stability_a_to_b", "stability_b_to_a", "stable"] + cols[at:]]
+    weak = ev["linked"] & (ev["stability"] < 0.5)
+    ev.loc[weak, "flags"] = ev.loc[weak, "flags"].map(lambda f: ";".join([w for w in f.split(";") if w] + ["unstable"]))
+    share = (ev["stability"] * 100).round().astype(int).astype(str)
+    ev["explanation"] = ev["explanation"] + " Linked in " + share + f"% of {info['resamples']} resamples."
+    return ev
 
 
 def run_pipeline(
@@ -383,6 +425,34 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
                 atomic_write_parquet(d / "evidence.parquet", evidence)
                 atomic_write_parquet(d / "tests.parquet", tests)
                 cache.finish("skeleton", k_search)
+        stability_info = None
+        if cfg.search.resamples > 0:
+            with _stage("stability", timings, rep) as st:
+                k_stab = stable_hash(["stability", k_search, cfg.search.resamples, cfg.search.resample_fraction,
+                                      cfg.search.resample_method, cfg.search.stable_threshold, cfg.test.seed])
+                hit = cache.hit("stability", k_stab)
+                if hit:
+                    st.reused = True
+                    shares = pd.read_parquet(hit / "stability.parquet")
+                    stability_info = json.loads((hit / "stability.json").read_text(encoding="utf-8"))
+                else:
+                    res_stab = stability.run(
+                        data, names, cards, settings, knowledge, resamples=cfg.search.resamples,
+                        fraction=cfg.search.resample_fraction, method=cfg.search.resample_method,
+                        max_order=cfg.search.max_order, orient_graph=cfg.search.orient,
+                        collider_rule=cfg.search.collider_rule, seed=cfg.test.seed, context=ctx,
+                        threshold=cfg.search.stable_threshold,
+                    )
+                    shares = _stability_frame(evidence, res_stab)
+                    stability_info = {"resamples": res_stab.resamples, "method": res_stab.method,
+                                      "fraction": res_stab.fraction, "threshold": res_stab.threshold,
+                                      "rows_per_resample": res_stab.rows_per_resample, "caveat": res_stab.caveat}
+                    d = cache.begin("stability", k_stab)
+                    atomic_write_parquet(d / "stability.parquet", shares)
+                    atomic_write_json(d / "stability.json", stability_info)
+                    cache.finish("stability", k_stab)
+            evidence = _with_stability(evidence, shares, stability_info)
+            atomic_write_parquet(out / "stability.parquet", shares)
     atomic_write_parquet(out / "evidence.parquet", evidence)
     atomic_write_parquet(out / "tests.parquet", tests)
 
@@ -415,6 +485,10 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
         "warnings": warnings,
         "status": "ok",
     }
+    if stability_info is not None:
+        manifest["stability"] = stability_info
+        if stability_info.get("caveat"):
+            warnings.append(str(stability_info["caveat"]))
     with _stage("report", timings, rep):
         ctx_report = report.ReportContext(
             title=cfg.report.title or f"edgeproof run on {source.name}",
@@ -431,6 +505,8 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
             warnings=warnings,
         )
         written = report.run(evidence, tests, ctx_report, out)
+        if stability_info is not None:
+            written.update(_stable_graph(evidence, levels_doc["levels"], cfg, out))
     manifest["artifacts"] = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
     manifest["artifacts"] = sorted(set(manifest["artifacts"]) | {"manifest.json"} | {Path(p).name for p in written.values()})
     for w in warnings:
