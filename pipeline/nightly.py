@@ -279,7 +279,11 @@ def _process(
     deleted: list[str] = []
     seen_names: dict[str, str] = {}
     now = time.time()
+    root_real = root.resolve()
     for entry in _entries(inbox):
+        real = entry.path.resolve()
+        if real == root_real or real in root_real.parents:
+            continue  # the output root itself lives in the inbox: never a snapshot
         source = str(entry.path)
         try:
             name = snapshot_run_name(entry.entry_name)
