@@ -10,7 +10,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
@@ -38,14 +38,18 @@ def share_array(data: np.ndarray, folder: str | os.PathLike[str] | None = None) 
 
 @dataclass
 class ParallelContext:
-    """Runs ``fn(shared, task)`` for every task, in task order."""
+    """Runs ``fn(shared, task)`` for every task, in task order.
+
+    On a dask cluster every numpy array in `shared` (itself or the items of a tuple) is scattered
+    once per context with ``broadcast=True`` and only its future travels with the tasks, so the
+    coded table reaches each worker once per run however many batteries and tests use it.
+    """
 
     jobs: int
     backend: str
     _parallel: Any = None
     _client: Any = None
-    _shared_future: Any = None
-    _shared: Any = None
+    _scattered: list[tuple[Any, Any]] = field(default_factory=list)  # (object, future); kept alive
 
     def map(self, fn: Callable[[Any, Any], Any], shared: Any, tasks: Sequence[Any]) -> list[Any]:
         """Apply `fn` to each task with the shared payload; results in task order."""
@@ -54,14 +58,27 @@ class ParallelContext:
         if self._parallel is None and self._client is None:
             return [fn(shared, t) for t in tasks]
         if self._client is not None:
-            if self._shared is not shared:
-                self._shared_future = self._client.scatter(shared, broadcast=True)
-                self._shared = shared
-            futures = self._client.map(fn, [self._shared_future] * len(tasks), list(tasks), pure=False)
+            payload = self._remote(shared)
+            futures = self._client.map(fn, [payload] * len(tasks), list(tasks), pure=False)
             return self._client.gather(futures)
         from joblib import delayed
 
         return list(self._parallel(delayed(fn)(shared, t) for t in tasks))
+
+    def _remote(self, shared: Any) -> Any:
+        """`shared` with its numpy arrays replaced by the futures of their broadcast copies."""
+        if isinstance(shared, tuple) and any(isinstance(x, np.ndarray) for x in shared):
+            return tuple(self._future(x) if isinstance(x, np.ndarray) else x for x in shared)
+        return self._future(shared)
+
+    def _future(self, obj: Any) -> Any:
+        """The future of `obj` on every worker, scattered on first use."""
+        for held, future in self._scattered:
+            if held is obj:
+                return future
+        [future] = self._client.scatter([obj], broadcast=True, hash=False)
+        self._scattered.append((obj, future))
+        return future
 
     @property
     def width(self) -> int:
@@ -103,5 +120,5 @@ def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | Non
         return
     from joblib import Parallel
 
-    with Parallel(n_jobs=n, backend="loky") as par:
+    with Parallel(n_jobs=n, backend="loky", batch_size=1) as par:
         yield ParallelContext(jobs=n, backend="local", _parallel=par)
