@@ -89,7 +89,7 @@ def _legend(orient: bool, alpha: float, truth: bool = False) -> str:
         rows += [
             ("\u2501\u2501\u2501", f"linked, q-value \u2264 {alpha:g} (solid)"),
             ("\u254d\u254d\u254d", "weak: q-value above alpha, unstable or data disagree (dashed)"),
-            ("\u2508\u2508\u2508", "sparse table behind a test (dotted)"),
+            ("\u2508\u2508\u2508", "a test on the pair had a sparse table (dotted)"),
             ("\u2550\u2550\u2550", "required by expert knowledge (bold double)"),
             ("", "thicker line: larger effect (CMI, bits)"),
         ]
