@@ -53,12 +53,15 @@ def fresh(
     x = values.to_numpy(dtype=float, na_value=np.nan)
     present = x[np.isfinite(x)]
     method = method or settings.default
+    uniques = None
     if method == "auto":
-        distinct = pd.unique(present)
-        small = distinct.size <= settings.max_categorical_levels and integer_like(present)
-        method = "categorical" if small else "quantile"
+        method = "quantile"
+        if integer_like(present):  # cheap test first: hashing a million distinct floats is not
+            uniques = np.sort(pd.unique(present))
+            if uniques.size <= settings.max_categorical_levels:
+                method = "categorical"
     if method == "categorical":
-        return _number_levels(name, x, present, max_levels)
+        return _number_levels(name, x, present if uniques is None else uniques, max_levels)
     bins = spec.bins if spec is not None and spec.bins else settings.bins
     unit = spec.unit if spec is not None else None
     if method == "fixed":
@@ -121,7 +124,7 @@ def interval_labels(cuts: list[float], unit: Optional[str]) -> list[str]:
 
 
 def _number_levels(name: str, x: np.ndarray, present: np.ndarray, max_levels: int) -> Coded:
-    uniques = np.unique(present)
+    uniques = np.unique(present)  # already sorted and unique when coming from the auto rule
     check_levels(name, uniques.size, max_levels)
     codes = np.searchsorted(uniques, x).astype(np.int64)
     codes[~np.isfinite(x)] = -1
@@ -196,7 +199,7 @@ def reapply(
     else:
         text = values.astype(object)
     present = text.notna().to_numpy()
-    codes = pd.Categorical(text, categories=[lv for lv in levels]).codes.astype(np.int64)
+    codes = pd.Index(list(levels), dtype=object).get_indexer(text.astype(object)).astype(np.int64)
     if MISSING_LEVEL in levels:
         codes[(codes == levels.index(MISSING_LEVEL)) & present] = -1  # literal "(missing)" text
     unknown = int(((codes == -1) & present).sum())

@@ -114,7 +114,8 @@ def _number_labels(arr: np.ndarray, index: pd.Index) -> pd.Series:
 
 
 def _from_text(name: str, series: pd.Series, declared: Optional[str], settings: CleanSettings) -> Typed:
-    codes, uniques = pd.factorize(series.astype(object), use_na_sentinel=True)
+    plain = series.astype(object) if isinstance(series.dtype, pd.CategoricalDtype) else series
+    codes, uniques = pd.factorize(plain, use_na_sentinel=True)
     text = pd.Index(uniques, dtype=object).map(str).str.strip()
     low = text.str.lower()
     infinite = np.asarray(low.isin(INFINITY_WORDS), dtype=bool)
@@ -230,11 +231,7 @@ def decide(
 ) -> tuple[Optional[str], pd.Series, dict[str, Any]]:
     """The drop reason (None: kept), the final values and the facts for the column summary."""
     n = len(values)
-    missing = int(values.isna().sum())
-    try:
-        distinct = int(values.nunique(dropna=True))
-    except TypeError:
-        distinct = int(values.astype(str).nunique(dropna=True))
+    missing, distinct = _count(typed.kind, values)
     facts: dict[str, Any] = {"missing": missing, "distinct": distinct, "pooled_levels": 0}
     if typed.kind == "ignore":
         return "declared `type: ignore` in `columns:`", values, facts
@@ -268,6 +265,19 @@ def decide(
             if facts["distinct"] == 1 and settings.drop_constant:
                 return f"one value only after pooling rare levels into `{OTHER_LEVEL}`", values, facts
     return None, values, facts
+
+
+def _count(kind: str, values: pd.Series) -> tuple[int, int]:
+    """Missing and distinct counts, computed the cheap way for each kind."""
+    if kind == "numeric":
+        arr = values.to_numpy(dtype=float)
+        nan = np.isnan(arr)
+        return int(nan.sum()), int(pd.unique(arr[~nan]).size)
+    try:
+        codes, uniques = pd.factorize(values, use_na_sentinel=True)
+    except TypeError:
+        codes, uniques = pd.factorize(values.astype(str), use_na_sentinel=True)
+    return int((codes < 0).sum()), int(len(uniques))
 
 
 def _id_like(kind: str, values: pd.Series, distinct: int, present: int, settings: CleanSettings) -> bool:

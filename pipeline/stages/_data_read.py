@@ -233,9 +233,13 @@ def _blank_bad_lines(
 
 def nonempty_lines(data: bytes) -> np.ndarray:
     """1-based numbers of the lines that hold something (the records a CSV/JSON parser sees)."""
-    b = np.frombuffer(data, dtype=np.uint8)
-    if b.size == 0:
+    if not data:
         return np.zeros(0, dtype=np.int64)
+    if b"\n\n" not in data and b"\n\r\n" not in data and data[:1] not in (b"\n", b"\r"):
+        n_lines = data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
+        if not data.endswith(b"\n\r"):
+            return np.arange(1, n_lines + 1, dtype=np.int64)  # no blank line anywhere
+    b = np.frombuffer(data, dtype=np.uint8)
     nl = np.flatnonzero(b == 10)
     starts = np.concatenate(([0], nl + 1))
     ends = np.concatenate((nl, [b.size]))

@@ -187,7 +187,8 @@ def _apply_rules(
     records: list[dict[str, Any]] = []
     has_features = bool(derived)
     for name, col in list(typed.items()) + list(derived.items()):
-        values = col.values[keep].reset_index(drop=True)
+        values = col.values if keep.all() else col.values[keep]
+        values = values.reset_index(drop=True)
         reason, values, facts = _rules.decide(col, values, cfg.clean, has_features)
         action = "dropped" if reason else ("derived" if name in derived else "kept")
         if reason is None:
@@ -263,7 +264,7 @@ def _package(
         dropped = "; ".join(f"`{r['column']}`: {r['reason']}" for r in records if r["action"] == "dropped")
         raise DataError(f"Fewer than two usable columns remain in `{_source_text(ingested)}` "
                         f"(kept: {', '.join(names) or 'none'}); dropped: {dropped[:400]}.")
-    table = pd.DataFrame({renamed.get(n, n): s for n, s in out.items()})
+    table = pd.DataFrame({renamed.get(n, n): s for n, s in out.items()}, copy=False)
     kinds = {renamed.get(n, n): k for n, k in kinds.items()}
     for rec in records:
         if rec["column"] in renamed:
