@@ -56,8 +56,12 @@ def test_types_are_inferred_and_numbers_stored_as_text_converted(tmp_path):
     data["depth_text"] = [f'"{i % 7}"' for i in range(N)]
     ing = _ingest_csv(tmp_path, pd.DataFrame(data).to_csv(index=False, quoting=3, quotechar="'"))
     got = clean.run(ing, _cfg())
-    assert got.kinds == {"zone": "categorical", "latency": "numeric", "ok": "boolean",
-                         "depth_text": "numeric"}
+    assert got.kinds == {
+        "zone": "categorical",
+        "latency": "numeric",
+        "ok": "boolean",
+        "depth_text": "numeric",
+    }
     assert got.table["latency"].dtype == np.float64
     assert got.table["ok"].dtype == "boolean"
     assert got.table["zone"].dtype == object
@@ -79,7 +83,18 @@ def test_type_overrides_from_columns_section(tmp_path):
 
 def test_infinities_and_nan_spellings_become_missing_and_are_counted(tmp_path):
     """inf, -inf, Infinity, +Inf, NaN, nan, #N/A, null and friends are missing, and counted."""
-    spellings = ["inf", "-inf", "Infinity", "+Inf", "-Infinity", "NaN", "nan", "#N/A", "null", "NULL"]
+    spellings = [
+        "inf",
+        "-inf",
+        "Infinity",
+        "+Inf",
+        "-Infinity",
+        "NaN",
+        "nan",
+        "#N/A",
+        "null",
+        "NULL",
+    ]
     values = [str(i + 0.25) for i in range(N - len(spellings))] + spellings
     data = _base()
     data["load"] = values
@@ -88,14 +103,18 @@ def test_infinities_and_nan_spellings_become_missing_and_are_counted(tmp_path):
     assert got.table["load"].isna().sum() == len(spellings)
     rec = _record(got, "load")
     assert rec["missing"] == len(spellings)
-    assert rec["non_finite"] == 5  # the five infinity spellings; the NaN/null ones were nulls already
+    assert (
+        rec["non_finite"] == 5
+    )  # the five infinity spellings; the NaN/null ones were nulls already
     assert np.isfinite(got.table["load"].dropna()).all()
 
 
 def test_timestamp_column_is_dropped_with_reason_and_features_derived(tmp_path):
     """A timestamp column is not tested (reason given); with features on, hour band and weekday appear."""
     data = _base()
-    data["at"] = pd.date_range("2024-03-04 01:00", periods=N, freq="3h").strftime("%Y-%m-%dT%H:%M:%S")
+    data["at"] = pd.date_range("2024-03-04 01:00", periods=N, freq="3h").strftime(
+        "%Y-%m-%dT%H:%M:%S"
+    )
     ing = _frame_csv(tmp_path, pd.DataFrame(data))
     plain = clean.run(ing, _cfg())
     assert "timestamp" in plain.summary["dropped"]["at"]
@@ -105,7 +124,12 @@ def test_timestamp_column_is_dropped_with_reason_and_features_derived(tmp_path):
     assert got.table["at_hour_band"].tolist()[:4] == ["night", "night", "morning", "morning"]
     assert got.table["at_weekday"].iloc[0] == "Monday"  # 2024-03-04 was a Monday
     assert _record(got, "at_hour_band")["action"] == "derived"
-    assert got.summary["level_order"]["at_hour_band"] == ["night", "morning", "afternoon", "evening"]
+    assert got.summary["level_order"]["at_hour_band"] == [
+        "night",
+        "morning",
+        "afternoon",
+        "evening",
+    ]
 
 
 # ----------------------------------------------------------------------------- drop rules
@@ -183,7 +207,8 @@ def test_text_in_numeric_column_quarantines_those_rows(tmp_path):
     assert len(got.table) == N - 2
     assert got.quarantined["line"].tolist() == [5, 15]  # rows 3 and 13 sit on lines 5 and 15
     assert got.quarantined["reason"].iloc[0] == (
-        "column `queue_depth` holds text `overflow` where numbers are expected")
+        "column `queue_depth` holds text `overflow` where numbers are expected"
+    )
     assert got.quarantined["raw"].iloc[0].endswith(",overflow")
     assert got.summary["rows"]["quarantined"] == 2
 
@@ -191,7 +216,10 @@ def test_text_in_numeric_column_quarantines_those_rows(tmp_path):
 def test_text_in_numeric_column_refused(tmp_path):
     """`clean.text_in_numeric: refuse` raises naming the column, the count and the first lines."""
     cfg = _cfg(clean={"text_in_numeric": "refuse"})
-    with pytest.raises(DataError, match=r"Column `queue_depth` has 2 non-numeric values .*lines 5, 15 of `.*extract\.csv`"):
+    with pytest.raises(
+        DataError,
+        match=r"Column `queue_depth` has 2 non-numeric values .*lines 5, 15 of `.*extract\.csv`",
+    ):
         clean.run(_frame_csv(tmp_path, _with_text()), cfg)
 
 
@@ -211,14 +239,19 @@ def test_level_count_above_limit_is_a_limit_error(tmp_path):
     data = _base()
     data["host"] = [f"h{i % 30}" for i in range(N)]
     cfg = _cfg(limits={"max_levels": 10}, clean={"id_unique_ratio": 1.0})
-    with pytest.raises(LimitError, match=r"Column `host` has 30 levels, above `limits\.max_levels` = 10.*type: ignore"):
+    with pytest.raises(
+        LimitError,
+        match=r"Column `host` has 30 levels, above `limits\.max_levels` = 10.*type: ignore",
+    ):
         clean.run(_frame_csv(tmp_path, pd.DataFrame(data), cfg), cfg)
 
 
 def test_fewer_rows_than_min_rows_is_refused_with_the_count(tmp_path):
     """Fewer usable rows than `clean.min_rows` is a DataError stating how many remain."""
     ing = _frame_csv(tmp_path, pd.DataFrame(_base(12)))
-    with pytest.raises(DataError, match=r"Only 12 usable rows remain in `.*extract\.csv`.*`clean\.min_rows` = 20"):
+    with pytest.raises(
+        DataError, match=r"Only 12 usable rows remain in `.*extract\.csv`.*`clean\.min_rows` = 20"
+    ):
         clean.run(ing, _cfg())
 
 
@@ -232,8 +265,13 @@ def test_columns_section_naming_a_missing_column_lists_close_matches(tmp_path):
 def test_names_with_spaces_unicode_and_markup_survive_cleaning(tmp_path):
     """Odd column names are kept exactly (escaping them is the report's job)."""
     data = _base()
-    frame = pd.DataFrame({"queue depth": data["latency"], "région": data["zone"],
-                          "<script>x</script>": [i % 2 for i in range(N)]})
+    frame = pd.DataFrame(
+        {
+            "queue depth": data["latency"],
+            "région": data["zone"],
+            "<script>x</script>": [i % 2 for i in range(N)],
+        }
+    )
     got = clean.run(_frame_csv(tmp_path, frame), _cfg())
     assert list(got.table.columns) == ["queue depth", "région", "<script>x</script>"]
 

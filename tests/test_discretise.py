@@ -40,7 +40,9 @@ def _alarm(cfg):
 def test_alarm_codes_equal_the_ranks_numpy_gives(default):
     """ALARM codes equal numpy's `np.unique(..., return_inverse=True)` on the raw file, per column."""
     got = _alarm(_cfg(discretise={"default": default}))
-    raw = np.loadtxt(ALARM, skiprows=1, dtype=np.int64)  # numpy reads the file: the outside reference
+    raw = np.loadtxt(
+        ALARM, skiprows=1, dtype=np.int64
+    )  # numpy reads the file: the outside reference
     assert got.codes.shape == (10_000, 37)
     for j, name in enumerate(got.codes.columns):
         uniques, inverse = np.unique(raw[:, j], return_inverse=True)
@@ -55,8 +57,13 @@ def test_alarm_codes_equal_the_ranks_numpy_gives(default):
 
 def test_numeric_valued_categorical_levels_sort_numerically():
     """Text levels that are numbers sort as numbers ("9" before "10"); other text sorts as text."""
-    got = discretise.run(_cleaned({"a": ["10", "9", "2", None] * 10, "b": ["x", "b", "a", "b"] * 10},
-                                  {"a": "categorical", "b": "categorical"}), _cfg())
+    got = discretise.run(
+        _cleaned(
+            {"a": ["10", "9", "2", None] * 10, "b": ["x", "b", "a", "b"] * 10},
+            {"a": "categorical", "b": "categorical"},
+        ),
+        _cfg(),
+    )
     assert got.levels["a"] == ["2", "9", "10"]
     assert got.codes["a"].tolist()[:4] == [2, 1, 0, -1]
     assert got.levels["b"] == ["a", "b", "x"]
@@ -65,8 +72,10 @@ def test_numeric_valued_categorical_levels_sort_numerically():
 def test_boolean_columns_code_false_then_true():
     """Booleans become levels ["false", "true"] with codes 0 / 1 and -1 for missing."""
     values = pd.array([True, False, None, True], dtype="boolean")
-    got = discretise.run(_cleaned({"ok": values, "z": ["a", "b", "a", "b"]},
-                                  {"ok": "boolean", "z": "categorical"}), _cfg())
+    got = discretise.run(
+        _cleaned({"ok": values, "z": ["a", "b", "a", "b"]}, {"ok": "boolean", "z": "categorical"}),
+        _cfg(),
+    )
     assert got.levels["ok"] == ["false", "true"]
     assert got.codes["ok"].tolist() == [1, 0, -1, 1]
 
@@ -74,8 +83,13 @@ def test_boolean_columns_code_false_then_true():
 def test_missing_level_when_test_missing_is_level():
     """With `test.missing: level`, missing values get the last level `(missing)` instead of -1."""
     cfg = _cfg(test={"missing": "level"})
-    got = discretise.run(_cleaned({"z": ["a", None, "b", "a"], "y": [1.0, 2.0, 1.0, 2.0]},
-                                  {"z": "categorical", "y": "numeric"}), cfg)
+    got = discretise.run(
+        _cleaned(
+            {"z": ["a", None, "b", "a"], "y": [1.0, 2.0, 1.0, 2.0]},
+            {"z": "categorical", "y": "numeric"},
+        ),
+        cfg,
+    )
     assert got.levels["z"] == ["a", "b", "(missing)"]
     assert got.codes["z"].tolist() == [0, 2, 1, 0]
     assert got.levels["y"] == ["1", "2"]  # no missing values: no extra level
@@ -84,10 +98,19 @@ def test_missing_level_when_test_missing_is_level():
 def test_level_order_hint_from_clean_is_kept():
     """Derived weekday levels keep the week's order given by the clean stage."""
     days = ["Tuesday", "Monday", "Sunday", "Monday"]
-    summary = {"level_order": {"day": ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday",
-                                       "Saturday", "Sunday"]}}
-    got = discretise.run(_cleaned({"day": days, "z": ["a", "b", "a", "b"]},
-                                  {"day": "categorical", "z": "categorical"}, summary), _cfg())
+    summary = {
+        "level_order": {
+            "day": ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
+        }
+    }
+    got = discretise.run(
+        _cleaned(
+            {"day": days, "z": ["a", "b", "a", "b"]},
+            {"day": "categorical", "z": "categorical"},
+            summary,
+        ),
+        _cfg(),
+    )
     assert got.levels["day"] == ["Monday", "Tuesday", "Sunday"]
 
 
@@ -95,8 +118,10 @@ def test_codes_use_the_smallest_signed_dtype():
     """127 levels fit int8; 200 levels need int16."""
     small = [f"v{i:03d}" for i in range(127)]
     big = [f"v{i:03d}" for i in range(200)]
-    got = discretise.run(_cleaned({"s": small + small[:73], "b": big},
-                                  {"s": "categorical", "b": "categorical"}), _cfg())
+    got = discretise.run(
+        _cleaned({"s": small + small[:73], "b": big}, {"s": "categorical", "b": "categorical"}),
+        _cfg(),
+    )
     assert got.codes["s"].dtype == np.int8 and got.codes["b"].dtype == np.int16
 
 
@@ -104,7 +129,9 @@ def test_level_limit_applies_to_numeric_columns_coded_level_by_level():
     """`discretise.default: categorical` on a column with many values is a LimitError naming it."""
     cfg = _cfg(discretise={"default": "categorical"}, limits={"max_levels": 50})
     x = np.arange(100, dtype=float) + 0.5
-    with pytest.raises(LimitError, match=r"Column `x` has 100 levels, above `limits\.max_levels` = 50"):
+    with pytest.raises(
+        LimitError, match=r"Column `x` has 100 levels, above `limits\.max_levels` = 50"
+    ):
         discretise.run(_cleaned({"x": x, "y": x}, {"x": "numeric", "y": "numeric"}), cfg)
 
 
@@ -137,8 +164,10 @@ def test_fixed_edges_with_unit_give_readable_labels():
     """`columns: {latency: {discretise: fixed, edges: [120, 250], unit: ms}}` labels the bins."""
     cfg = _cfg(columns={"latency": {"discretise": "fixed", "edges": [120, 250], "unit": "ms"}})
     lat = [90.0, 120.0, 249.9, 250.0, 999.0, np.nan]
-    got = discretise.run(_cleaned({"latency": lat, "z": list("abcabc")},
-                                  {"latency": "numeric", "z": "categorical"}), cfg)
+    got = discretise.run(
+        _cleaned({"latency": lat, "z": list("abcabc")}, {"latency": "numeric", "z": "categorical"}),
+        cfg,
+    )
     assert got.levels["latency"] == ["< 120 ms", "[120, 250) ms", ">= 250 ms"]
     assert got.codes["latency"].tolist() == [0, 1, 1, 2, 2, -1]
     assert got.edges["latency"] == [120.0, 250.0]
@@ -148,14 +177,18 @@ def test_fixed_without_edges_is_a_config_error():
     """`discretise: fixed` without `edges` names the column and the missing key."""
     cfg = _cfg(columns={"x": {"discretise": "fixed"}})
     with pytest.raises(ConfigError, match=r"`columns\.x\.discretise` is 'fixed' but no `edges`"):
-        discretise.run(_cleaned({"x": [1.5, 2.5], "y": [1.0, 2.0]}, {"x": "numeric", "y": "numeric"}), cfg)
+        discretise.run(
+            _cleaned({"x": [1.5, 2.5], "y": [1.0, 2.0]}, {"x": "numeric", "y": "numeric"}), cfg
+        )
 
 
 def test_duplicate_quantile_edges_merge_and_isolate_the_mass_at_the_minimum():
     """A mostly-zero column gets the bins "< 1" (the zeros) and ">= 1", not an empty first bin."""
     x = np.r_[np.zeros(900), np.arange(1, 101, dtype=float)]
-    got = discretise.run(_cleaned({"x": x, "y": x}, {"x": "numeric", "y": "numeric"}),
-                         _cfg(discretise={"default": "quantile"}))
+    got = discretise.run(
+        _cleaned({"x": x, "y": x}, {"x": "numeric", "y": "numeric"}),
+        _cfg(discretise={"default": "quantile"}),
+    )
     assert got.edges["x"] == [1.0]
     assert got.levels["x"] == ["< 1", ">= 1"]
     assert np.bincount(got.codes["x"].to_numpy()).tolist() == [900, 100]
@@ -164,8 +197,13 @@ def test_duplicate_quantile_edges_merge_and_isolate_the_mass_at_the_minimum():
 def test_auto_keeps_few_integers_as_levels_and_bins_the_rest():
     """Auto: <= max_categorical_levels distinct whole numbers are levels; continuous values binned."""
     rng = np.random.default_rng(3)
-    got = discretise.run(_cleaned({"k": rng.integers(0, 5, 400).astype(float), "c": rng.random(400)},
-                                  {"k": "numeric", "c": "numeric"}), _cfg())
+    got = discretise.run(
+        _cleaned(
+            {"k": rng.integers(0, 5, 400).astype(float), "c": rng.random(400)},
+            {"k": "numeric", "c": "numeric"},
+        ),
+        _cfg(),
+    )
     assert got.levels["k"] == ["0", "1", "2", "3", "4"] and got.edges["k"] is None
     assert len(got.levels["c"]) == 4 and len(got.edges["c"]) == 3
 
@@ -176,11 +214,24 @@ def test_auto_keeps_few_integers_as_levels_and_bins_the_rest():
 def test_reuse_gives_the_same_edges_and_levels_and_counts_unknown_levels():
     """Reusing levels.json keeps cut points and level lists; unseen levels become -1, counted."""
     rng = np.random.default_rng(9)
-    first = discretise.run(_cleaned({"x": rng.normal(0, 1, 500), "z": ["a", "b"] * 250},
-                                    {"x": "numeric", "z": "categorical"}), _cfg())
-    stored = json.loads(json.dumps({"levels": first.levels, "edges": first.edges, "kinds": first.kinds}))
-    later = discretise.run(_cleaned({"x": rng.normal(3, 1, 300), "z": ["a", "c", "b"] * 100},
-                                    {"x": "numeric", "z": "categorical"}), _cfg(), reuse=stored)
+    first = discretise.run(
+        _cleaned(
+            {"x": rng.normal(0, 1, 500), "z": ["a", "b"] * 250},
+            {"x": "numeric", "z": "categorical"},
+        ),
+        _cfg(),
+    )
+    stored = json.loads(
+        json.dumps({"levels": first.levels, "edges": first.edges, "kinds": first.kinds})
+    )
+    later = discretise.run(
+        _cleaned(
+            {"x": rng.normal(3, 1, 300), "z": ["a", "c", "b"] * 100},
+            {"x": "numeric", "z": "categorical"},
+        ),
+        _cfg(),
+        reuse=stored,
+    )
     assert later.edges["x"] == first.edges["x"] and later.levels == first.levels
     assert later.codes["z"].tolist()[:3] == [0, -1, 1]
     assert later.summary["unknown_levels"] == {"z": 100}

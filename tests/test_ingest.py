@@ -59,8 +59,10 @@ def test_alarm_benchmark_reads_with_detected_space_delimiter():
 @pytest.mark.parametrize("delimiter", [",", ";", "\t", "|", " "])
 def test_delimiter_detection_among_the_five_candidates(tmp_path, delimiter):
     """Each of , ; tab | and space is detected from the first lines."""
-    rows = ["zone{d}latency{d}ok".format(d=delimiter)]
-    rows += [f"z{i % 3}{delimiter}{i * 1.5}{delimiter}{'true' if i % 2 else 'false'}" for i in range(30)]
+    rows = [f"zone{delimiter}latency{delimiter}ok"]
+    rows += [
+        f"z{i % 3}{delimiter}{i * 1.5}{delimiter}{'true' if i % 2 else 'false'}" for i in range(30)
+    ]
     got = _read(_write(tmp_path, "x.csv", "\n".join(rows) + "\n"))
     assert list(got.table.columns) == ["zone", "latency", "ok"]
     assert got.summary["files"][0]["delimiter"] == delimiter
@@ -168,14 +170,18 @@ def test_header_without_rows_has_no_data_rows(tmp_path):
 def test_binary_garbage_given_as_csv(tmp_path, content):
     """A PNG image or a gzip file named .csv is refused as not a CSV/Parquet/JSON-lines file."""
     path = _write(tmp_path, "extract.csv", content)
-    with pytest.raises(DataError, match=r"extract\.csv` does not look like a CSV/Parquet/JSON-lines file"):
+    with pytest.raises(
+        DataError, match=r"extract\.csv` does not look like a CSV/Parquet/JSON-lines file"
+    ):
         _read(path)
 
 
 def test_wrong_delimiter_finds_only_one_column(tmp_path):
     """A comma file read with `input.delimiter: ;` lands in one column and says how to fix it."""
     path = _write(tmp_path, "x.csv", "a,b,c\n1,2,3\n4,5,6\n")
-    with pytest.raises(DataError, match=r"Only one column .* was found in `.*x\.csv`.*`input\.delimiter`"):
+    with pytest.raises(
+        DataError, match=r"Only one column .* was found in `.*x\.csv`.*`input\.delimiter`"
+    ):
         _read(path, delimiter=";")
 
 
@@ -203,7 +209,9 @@ def test_duplicate_column_names_are_refused(tmp_path):
 
 def test_non_utf8_line_is_quarantined_with_its_line(tmp_path):
     """A line holding a byte that is not UTF-8 is rejected (line, reason, escaped raw); others kept."""
-    content = b"zone,load\n" + b"".join(b"a,%d\n" % i for i in range(30)) + b"caf\xe9,7\n" + b"b,8\n"
+    content = (
+        b"zone,load\n" + b"".join(b"a,%d\n" % i for i in range(30)) + b"caf\xe9,7\n" + b"b,8\n"
+    )
     path = _write(tmp_path, "latin.csv", content)
     got = _read(path)
     assert len(got.table) == 31
@@ -231,13 +239,15 @@ def test_a_whole_file_in_another_encoding_is_refused_not_quarantined(tmp_path):
     """When many lines fail to decode the encoding is wrong: DataError suggesting `input.encoding`."""
     content = b"zone,load\n" + b"caf\xe9,1\n" * 40
     path = _write(tmp_path, "latin.csv", content)
-    with pytest.raises(DataError, match=r"line 2 has bytes that are not valid utf-8.*`input\.encoding`"):
+    with pytest.raises(
+        DataError, match=r"line 2 has bytes that are not valid utf-8.*`input\.encoding`"
+    ):
         _read(path)
 
 
 def test_names_with_spaces_unicode_and_markup_are_kept_stripped(tmp_path):
     """Column names keep inner spaces, accents and markup characters; outer spaces are stripped."""
-    path = _write(tmp_path, "x.csv", ' queue depth ,région,<b>a&b</b>\n1,x,2\n')
+    path = _write(tmp_path, "x.csv", " queue depth ,région,<b>a&b</b>\n1,x,2\n")
     got = _read(path)
     assert list(got.table.columns) == ["queue depth", "région", "<b>a&b</b>"]
 

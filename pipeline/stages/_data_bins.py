@@ -7,7 +7,8 @@ bin ``i`` holds ``c_i <= x < c_(i+1)`` and the last bin holds ``x >= c_m``.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Optional
+from itertools import pairwise
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -26,7 +27,7 @@ class Coded:
 
     codes: np.ndarray
     levels: list[str]
-    edges: Optional[list[float]]
+    edges: list[float] | None
     method: str
     facts: dict[str, Any] = field(default_factory=dict)
 
@@ -35,8 +36,13 @@ class Coded:
 
 
 def fresh(
-    name: str, values: pd.Series, kind: str, spec: Optional[ColumnSpec],
-    settings: DiscretiseSettings, max_levels: int, order_hint: Optional[list[str]],
+    name: str,
+    values: pd.Series,
+    kind: str,
+    spec: ColumnSpec | None,
+    settings: DiscretiseSettings,
+    max_levels: int,
+    order_hint: list[str] | None,
 ) -> Coded:
     """Codes and labels for a column seen for the first time."""
     method = spec.discretise if spec is not None and spec.discretise else None
@@ -45,7 +51,9 @@ def fresh(
     if kind == "boolean":
         _refuse_binning(name, kind, method)
         truth = values.astype("boolean")
-        codes = np.where(truth.isna().to_numpy(), -1, truth.fillna(False).to_numpy(dtype=bool).astype(int))
+        codes = np.where(
+            truth.isna().to_numpy(), -1, truth.fillna(False).to_numpy(dtype=bool).astype(int)
+        )
         return Coded(codes, ["false", "true"], None, "boolean")
     if kind == "categorical":
         _refuse_binning(name, kind, method)
@@ -74,23 +82,34 @@ def fresh(
     else:
         cuts = _quantile_cuts(present, bins)
     coded = apply_cuts(x, cuts)
-    return Coded(coded, interval_labels(cuts, unit), [float(c) for c in cuts], method,
-                 {"bins_requested": int(bins) if method != "fixed" else len(cuts) + 1})
+    return Coded(
+        coded,
+        interval_labels(cuts, unit),
+        [float(c) for c in cuts],
+        method,
+        {"bins_requested": int(bins) if method != "fixed" else len(cuts) + 1},
+    )
 
 
-def _refuse_binning(name: str, kind: str, method: Optional[str]) -> None:
+def _refuse_binning(name: str, kind: str, method: str | None) -> None:
     if method in ("quantile", "uniform", "fixed"):
-        raise ConfigError(f"`columns.{name}.discretise` = {method!r} needs a numeric column, but "
-                          f"`{name}` is {kind}; remove the setting or declare `type: numeric`.")
+        raise ConfigError(
+            f"`columns.{name}.discretise` = {method!r} needs a numeric column, but "
+            f"`{name}` is {kind}; remove the setting or declare `type: numeric`."
+        )
 
 
-def _fixed_cuts(name: str, spec: Optional[ColumnSpec]) -> list[float]:
+def _fixed_cuts(name: str, spec: ColumnSpec | None) -> list[float]:
     edges = list(spec.edges or []) if spec is not None else []
     if not edges:
-        raise ConfigError(f"`columns.{name}.discretise` is 'fixed' but no `edges` are given; "
-                          "add e.g. `edges: [120, 250]`.")
-    if any(not np.isfinite(e) for e in edges) or any(b <= a for a, b in zip(edges, edges[1:])):
-        raise ConfigError(f"`columns.{name}.edges` = {edges} must be finite and strictly increasing.")
+        raise ConfigError(
+            f"`columns.{name}.discretise` is 'fixed' but no `edges` are given; "
+            "add e.g. `edges: [120, 250]`."
+        )
+    if any(not np.isfinite(e) for e in edges) or any(b <= a for a, b in pairwise(edges)):
+        raise ConfigError(
+            f"`columns.{name}.edges` = {edges} must be finite and strictly increasing."
+        )
     return [float(e) for e in edges]
 
 
@@ -111,14 +130,14 @@ def apply_cuts(x: np.ndarray, cuts: list[float]) -> np.ndarray:
     return codes
 
 
-def interval_labels(cuts: list[float], unit: Optional[str]) -> list[str]:
+def interval_labels(cuts: list[float], unit: str | None) -> list[str]:
     """``< 120 ms``, ``[120, 250) ms``, ``>= 250 ms`` for the cut points [120, 250]."""
     suffix = f" {unit}" if unit else ""
     if not cuts:
         return ["all values"]
     text = format_cut_points(cuts)
     labels = [f"< {text[0]}{suffix}"]
-    labels += [f"[{a}, {b}){suffix}" for a, b in zip(text, text[1:])]
+    labels += [f"[{a}, {b}){suffix}" for a, b in pairwise(text)]
     labels.append(f">= {text[-1]}{suffix}")
     return labels
 
@@ -139,7 +158,9 @@ def number_labels(uniques: np.ndarray) -> list[str]:
     return labels
 
 
-def _text_levels(name: str, values: pd.Series, max_levels: int, order_hint: Optional[list[str]]) -> Coded:
+def _text_levels(
+    name: str, values: pd.Series, max_levels: int, order_hint: list[str] | None
+) -> Coded:
     codes, uniques = pd.factorize(values.astype(object), use_na_sentinel=True)
     levels = sort_levels([str(u) for u in uniques], order_hint)
     check_levels(name, len(levels), max_levels)
@@ -148,7 +169,7 @@ def _text_levels(name: str, values: pd.Series, max_levels: int, order_hint: Opti
     return Coded(remap[np.where(codes >= 0, codes, len(uniques))], levels, None, "categorical")
 
 
-def sort_levels(levels: list[str], order_hint: Optional[list[str]] = None) -> list[str]:
+def sort_levels(levels: list[str], order_hint: list[str] | None = None) -> list[str]:
     """Levels in a stable order: a known order first, numbers numerically, else text; pooled last."""
     special = [lv for lv in (OTHER_LEVEL, MISSING_LEVEL) if lv in levels]
     rest = [lv for lv in levels if lv not in special]
@@ -176,7 +197,7 @@ def check_levels(name: str, count: int, max_levels: int) -> None:
 
 
 def reapply(
-    name: str, values: pd.Series, kind: str, levels: list[str], edges: Optional[list[float]]
+    name: str, values: pd.Series, kind: str, levels: list[str], edges: list[float] | None
 ) -> Coded:
     """Codes for a column with the levels (or cut points) of an earlier run; unknown values -> -1."""
     if edges is not None:

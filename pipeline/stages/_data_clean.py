@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass, field
-from typing import Any, Optional
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -16,13 +16,20 @@ import pandas as pd
 from ..config import CleanSettings, ColumnSpec
 from ..errors import DataError
 from ._data_common import (
-    FALSE_WORDS, INFINITY_WORDS, MISSING_WORDS, TRUE_WORDS, format_number, integer_like,
+    FALSE_WORDS,
+    INFINITY_WORDS,
+    MISSING_WORDS,
+    TRUE_WORDS,
+    format_number,
+    integer_like,
 )
 
 OTHER_LEVEL = "(other)"
 HOUR_BANDS = ["night", "morning", "afternoon", "evening"]  # 0-5, 6-11, 12-17, 18-23 h
 WEEKDAYS = ["Monday", "Tuesday", "Wednesday", "Thursday", "Friday", "Saturday", "Sunday"]
-_DATE_LIKE = re.compile(r"^\d{4}-\d{2}-\d{2}([ T]\d{1,2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?$")
+_DATE_LIKE = re.compile(
+    r"^\d{4}-\d{2}-\d{2}([ T]\d{1,2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?$"
+)
 
 
 @dataclass
@@ -33,7 +40,7 @@ class Typed:
     kind: str  # numeric | categorical | boolean | timestamp | ignore
     values: Any  # pandas Series aligned with the ingested rows
     declared: bool = False
-    bad_rows: Optional[np.ndarray] = None  # positions of rows with text in a numeric column
+    bad_rows: np.ndarray | None = None  # positions of rows with text in a numeric column
     bad_values: list = field(default_factory=list)
     non_finite: int = 0
     notes: list = field(default_factory=list)
@@ -42,7 +49,7 @@ class Typed:
 # ----------------------------------------------------------------------------- inference
 
 
-def infer(name: str, series: pd.Series, spec: Optional[ColumnSpec], settings: CleanSettings) -> Typed:
+def infer(name: str, series: pd.Series, spec: ColumnSpec | None, settings: CleanSettings) -> Typed:
     """The type of one column (declared in `columns:` or inferred) and its values in that type."""
     declared = spec.type if spec is not None else None
     if declared == "ignore":
@@ -57,7 +64,7 @@ def infer(name: str, series: pd.Series, spec: Optional[ColumnSpec], settings: Cl
     return _from_text(name, series, declared, settings)
 
 
-def _from_bool(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+def _from_bool(name: str, series: pd.Series, declared: str | None) -> Typed:
     values = series.astype("boolean")
     if declared == "numeric":
         return Typed(name, "numeric", values.astype("Float64").astype(float), True)
@@ -65,35 +72,45 @@ def _from_bool(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
         text = values.map({True: "true", False: "false"}).astype(object)
         return Typed(name, "categorical", text.where(values.notna(), None), True)
     if declared == "timestamp":
-        raise DataError(f"Column `{name}` holds true/false values and cannot be declared a timestamp; "
-                        "fix `columns:`.")
+        raise DataError(
+            f"Column `{name}` holds true/false values and cannot be declared a timestamp; "
+            "fix `columns:`."
+        )
     return Typed(name, "boolean", values, declared is not None)
 
 
-def _from_number(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+def _from_number(name: str, series: pd.Series, declared: str | None) -> Typed:
     arr = series.to_numpy(dtype=float, na_value=np.nan)
     infinite = np.isinf(arr)
     non_finite = int(infinite.sum())
     if non_finite:
         arr = np.where(infinite, np.nan, arr)
     if declared == "categorical":
-        return Typed(name, "categorical", _number_labels(arr, series.index), True, non_finite=non_finite)
+        return Typed(
+            name, "categorical", _number_labels(arr, series.index), True, non_finite=non_finite
+        )
     if declared == "boolean":
         ok = np.isnan(arr) | (arr == 0) | (arr == 1)
         if not ok.all():
-            raise DataError(f"Column `{name}` is declared boolean but holds numbers other than 0 and 1 "
-                            f"(e.g. {format_number(arr[~ok][0])}); fix `columns:` or the extract.")
+            raise DataError(
+                f"Column `{name}` is declared boolean but holds numbers other than 0 and 1 "
+                f"(e.g. {format_number(arr[~ok][0])}); fix `columns:` or the extract."
+            )
         out = pd.array(np.where(np.isnan(arr), pd.NA, arr == 1), dtype="boolean")
-        return Typed(name, "boolean", pd.Series(out, index=series.index), True, non_finite=non_finite)
+        return Typed(
+            name, "boolean", pd.Series(out, index=series.index), True, non_finite=non_finite
+        )
     if declared == "timestamp":
-        raise DataError(f"Column `{name}` holds numbers and cannot be declared a timestamp; "
-                        "fix `columns:` or write the times as ISO 8601 text.")
+        raise DataError(
+            f"Column `{name}` holds numbers and cannot be declared a timestamp; "
+            "fix `columns:` or write the times as ISO 8601 text."
+        )
     typed = Typed(name, "numeric", pd.Series(arr, index=series.index), declared is not None)
     typed.non_finite = non_finite
     return typed
 
 
-def _from_datetime(name: str, series: pd.Series, declared: Optional[str]) -> Typed:
+def _from_datetime(name: str, series: pd.Series, declared: str | None) -> Typed:
     if declared == "numeric":
         naive = series.dt.tz_convert(None) if getattr(series.dt, "tz", None) is not None else series
         stamps = naive.to_numpy(dtype="datetime64[ns]")
@@ -103,7 +120,9 @@ def _from_datetime(name: str, series: pd.Series, declared: Optional[str]) -> Typ
         text = series.astype(str).astype(object).where(series.notna(), None)
         return Typed(name, "categorical", text, True)
     if declared == "boolean":
-        raise DataError(f"Column `{name}` holds timestamps and cannot be declared boolean; fix `columns:`.")
+        raise DataError(
+            f"Column `{name}` holds timestamps and cannot be declared boolean; fix `columns:`."
+        )
     return Typed(name, "timestamp", series, declared is not None)
 
 
@@ -113,14 +132,18 @@ def _number_labels(arr: np.ndarray, index: pd.Index) -> pd.Series:
     return pd.Series(labels[codes], index=index, dtype=object)
 
 
-def _from_text(name: str, series: pd.Series, declared: Optional[str], settings: CleanSettings) -> Typed:
+def _from_text(
+    name: str, series: pd.Series, declared: str | None, settings: CleanSettings
+) -> Typed:
     plain = series.astype(object) if isinstance(series.dtype, pd.CategoricalDtype) else series
     codes, uniques = pd.factorize(plain, use_na_sentinel=True)
     text = pd.Index(uniques, dtype=object).map(str).str.strip()
     low = text.str.lower()
     infinite = np.asarray(low.isin(INFINITY_WORDS), dtype=bool)
     missing = np.asarray(low.isin(MISSING_WORDS), dtype=bool) | infinite
-    numbers = pd.to_numeric(pd.Series(np.asarray(text, dtype=object)), errors="coerce").to_numpy(float)
+    numbers = pd.to_numeric(pd.Series(np.asarray(text, dtype=object)), errors="coerce").to_numpy(
+        float
+    )
     parsed_inf = np.isinf(numbers) & ~missing
     infinite |= parsed_inf
     missing |= parsed_inf
@@ -164,15 +187,20 @@ def _from_text(name: str, series: pd.Series, declared: Optional[str], settings: 
         bad = ~missing & ~np.asarray(truth | falsity, dtype=bool)
         if bad.any():
             shown = ", ".join(f"`{v}`" for v in list(text[bad])[:3])
-            raise DataError(f"Column `{name}` is declared boolean but holds {shown}; use true/false, "
-                            "yes/no or 1/0, or change its `type` in `columns:`.")
-        per_unique = np.array([True if t else False for t in truth] + [pd.NA], dtype=object)
+            raise DataError(
+                f"Column `{name}` is declared boolean but holds {shown}; use true/false, "
+                "yes/no or 1/0, or change its `type` in `columns:`."
+            )
+        per_unique = np.array([bool(t) for t in truth] + [pd.NA], dtype=object)
         per_unique[:-1][missing] = pd.NA
         values = pd.Series(pd.array(per_unique[codes], dtype="boolean"), index=series.index)
         return Typed(name, "boolean", values, declared is not None, non_finite=non_finite)
     if kind == "timestamp":
-        stamps = pd.to_datetime(pd.Series(np.asarray(text, dtype=object)).where(~missing, None),
-                                errors="coerce", format="ISO8601")
+        stamps = pd.to_datetime(
+            pd.Series(np.asarray(text, dtype=object)).where(~missing, None),
+            errors="coerce",
+            format="ISO8601",
+        )
         unparsed = ~missing & stamps.isna().to_numpy()
         if unparsed.any():
             rows = np.flatnonzero(unparsed[codes] & (codes >= 0))
@@ -215,11 +243,29 @@ def time_features(typed: Typed) -> list[tuple[Typed, list[str]]]:
     day_idx = np.where(present, np.nan_to_num(days).astype(int), len(WEEKDAYS))
     idx = stamps.index
     return [
-        (Typed(f"{typed.name}_hour_band", "categorical", pd.Series(band[band_idx], index=idx, dtype=object),
-               notes=[f"derived from `{typed.name}`: night 0-6 h, morning 6-12 h, afternoon 12-18 h, "
-                      "evening 18-24 h"]), HOUR_BANDS),
-        (Typed(f"{typed.name}_weekday", "categorical", pd.Series(day[day_idx], index=idx, dtype=object),
-               notes=[f"derived from `{typed.name}`: day of the week"]), WEEKDAYS),
+        (
+            Typed(
+                f"{typed.name}_hour_band",
+                "categorical",
+                pd.Series(band[band_idx], index=idx, dtype=object),
+                notes=[
+                    (
+                        f"derived from `{typed.name}`: night 0-6 h, morning 6-12 h, "
+                        "afternoon 12-18 h, evening 18-24 h"
+                    )
+                ],
+            ),
+            HOUR_BANDS,
+        ),
+        (
+            Typed(
+                f"{typed.name}_weekday",
+                "categorical",
+                pd.Series(day[day_idx], index=idx, dtype=object),
+                notes=[f"derived from `{typed.name}`: day of the week"],
+            ),
+            WEEKDAYS,
+        ),
     ]
 
 
@@ -228,7 +274,7 @@ def time_features(typed: Typed) -> list[tuple[Typed, list[str]]]:
 
 def decide(
     typed: Typed, values: pd.Series, settings: CleanSettings, has_features: bool
-) -> tuple[Optional[str], pd.Series, dict[str, Any]]:
+) -> tuple[str | None, pd.Series, dict[str, Any]]:
     """The drop reason (None: kept), the final values and the facts for the column summary."""
     n = len(values)
     missing, distinct = _count(typed.kind, values)
@@ -236,34 +282,61 @@ def decide(
     if typed.kind == "ignore":
         return "declared `type: ignore` in `columns:`", values, facts
     if typed.kind == "timestamp":
-        derived = "; hour band and weekday were derived from it" if has_features else (
-            "; set `clean.timestamp_features: true` to derive hour band and weekday")
-        return ("timestamp column: its values mark moments rather than states, so it is not "
-                "tested" + derived), values, facts
+        derived = (
+            "; hour band and weekday were derived from it"
+            if has_features
+            else ("; set `clean.timestamp_features: true` to derive hour band and weekday")
+        )
+        return (
+            (
+                "timestamp column: its values mark moments rather than states, so it is not "
+                "tested" + derived
+            ),
+            values,
+            facts,
+        )
     if missing == n:
         return "entirely missing", values, facts
     if missing / n > settings.max_missing_fraction:
-        return (f"{missing / n:.0%} of values missing, above `clean.max_missing_fraction` = "
-                f"{settings.max_missing_fraction:g}"), values, facts
+        return (
+            (
+                f"{missing / n:.0%} of values missing, above `clean.max_missing_fraction` = "
+                f"{settings.max_missing_fraction:g}"
+            ),
+            values,
+            facts,
+        )
     if distinct == 1 and settings.drop_constant:
         only = values.dropna().iloc[0]
         shown = format_number(float(only)) if typed.kind == "numeric" else str(only)
         return f"one value only (`{shown}`): a constant cannot be linked to anything", values, facts
     if not typed.declared and _id_like(typed.kind, values, distinct, n - missing, settings):
-        return (f"looks like an identifier: {distinct} distinct values in {n - missing} rows "
-                f"(ratio >= `clean.id_unique_ratio` = {settings.id_unique_ratio:g})"), values, facts
+        return (
+            (
+                f"looks like an identifier: {distinct} distinct values in {n - missing} rows "
+                f"(ratio >= `clean.id_unique_ratio` = {settings.id_unique_ratio:g})"
+            ),
+            values,
+            facts,
+        )
     if typed.kind == "categorical" and settings.rare_level_min_count > 0:
         counts = values.value_counts(dropna=True)
         rare = counts.index[counts < settings.rare_level_min_count]
         if len(rare):
             values = values.where(~values.isin(rare) | values.isna(), OTHER_LEVEL).astype(object)
             values = values.where(values.notna(), None)
-            facts["pooled_levels"] = int(len(rare))
-            typed.notes.append(f"{len(rare)} levels seen fewer than {settings.rare_level_min_count} "
-                               f"times pooled into `{OTHER_LEVEL}`")
+            facts["pooled_levels"] = len(rare)
+            typed.notes.append(
+                f"{len(rare)} levels seen fewer than {settings.rare_level_min_count} "
+                f"times pooled into `{OTHER_LEVEL}`"
+            )
             facts["distinct"] = int(values.nunique(dropna=True))
             if facts["distinct"] == 1 and settings.drop_constant:
-                return f"one value only after pooling rare levels into `{OTHER_LEVEL}`", values, facts
+                return (
+                    f"one value only after pooling rare levels into `{OTHER_LEVEL}`",
+                    values,
+                    facts,
+                )
     return None, values, facts
 
 
@@ -277,10 +350,12 @@ def _count(kind: str, values: pd.Series) -> tuple[int, int]:
         codes, uniques = pd.factorize(values, use_na_sentinel=True)
     except TypeError:
         codes, uniques = pd.factorize(values.astype(str), use_na_sentinel=True)
-    return int((codes < 0).sum()), int(len(uniques))
+    return int((codes < 0).sum()), len(uniques)
 
 
-def _id_like(kind: str, values: pd.Series, distinct: int, present: int, settings: CleanSettings) -> bool:
+def _id_like(
+    kind: str, values: pd.Series, distinct: int, present: int, settings: CleanSettings
+) -> bool:
     if kind == "boolean" or distinct < 2 or present == 0:
         return False
     if kind == "numeric" and not integer_like(values.to_numpy(dtype=float)):

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import difflib
 import math
-from typing import Iterable, Sequence
+from collections.abc import Iterable, Sequence
 
 import numpy as np
 import pandas as pd
@@ -13,13 +13,47 @@ REJECTED_COLUMNS = ["source", "line", "reason", "raw"]
 
 # Spellings of "no value" met in extracts, compared after stripping and lower-casing.
 MISSING_WORDS = frozenset(
-    {"", "na", "n/a", "#n/a", "n.a.", "nan", "-nan", "+nan", "null", "#null!", "none", "nil",
-     "-", "?", "nat", "missing", "#value!", "#div/0!", "#num!", "#ref!", "#name?"}
+    {
+        "",
+        "na",
+        "n/a",
+        "#n/a",
+        "n.a.",
+        "nan",
+        "-nan",
+        "+nan",
+        "null",
+        "#null!",
+        "none",
+        "nil",
+        "-",
+        "?",
+        "nat",
+        "missing",
+        "#value!",
+        "#div/0!",
+        "#num!",
+        "#ref!",
+        "#name?",
+    }
 )
 # Spellings of an infinite number; they become missing too (and are counted as non-finite).
 INFINITY_WORDS = frozenset(
-    {"inf", "-inf", "+inf", "infinity", "-infinity", "+infinity", "∞", "-∞", "+∞",
-     "1.#inf", "-1.#inf", "1.#ind", "-1.#ind"}
+    {
+        "inf",
+        "-inf",
+        "+inf",
+        "infinity",
+        "-infinity",
+        "+infinity",
+        "∞",
+        "-∞",
+        "+∞",
+        "1.#inf",
+        "-1.#inf",
+        "1.#ind",
+        "-1.#ind",
+    }
 )
 TRUE_WORDS = frozenset({"true", "yes", "y", "t"})
 FALSE_WORDS = frozenset({"false", "no", "n", "f"})
@@ -87,8 +121,8 @@ def format_number(value: float, digits: int = 15) -> str:
         return str(int(value))
     text = format(value, f".{digits}g")
     if "e" in text:
-        mantissa, exp = text.split("e")
-        if -5 < int(exp) < 15:
+        exp = int(text.split("e")[1])
+        if -5 < exp < 15:
             text = np.format_float_positional(float(text), trim="-")
     return text
 
@@ -113,7 +147,7 @@ def format_cut_points(points: Sequence[float]) -> list[str]:
             if len(set(texts)) == len(texts):
                 return texts
         return [repr(p) for p in pts]
-    decimals = max(0, 3 - int(math.floor(math.log10(top))))
+    decimals = max(0, 3 - math.floor(math.log10(top)))
     for d in range(decimals, 17):
         texts = [_trim(format(p, f".{d}f")) for p in pts]
         if len(set(texts)) == len(texts):

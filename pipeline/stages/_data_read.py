@@ -14,7 +14,7 @@ import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Optional
+from typing import Any
 from urllib.parse import unquote
 
 import numpy as np
@@ -31,16 +31,30 @@ from ._data_common import close_matches
 DELIMITERS = [",", "\t", ";", "|", " "]
 _DELIMITER_NAMES = {",": "comma", "\t": "tab", ";": "semicolon", "|": "pipe", " ": "space"}
 _KNOWN_SUFFIXES = {
-    ".csv": "csv", ".tsv": "csv", ".txt": "csv", ".dat": "csv",
-    ".parquet": "parquet", ".pq": "parquet", ".parq": "parquet",
-    ".jsonl": "jsonl", ".ndjson": "jsonl", ".json": "jsonl",
+    ".csv": "csv",
+    ".tsv": "csv",
+    ".txt": "csv",
+    ".dat": "csv",
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".parq": "parquet",
+    ".jsonl": "jsonl",
+    ".ndjson": "jsonl",
+    ".json": "jsonl",
 }
 _MAGIC = [
-    (b"\x89PNG", "a PNG image"), (b"\x1f\x8b", "gzip-compressed data"), (b"PK\x03\x04", "a ZIP archive"),
-    (b"%PDF", "a PDF document"), (b"\xff\xd8\xff", "a JPEG image"), (b"GIF8", "a GIF image"),
-    (b"BZh", "bzip2-compressed data"), (b"\xfd7zXZ", "xz-compressed data"),
-    (b"7z\xbc\xaf", "a 7-Zip archive"), (b"\x28\xb5\x2f\xfd", "zstd-compressed data"),
-    (b"ARROW1", "an Arrow IPC file"), (b"\x7fELF", "an executable"),
+    (b"\x89PNG", "a PNG image"),
+    (b"\x1f\x8b", "gzip-compressed data"),
+    (b"PK\x03\x04", "a ZIP archive"),
+    (b"%PDF", "a PDF document"),
+    (b"\xff\xd8\xff", "a JPEG image"),
+    (b"GIF8", "a GIF image"),
+    (b"BZh", "bzip2-compressed data"),
+    (b"\xfd7zXZ", "xz-compressed data"),
+    (b"7z\xbc\xaf", "a 7-Zip archive"),
+    (b"\x28\xb5\x2f\xfd", "zstd-compressed data"),
+    (b"ARROW1", "an Arrow IPC file"),
+    (b"\x7fELF", "an executable"),
 ]
 _UTF16_BOMS = (b"\xff\xfe", b"\xfe\xff")
 _SAMPLE_BYTES = 1 << 16
@@ -71,8 +85,7 @@ def find_files(source: str | Path) -> tuple[list[tuple[Path, dict[str, str]]], s
         return [(path, {})], "file"
     if path.is_dir():
         files = [
-            p for p in sorted(path.rglob("*"))
-            if p.is_file() and not _hidden(p.relative_to(path))
+            p for p in sorted(path.rglob("*")) if p.is_file() and not _hidden(p.relative_to(path))
         ]
         files = [p for p in files if p.suffix.lower() in _KNOWN_SUFFIXES] or files
         if not files:
@@ -218,7 +231,11 @@ def _blank_bad_lines(
     header_line = len(text) - len(text.lstrip("\r\n"))
     header_no = text.count("\n", 0, header_line) + 1
     too_many = len(bad) > max(_MAX_BAD_LINES_ALWAYS_OK, _MAX_BAD_LINES_FRACTION * n_lines)
-    if settings.encoding_errors == "refuse" or too_many or (settings.header and first_line == header_no):
+    if (
+        settings.encoding_errors == "refuse"
+        or too_many
+        or (settings.header and first_line == header_no)
+    ):
         why = f"{len(bad)} lines" if too_many else f"line {first_line}"
         raise DataError(
             f"`{path}` line {first_line} has bytes that are not valid {encoding} (0x{first_byte:02x}; "
@@ -262,7 +279,7 @@ def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarra
     return np.asarray(starts, dtype=np.int64)
 
 
-def _check_columns(names: list[str], path: Path, limits: LimitSettings, wanted: Optional[list[str]]):
+def _check_columns(names: list[str], path: Path, limits: LimitSettings, wanted: list[str] | None):
     seen: set[str] = set()
     for name in names:
         if name in seen:
@@ -298,7 +315,7 @@ def sniff_delimiter(lines: list[str], quote_char: str) -> str:
     """The delimiter among , tab ; | and space that splits the sample lines most consistently."""
     sample = "\n".join(lines)
     try:
-        guess: Optional[str] = csv.Sniffer().sniff(sample, delimiters="".join(DELIMITERS)).delimiter
+        guess: str | None = csv.Sniffer().sniff(sample, delimiters="".join(DELIMITERS)).delimiter
     except csv.Error:
         guess = None
     scores: dict[str, tuple[float, int]] = {}
@@ -319,8 +336,12 @@ def sniff_delimiter(lines: list[str], quote_char: str) -> str:
 
 
 def read_csv(
-    path: Path, raw: bytes, settings: InputSettings, limits: LimitSettings,
-    wanted: Optional[list[str]], rows_before: int,
+    path: Path,
+    raw: bytes,
+    settings: InputSettings,
+    limits: LimitSettings,
+    wanted: list[str] | None,
+    rows_before: int,
 ) -> _Part:
     """Read one delimited text file with pyarrow; ragged and undecodable rows are rejected."""
     data, bad_lines = to_utf8(raw, path, settings)
@@ -330,11 +351,16 @@ def read_csv(
     lines = [ln for ln in head.splitlines() if ln.strip()][:_SAMPLE_LINES]
     if not lines or (settings.header and len(lines) == 1 and len(data) <= _SAMPLE_BYTES):
         raise DataError(
-            f"`{path}` has no data rows" + (" (only a header line)" if lines else " (it is empty)")
+            f"`{path}` has no data rows"
+            + (" (only a header line)" if lines else " (it is empty)")
             + "; check the extract."
         )
     quote = settings.quote_char or None
-    delimiter = settings.delimiter if settings.delimiter is not None else sniff_delimiter(lines, quote or '"')
+    delimiter = (
+        settings.delimiter
+        if settings.delimiter is not None
+        else sniff_delimiter(lines, quote or '"')
+    )
     first = next(csv.reader([lines[0]], delimiter=delimiter, quotechar=quote or '"'))
     raw_names = first if settings.header else [f"column_{i + 1}" for i in range(len(first))]
     names = _clean_names(raw_names)
@@ -389,8 +415,10 @@ def read_csv(
         except pa.ArrowInvalid as err:
             m = re.search(r"In CSV column #(\d+): CSV conversion error", str(err))
             if not m:
-                raise DataError(f"`{path}` could not be parsed as CSV: {str(err).splitlines()[0]}; "
-                                "check `input.delimiter` and `input.quote_char`.") from err
+                raise DataError(
+                    f"`{path}` could not be parsed as CSV: {str(err).splitlines()[0]}; "
+                    "check `input.delimiter` and `input.quote_char`."
+                ) from err
             column_types[include[int(m.group(1))]] = pa.string()
     frame = table.to_pandas()
     frame.columns = [n for n in names if wanted is None or n in wanted]
@@ -401,7 +429,7 @@ def read_csv(
     header_rec = 1 if settings.header else 0
     bad_rec = np.asarray([r[0] for r in rejected], dtype=np.int64)
     keep = np.ones(len(records), dtype=bool)
-    keep[: header_rec] = False
+    keep[:header_rec] = False
     valid = bad_rec[(bad_rec >= 1) & (bad_rec <= len(records))]
     keep[valid - 1] = False
     row_lines = records[keep]
@@ -417,10 +445,17 @@ def read_csv(
         (str(path), line, f"bytes not valid {settings.encoding}", text) for line, text in bad_lines
     ]
     info = {
-        "path": str(path), "format": "csv", "rows": len(frame), "rejected": len(out_rows),
-        "delimiter": delimiter, "delimiter_detected": settings.delimiter is None,
-        "delimiter_name": _DELIMITER_NAMES.get(delimiter, delimiter), "encoding": settings.encoding,
-        "header": settings.header, "columns": list(frame.columns), "available": names,
+        "path": str(path),
+        "format": "csv",
+        "rows": len(frame),
+        "rejected": len(out_rows),
+        "delimiter": delimiter,
+        "delimiter_detected": settings.delimiter is None,
+        "delimiter_name": _DELIMITER_NAMES.get(delimiter, delimiter),
+        "encoding": settings.encoding,
+        "header": settings.header,
+        "columns": list(frame.columns),
+        "available": names,
     }
     return _Part(frame, out_rows, info)
 
@@ -429,8 +464,11 @@ def read_csv(
 
 
 def read_parquet(
-    path: Path, settings: InputSettings, limits: LimitSettings,
-    wanted: Optional[list[str]], rows_before: int,
+    path: Path,
+    settings: InputSettings,
+    limits: LimitSettings,
+    wanted: list[str] | None,
+    rows_before: int,
 ) -> _Part:
     """Read one Parquet file; the index of the table is the 1-based row number in the file."""
     try:
@@ -449,12 +487,20 @@ def read_parquet(
     try:
         table = pfile.read(columns=chosen, use_pandas_metadata=False)
     except (pa.ArrowException, OSError) as err:
-        raise DataError(f"`{path}` could not be read as Parquet: {str(err).splitlines()[0]}.") from err
+        raise DataError(
+            f"`{path}` could not be read as Parquet: {str(err).splitlines()[0]}."
+        ) from err
     frame = table.to_pandas()
     frame.columns = [n for n in names if wanted is None or n in wanted]
     frame.index = pd.Index(np.arange(1, len(frame) + 1, dtype=np.int64), name="line")
-    info = {"path": str(path), "format": "parquet", "rows": len(frame), "rejected": 0,
-            "columns": list(frame.columns), "available": names}
+    info = {
+        "path": str(path),
+        "format": "parquet",
+        "rows": len(frame),
+        "rejected": 0,
+        "columns": list(frame.columns),
+        "available": names,
+    }
     return _Part(frame, [], info)
 
 
@@ -462,8 +508,12 @@ def read_parquet(
 
 
 def read_jsonl(
-    path: Path, raw: bytes, settings: InputSettings, limits: LimitSettings,
-    wanted: Optional[list[str]], rows_before: int,
+    path: Path,
+    raw: bytes,
+    settings: InputSettings,
+    limits: LimitSettings,
+    wanted: list[str] | None,
+    rows_before: int,
 ) -> _Part:
     """Read one JSON-lines file; lines that are not a JSON object are rejected."""
     data, bad_lines = to_utf8(raw, path, settings)
@@ -488,13 +538,26 @@ def read_jsonl(
     frame.index = pd.Index(records[: len(frame)] if not rejected else frame.index, name="line")
     rejected += [(str(path), ln, f"bytes not valid {settings.encoding}", t) for ln, t in bad_lines]
     for col in frame.columns:  # lists and other nested values become their JSON text
-        if frame[col].dtype == object and frame[col].map(lambda v: isinstance(v, (list, dict, np.ndarray))).any():
+        if (
+            frame[col].dtype == object
+            and frame[col].map(lambda v: isinstance(v, (list, dict, np.ndarray))).any()
+        ):
             frame[col] = frame[col].map(
-                lambda v: json.dumps(v.tolist() if isinstance(v, np.ndarray) else v)
-                if isinstance(v, (list, dict, np.ndarray)) else v
+                lambda v: (
+                    json.dumps(v.tolist() if isinstance(v, np.ndarray) else v)
+                    if isinstance(v, (list, dict, np.ndarray))
+                    else v
+                )
             )
-    info = {"path": str(path), "format": "jsonl", "rows": len(frame), "rejected": len(rejected),
-            "encoding": settings.encoding, "columns": list(frame.columns), "available": names}
+    info = {
+        "path": str(path),
+        "format": "jsonl",
+        "rows": len(frame),
+        "rejected": len(rejected),
+        "encoding": settings.encoding,
+        "columns": list(frame.columns),
+        "available": names,
+    }
     return _Part(frame, rejected, info)
 
 
@@ -519,7 +582,7 @@ def _jsonl_slow(data: bytes, path: Path, records: np.ndarray) -> tuple[pd.DataFr
     return frame, rejected
 
 
-def partition_columns(part: _Part, values: dict[str, str], wanted: Optional[list[str]]) -> _Part:
+def partition_columns(part: _Part, values: dict[str, str], wanted: list[str] | None) -> _Part:
     """Add the ``key=value`` folder values of a partition as columns (unless the file has them)."""
     frame = part.table
     added = {}
@@ -527,19 +590,27 @@ def partition_columns(part: _Part, values: dict[str, str], wanted: Optional[list
         if key in frame.columns or (wanted is not None and key not in wanted):
             continue
         added[key] = pd.Series(
-            [None if value == _HIVE_DEFAULT else value] * len(frame), index=frame.index, dtype=object
+            [None if value == _HIVE_DEFAULT else value] * len(frame),
+            index=frame.index,
+            dtype=object,
         )
     if not added:
         return part
     frame = pd.concat([frame, pd.DataFrame(added, index=frame.index)], axis=1)
-    info = dict(part.info, partition=values, columns=list(frame.columns),
-                available=list(part.info.get("available", [])) + list(values))
+    info = dict(
+        part.info,
+        partition=values,
+        columns=list(frame.columns),
+        available=list(part.info.get("available", [])) + list(values),
+    )
     return _Part(frame, part.rejected, info)
 
 
-def check_wanted(wanted: Optional[list[str]], seen: list[str], what: str = "input.columns") -> None:
+def check_wanted(wanted: list[str] | None, seen: list[str], what: str = "input.columns") -> None:
     """ConfigError naming the first selected column that no file holds, with close matches."""
     for name in wanted or []:
         if name not in seen:
-            raise ConfigError(f"`{what}` names column `{name}`, which the input does not have"
-                              f"{close_matches(name, seen)}.")
+            raise ConfigError(
+                f"`{what}` names column `{name}`, which the input does not have"
+                f"{close_matches(name, seen)}."
+            )

@@ -76,7 +76,9 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
     """
     table = ingested.table
     _check_column_specs(table, cfg)
-    typed = {name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean) for name in table}
+    typed = {
+        name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean) for name in table
+    }
     bad_rows, bad_reasons = _text_in_numeric(typed, ingested, cfg)
     keep = np.ones(len(table), dtype=bool)
     keep[bad_rows] = False
@@ -101,8 +103,10 @@ def _check_column_specs(table: pd.DataFrame, cfg: Config) -> None:
     derivable = [f"{c}_{s}" for c in known for s in ("hour_band", "weekday")]
     for name in cfg.columns:
         if name not in known and not (cfg.clean.timestamp_features and name in derivable):
-            raise ConfigError(f"`columns:` names column `{name}`, which the input does not have"
-                              f"{close_matches(name, known)}.")
+            raise ConfigError(
+                f"`columns:` names column `{name}`, which the input does not have"
+                f"{close_matches(name, known)}."
+            )
 
 
 def _where(ingested: Ingested, rows: np.ndarray) -> str:
@@ -130,22 +134,33 @@ def _text_in_numeric(
         rows = col.bad_rows
         shown = ", ".join(f"`{v}`" for v in col.bad_values)
         if policy == "refuse" or (policy == "categorical" and col.declared):
-            fix = ("fix the extract or remove `type: numeric`" if col.declared else
-                   "set `clean.text_in_numeric` to quarantine or categorical, declare it categorical "
-                   "in `columns:`, or fix the extract")
-            raise DataError(f"Column `{name}` has {len(rows)} non-numeric values ({shown}; first at "
-                            f"{_where(ingested, rows)}); {fix}.")
+            fix = (
+                "fix the extract or remove `type: numeric`"
+                if col.declared
+                else "set `clean.text_in_numeric` to quarantine or categorical, declare it categorical "
+                "in `columns:`, or fix the extract"
+            )
+            raise DataError(
+                f"Column `{name}` has {len(rows)} non-numeric values ({shown}; first at "
+                f"{_where(ingested, rows)}); {fix}."
+            )
         if policy == "categorical":
-            redo = _rules.infer(name, ingested.table[name], ColumnSpec(type="categorical"), cfg.clean)
+            redo = _rules.infer(
+                name, ingested.table[name], ColumnSpec(type="categorical"), cfg.clean
+            )
             redo.declared = False
-            redo.notes.append(f"numeric column with {len(rows)} text values treated as categorical "
-                              "(`clean.text_in_numeric: categorical`)")
+            redo.notes.append(
+                f"numeric column with {len(rows)} text values treated as categorical "
+                "(`clean.text_in_numeric: categorical`)"
+            )
             typed[name] = redo
             continue
         col.notes.append(f"{len(rows)} rows with text quarantined")
         raw_text = ingested.table[name].iloc[rows].astype(str).str.strip().to_numpy()
         for r, value in zip(rows.tolist(), raw_text):
-            reasons.setdefault(r, f"column `{name}` holds text `{value}` where numbers are expected")
+            reasons.setdefault(
+                r, f"column `{name}` holds text `{value}` where numbers are expected"
+            )
     bad = np.asarray(sorted(reasons), dtype=np.int64)
     return bad, reasons
 
@@ -173,7 +188,9 @@ def _duplicates(table: pd.DataFrame, keep: np.ndarray, cfg: Config) -> np.ndarra
     if cfg.clean.duplicates != "drop" or not keep.any():
         return out
     rows = np.flatnonzero(keep)
-    sub = table.iloc[rows].astype(object).where(table.iloc[rows].notna(), None).reset_index(drop=True)
+    sub = (
+        table.iloc[rows].astype(object).where(table.iloc[rows].notna(), None).reset_index(drop=True)
+    )
     out[rows[sub.duplicated(keep="first").to_numpy()]] = True
     return out
 
@@ -204,12 +221,19 @@ def _apply_rules(
             reason = "; ".join([f"{col.kind}, {how}"] + col.notes)
         elif col.notes:
             reason = "; ".join([reason] + col.notes)
-        records.append({
-            "column": name, "action": action, "reason": reason, "type": col.kind,
-            "missing": facts["missing"], "distinct": facts["distinct"],
-            "non_finite": int(col.non_finite), "text_values": int(len(col.bad_rows))
-            if col.bad_rows is not None else 0, "pooled_levels": facts["pooled_levels"],
-        })
+        records.append(
+            {
+                "column": name,
+                "action": action,
+                "reason": reason,
+                "type": col.kind,
+                "missing": facts["missing"],
+                "distinct": facts["distinct"],
+                "non_finite": int(col.non_finite),
+                "text_values": len(col.bad_rows) if col.bad_rows is not None else 0,
+                "pooled_levels": facts["pooled_levels"],
+            }
+        )
     return out, kinds, records
 
 
@@ -234,14 +258,18 @@ def _quarantine(
     paths = np.array([f["path"] for f in files] or [(ingested.sources or [""])[0]], dtype=object)
     delimiter = (files[0].get("delimiter") if files else None) or ","
     sub = ingested.table.iloc[rows]
-    return pd.DataFrame({
-        "source": paths[owner[rows]],
-        "line": sub.index.to_numpy(dtype=np.int64),
-        "reason": np.array([reasons[r] for r in bad_rows.tolist()]
-                           + ["duplicate of an earlier row (`clean.duplicates: drop`)"] * len(dup_rows),
-                           dtype=object),
-        "raw": render_rows(sub, delimiter).to_numpy(dtype=object),
-    })
+    return pd.DataFrame(
+        {
+            "source": paths[owner[rows]],
+            "line": sub.index.to_numpy(dtype=np.int64),
+            "reason": np.array(
+                [reasons[r] for r in bad_rows.tolist()]
+                + ["duplicate of an earlier row (`clean.duplicates: drop`)"] * len(dup_rows),
+                dtype=object,
+            ),
+            "raw": render_rows(sub, delimiter).to_numpy(dtype=object),
+        }
+    )
 
 
 def _source_text(ingested: Ingested) -> str:
@@ -249,30 +277,50 @@ def _source_text(ingested: Ingested) -> str:
 
 
 def _package(
-    ingested: Ingested, out: dict[str, pd.Series], kinds: dict[str, str], records: list[dict],
-    quarantined: pd.DataFrame, order: dict[str, list[str]], cfg: Config, n_duplicates: int,
+    ingested: Ingested,
+    out: dict[str, pd.Series],
+    kinds: dict[str, str],
+    records: list[dict],
+    quarantined: pd.DataFrame,
+    order: dict[str, list[str]],
+    cfg: Config,
+    n_duplicates: int,
 ) -> Cleaned:
     """Apply `columns: {x: {rename: ...}}`, check two columns remain, and write the summary."""
-    renamed = {name: cfg.columns[name].rename for name in out
-               if name in cfg.columns and cfg.columns[name].rename}
+    renamed = {
+        name: cfg.columns[name].rename
+        for name in out
+        if name in cfg.columns and cfg.columns[name].rename
+    }
     names = [renamed.get(n, n) for n in out]
     clash = sorted({n for n in names if names.count(n) > 1})
     if clash:
-        raise ConfigError(f"`columns:` renames give two kept columns the name `{clash[0]}`; "
-                          "choose unique names.")
+        raise ConfigError(
+            f"`columns:` renames give two kept columns the name `{clash[0]}`; choose unique names."
+        )
     if len(out) < 2:
-        dropped = "; ".join(f"`{r['column']}`: {r['reason']}" for r in records if r["action"] == "dropped")
-        raise DataError(f"Fewer than two usable columns remain in `{_source_text(ingested)}` "
-                        f"(kept: {', '.join(names) or 'none'}); dropped: {dropped[:400]}.")
+        dropped = "; ".join(
+            f"`{r['column']}`: {r['reason']}" for r in records if r["action"] == "dropped"
+        )
+        raise DataError(
+            f"Fewer than two usable columns remain in `{_source_text(ingested)}` "
+            f"(kept: {', '.join(names) or 'none'}); dropped: {dropped[:400]}."
+        )
     table = pd.DataFrame({renamed.get(n, n): s for n, s in out.items()}, copy=False)
     kinds = {renamed.get(n, n): k for n, k in kinds.items()}
     for rec in records:
         if rec["column"] in renamed:
             rec["renamed_to"] = renamed[rec["column"]]
-    reasons = quarantined["reason"].str.replace(r"`[^`]*`$|text `.*` where", "text where", regex=True)
+    reasons = quarantined["reason"].str.replace(
+        r"`[^`]*`$|text `.*` where", "text where", regex=True
+    )
     summary = {
-        "rows": {"ingested": int(len(ingested.table)), "quarantined": int(len(quarantined)),
-                 "duplicates_dropped": n_duplicates, "kept": int(len(table))},
+        "rows": {
+            "ingested": len(ingested.table),
+            "quarantined": len(quarantined),
+            "duplicates_dropped": n_duplicates,
+            "kept": len(table),
+        },
         "columns": records,
         "kept": list(table.columns),
         "dropped": {r["column"]: r["reason"] for r in records if r["action"] == "dropped"},

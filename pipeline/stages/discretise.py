@@ -8,7 +8,7 @@ hold a few whole numbers, or binned (quantile, uniform or fixed cut points). ``-
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Optional
+from typing import Any
 
 import pandas as pd
 
@@ -42,12 +42,12 @@ class Discretised:
 
     codes: pd.DataFrame
     levels: dict[str, list[str]]
-    edges: dict[str, Optional[list[float]]]
+    edges: dict[str, list[float] | None]
     kinds: dict[str, str]
     summary: dict[str, Any]
 
 
-def run(cleaned: Cleaned, cfg: Config, reuse: Optional[dict] = None) -> Discretised:
+def run(cleaned: Cleaned, cfg: Config, reuse: dict | None = None) -> Discretised:
     """Code every kept column of `cleaned`.
 
     Parameters
@@ -84,36 +84,55 @@ def run(cleaned: Cleaned, cfg: Config, reuse: Optional[dict] = None) -> Discreti
     for name in cleaned.table.columns:
         values, kind = cleaned.table[name], cleaned.kinds[name]
         if name in known["levels"]:
-            coded = _bins.reapply(name, values, kind, list(known["levels"][name]),
-                                  known["edges"].get(name))
+            coded = _bins.reapply(
+                name, values, kind, list(known["levels"][name]), known["edges"].get(name)
+            )
         else:
-            coded = _bins.fresh(name, values, kind, _spec_for(cleaned, cfg, name), cfg.discretise,
-                                cfg.limits.max_levels, hints.get(name))
+            coded = _bins.fresh(
+                name,
+                values,
+                kind,
+                _spec_for(cleaned, cfg, name),
+                cfg.discretise,
+                cfg.limits.max_levels,
+                hints.get(name),
+            )
         coded = _bins.attach_missing(coded, values.notna().to_numpy(), cfg.test.missing)
         _bins.check_levels(name, len(coded.levels), cfg.limits.max_levels)
         codes[name] = coded.codes.astype(smallest_int_dtype(len(coded.levels)))
         levels[name], edges[name] = coded.levels, coded.edges
-        info[name] = dict(kind=kind, method=coded.method, levels=len(coded.levels),
-                          missing=int((coded.codes == -1).sum()), reused=name in known["levels"],
-                          **coded.facts)
-    summary = {"columns": info, "missing_policy": cfg.test.missing, "reused": bool(known["levels"]),
-               "unknown_levels": {n: i["unknown"] for n, i in info.items() if i.get("unknown")},
-               "not_in_data": sorted(set(known["levels"]) - set(cleaned.table.columns))}
+        info[name] = dict(
+            kind=kind,
+            method=coded.method,
+            levels=len(coded.levels),
+            missing=int((coded.codes == -1).sum()),
+            reused=name in known["levels"],
+            **coded.facts,
+        )
+    summary = {
+        "columns": info,
+        "missing_policy": cfg.test.missing,
+        "reused": bool(known["levels"]),
+        "unknown_levels": {n: i["unknown"] for n, i in info.items() if i.get("unknown")},
+        "not_in_data": sorted(set(known["levels"]) - set(cleaned.table.columns)),
+    }
     table = pd.DataFrame(codes, index=cleaned.table.index)
     return Discretised(table, levels, edges, dict(cleaned.kinds), summary)
 
 
-def _check_reuse(reuse: Optional[dict]) -> dict[str, dict]:
+def _check_reuse(reuse: dict | None) -> dict[str, dict]:
     """The ``levels`` and ``edges`` maps of a reused ``levels.json`` (empty when not reusing)."""
     if reuse is None:
         return {"levels": {}, "edges": {}}
     if not isinstance(reuse, dict) or not isinstance(reuse.get("levels"), dict):
-        raise ConfigError("The reused levels must be the content of a `levels.json` "
-                          "(`{\"levels\": {...}, \"edges\": {...}}`); check `discretise.reuse_from`.")
+        raise ConfigError(
+            "The reused levels must be the content of a `levels.json` "
+            '(`{"levels": {...}, "edges": {...}}`); check `discretise.reuse_from`.'
+        )
     return {"levels": reuse["levels"], "edges": dict(reuse.get("edges") or {})}
 
 
-def _spec_for(cleaned: Cleaned, cfg: Config, name: str) -> Optional[ColumnSpec]:
+def _spec_for(cleaned: Cleaned, cfg: Config, name: str) -> ColumnSpec | None:
     """The `columns:` entry of a kept column, looked up under its name before any rename."""
     original = (cleaned.summary or {}).get("renamed", {}).get(name, name)
     return cfg.columns.get(original) or cfg.columns.get(name)

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Optional, Union
+from typing import Any
 
 import pandas as pd
 
@@ -47,7 +47,7 @@ class Ingested:
     summary: dict[str, Any]
 
 
-def run(source: Union[str, Path], settings: InputSettings, limits: LimitSettings) -> Ingested:
+def run(source: str | Path, settings: InputSettings, limits: LimitSettings) -> Ingested:
     """Read `source` into a typed table plus the rows that could not be parsed.
 
     Parameters
@@ -80,20 +80,27 @@ def run(source: Union[str, Path], settings: InputSettings, limits: LimitSettings
     wanted = list(settings.columns) if settings.columns is not None else None
     parts = []
     for path, partition in files:
-        part = _read_one(path, settings, limits, wanted, sum(len(p.table) + len(p.rejected) for p in parts))
+        part = _read_one(
+            path, settings, limits, wanted, sum(len(p.table) + len(p.rejected) for p in parts)
+        )
         parts.append(_read.partition_columns(part, partition, wanted))
     return _package(parts, settings, kind, str(source), wanted)
 
 
 def _read_one(
-    path: Path, settings: InputSettings, limits: LimitSettings,
-    wanted: Optional[list[str]], rows_before: int,
+    path: Path,
+    settings: InputSettings,
+    limits: LimitSettings,
+    wanted: list[str] | None,
+    rows_before: int,
 ) -> _read._Part:
     """Read one file with the reader its format calls for."""
     try:
         raw = path.read_bytes()
     except OSError as err:
-        raise DataError(f"Input file `{path}` cannot be read ({err.strerror}); check its permissions.") from err
+        raise DataError(
+            f"Input file `{path}` cannot be read ({err.strerror}); check its permissions."
+        ) from err
     fmt = _read.detect_format(path, raw[:4096], settings)
     if fmt == "parquet":
         return _read.read_parquet(path, settings, limits, wanted, rows_before)
@@ -105,7 +112,7 @@ def _read_one(
 
 
 def _package(
-    parts: list, settings: InputSettings, kind: str, source: str, wanted: Optional[list[str]]
+    parts: list, settings: InputSettings, kind: str, source: str, wanted: list[str] | None
 ) -> Ingested:
     """Join the parts, check selection and renames, and build the summary."""
     seen: list[str] = []
@@ -119,11 +126,17 @@ def _package(
     table = table[[c for c in seen if wanted is None or c in wanted]]
     rejected = rejected_frame([row for p in parts for row in p.rejected])
     if len(table) == 0:
-        first = "" if rejected.empty else (
-            f" ({len(rejected)} rows rejected, first at line {rejected['line'].iloc[0]}: "
-            f"{rejected['reason'].iloc[0]})"
+        first = (
+            ""
+            if rejected.empty
+            else (
+                f" ({len(rejected)} rows rejected, first at line {rejected['line'].iloc[0]}: "
+                f"{rejected['reason'].iloc[0]})"
+            )
         )
-        raise DataError(f"`{source}` has no data rows that could be parsed{first}; check the extract.")
+        raise DataError(
+            f"`{source}` has no data rows that could be parsed{first}; check the extract."
+        )
     table = _rename(table, settings.rename)
     reasons = rejected["reason"].str.replace(r"\d+", "N", regex=True).value_counts()
     summary = {
@@ -135,12 +148,13 @@ def _package(
         "columns": [str(c) for c in table.columns],
         "renamed": dict(settings.rename),
         "rows_read": int(len(table) + len(rejected)),
-        "rows_kept": int(len(table)),
-        "rows_rejected": int(len(rejected)),
+        "rows_kept": len(table),
+        "rows_rejected": len(rejected),
         "rejected_by_reason": {str(k): int(v) for k, v in reasons.items()},
     }
-    return Ingested(table, rejected, int(len(table) + len(rejected)),
-                    [p.info["path"] for p in parts], summary)
+    return Ingested(
+        table, rejected, int(len(table) + len(rejected)), [p.info["path"] for p in parts], summary
+    )
 
 
 def _rename(table: pd.DataFrame, rename: dict[str, str]) -> pd.DataFrame:
@@ -149,12 +163,16 @@ def _rename(table: pd.DataFrame, rename: dict[str, str]) -> pd.DataFrame:
         return table
     for old in rename:
         if old not in table.columns:
-            raise ConfigError(f"`input.rename` names column `{old}`, which the input does not have"
-                              f"{close_matches(old, table.columns)}.")
+            raise ConfigError(
+                f"`input.rename` names column `{old}`, which the input does not have"
+                f"{close_matches(old, table.columns)}."
+            )
     new_names = [rename.get(c, c).strip() for c in table.columns]
     dupes = sorted({n for n in new_names if new_names.count(n) > 1})
     if dupes:
-        raise ConfigError(f"`input.rename` gives two columns the name `{dupes[0]}`; choose unique names.")
+        raise ConfigError(
+            f"`input.rename` gives two columns the name `{dupes[0]}`; choose unique names."
+        )
     out = table.copy(deep=False)
     out.columns = new_names
     return out
