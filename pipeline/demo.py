@@ -48,7 +48,6 @@ import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Optional, Union
 
 import numpy as np
 
@@ -149,7 +148,7 @@ class DemoScenario:
     changed_snapshot_name: str
 
 
-def _band(values: np.ndarray, rows: Optional[np.ndarray] = None) -> np.ndarray:
+def _band(values: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
     """Quartile band 0..3 of each value, with cut points from `rows` (default: all)."""
     basis = values if rows is None else values[rows]
     cuts = np.quantile(basis, [0.25, 0.5, 0.75])
@@ -240,7 +239,7 @@ def _write_csv(path: Path, data: dict[str, list], rng: np.random.Generator, day:
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(_COLUMNS)
     date = (_START_DATE + _dt.timedelta(days=day)).isoformat()
-    ragged_at = set(int(i) for i in rng.choice(max(n, 1), size=min(3, n), replace=False))
+    ragged_at = {int(i) for i in rng.choice(max(n, 1), size=min(3, n), replace=False)}
     text_at = int(rng.integers(0, max(n, 1)))
     for i, row in enumerate(rows):
         writer.writerow(row)
@@ -260,7 +259,7 @@ def _write_csv(path: Path, data: dict[str, list], rng: np.random.Generator, day:
 
 
 def generate(
-    out_dir: Union[str, Path],
+    out_dir: str | Path,
     *,
     seed: int = 7,
     rows_per_snapshot: int = 4000,
@@ -352,7 +351,7 @@ def generate(
     )
 
 
-def main(argv: Optional[list[str]] = None) -> int:
+def main(argv: list[str] | None = None) -> int:
     """Command line: ``python -m pipeline.demo OUT_DIR [--seed N] [--rows N] [--snapshots N]``."""
     parser = argparse.ArgumentParser(
         prog="python -m pipeline.demo",

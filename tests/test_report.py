@@ -70,18 +70,18 @@ def _tests() -> pd.DataFrame:
 
 
 def _context(**over) -> ReportContext:
-    base = dict(
-        title="Synthetic <run> & co",
-        summary={"input": "/data/x.csv", "rows": {"read": 410, "kept": 400, "rejected": 4, "quarantined": 6},
+    base = {
+        "title": "Synthetic <run> & co",
+        "summary": {"input": "/data/x.csv", "rows": {"read": 410, "kept": 400, "rejected": 4, "quarantined": 6},
                  "columns_dropped": {"row_id": "unique identifier", EVIL: "constant"},
                  "settings": {"test": {"alpha": 0.05, "method": "g"}}, "timings": {"ingest": 0.12}},
-        levels={EVIL: ["=1+2", "plain"], "alpha": ["[0, 1)", "[1, 2]"], "beta": ["-3", "-x", "@home"],
+        "levels": {EVIL: ["=1+2", "plain"], "alpha": ["[0, 1)", "[1, 2]"], "beta": ["-3", "-x", "@home"],
                 QUOTY: ["yes", "no"]},
-        alpha=0.05,
-        orient=True,
-        truth_edges=[(EVIL, "alpha"), ("alpha", "beta"), ("beta", "gamma")],
-        warnings=[f"column {EVIL} looks odd"],
-    )
+        "alpha": 0.05,
+        "orient": True,
+        "truth_edges": [(EVIL, "alpha"), ("alpha", "beta"), ("beta", "gamma")],
+        "warnings": [f"column {EVIL} looks odd"],
+    }
     base.update(over)
     return ReportContext(**base)
 
@@ -94,7 +94,7 @@ def report_dir(tmp_path_factory):
 
 
 def _embedded(html_text: str) -> dict:
-    m = re.search(r'<script type="application/json" id="edgeproof-data">(.*?)</script>', html_text, re.S)
+    m = re.search(r'<script type="application/json" id="edgeproof-data">(.*?)</script>', html_text, re.DOTALL)
     assert m is not None
     return json.loads(m.group(1))
 

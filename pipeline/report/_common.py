@@ -3,20 +3,21 @@
 from __future__ import annotations
 
 import math
-from typing import Any, Iterable, Optional, Sequence
+from collections.abc import Iterable, Sequence
+from typing import Any
 
 import pandas as pd
 
 __all__ = [
-    "pair_key",
-    "fmt_p",
-    "fmt_num",
-    "given_text",
-    "edge_classes",
-    "direction",
     "compare_truth",
-    "signal_names",
+    "direction",
+    "edge_classes",
+    "fmt_num",
+    "fmt_p",
+    "given_text",
+    "pair_key",
     "plain",
+    "signal_names",
 ]
 
 
@@ -42,6 +43,8 @@ def fmt_p(p: Any) -> str:
     if p is None:
         return "n/a"
     p = float(p)
+    if p == 0.0:
+        return "< 1e-300"  # below double precision
     return f"{p:.2g}" if p < 0.001 else f"{p:.3f}"
 
 
@@ -84,7 +87,7 @@ def edge_classes(row: Any, alpha: float) -> list[str]:
     return out or ["strong"]
 
 
-def direction(row: Any) -> Optional[tuple[str, str]]:
+def direction(row: Any) -> tuple[str, str] | None:
     """``(tail, head)`` when the pair's orientation reads ``tail -> head``, else None."""
     text = str(plain(row.get("orientation")) or "")
     a, b = str(row["var_a"]), str(row["var_b"])

@@ -13,8 +13,9 @@ import io
 import json
 import math
 import re
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Any, Sequence, Union
+from typing import Any
 
 import networkx as nx
 import pandas as pd
@@ -24,13 +25,13 @@ from ._common import direction, plain
 
 __all__ = [
     "CSV_COLUMNS",
-    "evidence_csv",
-    "neutralise",
-    "unneutralise",
-    "read_review_file",
     "build_nx_graph",
+    "evidence_csv",
     "graphml_bytes",
+    "neutralise",
     "node_link_json",
+    "read_review_file",
+    "unneutralise",
 ]
 
 # evidence.parquet column -> readable header in evidence.csv (order of the CSV)
@@ -115,7 +116,7 @@ def evidence_csv(evidence: pd.DataFrame, levels: dict[str, Sequence[str]]) -> by
     return buf.getvalue().encode("utf-8")
 
 
-def read_review_file(path: Union[str, Path]) -> pd.DataFrame:
+def read_review_file(path: str | Path) -> pd.DataFrame:
     """Read a reviewed evidence.csv back: columns ``var_a, var_b, verdict, comment`` (strings).
 
     Parameters

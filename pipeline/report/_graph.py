@@ -8,7 +8,8 @@ Every string that comes from the data reaches DOT only through `_html_text` (HTM
 from __future__ import annotations
 
 import math
-from typing import Any, Optional, Sequence
+from collections.abc import Sequence
+from typing import Any
 
 import graphviz
 import pandas as pd
@@ -16,7 +17,7 @@ import pandas as pd
 from ..errors import EdgeproofError
 from ._common import compare_truth, direction, edge_classes, fmt_num, fmt_p, given_text, pair_key
 
-__all__ = ["build_graph", "build_truth_graph", "render", "layout_engine"]
+__all__ = ["build_graph", "build_truth_graph", "layout_engine", "render"]
 
 _FONT = "Helvetica"
 _INSTALL_HINT = "install Graphviz (`apt-get install graphviz`) so that `dot` is on PATH"
@@ -195,7 +196,7 @@ def build_truth_graph(
     return g
 
 
-def render(graph: graphviz.Digraph, fmt: str, what: Optional[str] = None) -> bytes:
+def render(graph: graphviz.Digraph, fmt: str, what: str | None = None) -> bytes:
     """Render `graph` to `fmt` bytes with its layout engine; a missing `dot` is an EdgeproofError."""
     try:
         return graph.pipe(format=fmt, engine=graph.engine)

@@ -10,8 +10,9 @@ from __future__ import annotations
 import html
 import json
 import re
+from collections.abc import Mapping, Sequence
 from importlib import metadata, resources
-from typing import Any, Mapping, Optional, Sequence
+from typing import Any
 
 import pandas as pd
 
@@ -52,9 +53,9 @@ def json_for_script(data: Any) -> str:
 def inline_svg(svg: bytes, id_prefix: str = "") -> str:
     """Graphviz SVG without XML prolog, doctype and comments, ids optionally prefixed."""
     text = svg.decode("utf-8")
-    text = re.sub(r"<\?xml.*?\?>", "", text, flags=re.S)
-    text = re.sub(r"<!DOCTYPE.*?>", "", text, flags=re.S)
-    text = re.sub(r"<!--.*?-->", "", text, flags=re.S)
+    text = re.sub(r"<\?xml.*?\?>", "", text, flags=re.DOTALL)
+    text = re.sub(r"<!DOCTYPE.*?>", "", text, flags=re.DOTALL)
+    text = re.sub(r"<!--.*?-->", "", text, flags=re.DOTALL)
     if id_prefix:
         text = re.sub(r'\bid="', f'id="{id_prefix}', text)
     return text.strip()
@@ -150,7 +151,7 @@ def _pairs_text(pairs: Sequence[tuple[str, str]]) -> str:
     return ", ".join(f"{_e(a)} \u2014 {_e(b)}" for a, b in pairs)
 
 
-def _graph_html(svg: str, truth_svg: Optional[str], split: Optional[dict[str, list]]) -> str:
+def _graph_html(svg: str, truth_svg: str | None, split: dict[str, list] | None) -> str:
     recovered = (
         '<figure><div class="svg">' + svg + "</div><figcaption>Recovered graph. Hover an edge or a "
         "signal for its numbers; line styles are explained in the legend.</figcaption></figure>"
@@ -193,8 +194,8 @@ def _cautions(alpha: float) -> str:
 
 
 def _signals_html(names: Sequence[str], levels: Mapping[str, Sequence[str]]) -> str:
-    parts = ['<table class="levels"><thead><tr><th>signal</th><th class="num">levels</th>'
-             "<th>labels</th></tr></thead><tbody>"]
+    parts = [('<table class="levels"><thead><tr><th>signal</th><th class="num">levels</th>'
+              "<th>labels</th></tr></thead><tbody>")]
     for name in names:
         labels = list(levels.get(name, []))
         parts.append(
@@ -309,8 +310,8 @@ def build_html(
     tests: pd.DataFrame,
     names: Sequence[str],
     svg: str,
-    truth_svg: Optional[str] = None,
-    split: Optional[dict[str, list]] = None,
+    truth_svg: str | None = None,
+    split: dict[str, list] | None = None,
 ) -> str:
     """The whole page as a string."""
     payload = evidence_data(evidence, tests, ctx.alpha, ctx.orient)

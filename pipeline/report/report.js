@@ -19,6 +19,7 @@
 
   function fmtP(p) {
     if (p === null || p === undefined) { return "n/a"; }
+    if (p === 0) { return "< 1e-300"; } /* below double precision */
     return p < 0.001 ? p.toPrecision(2) : p.toFixed(3);
   }
 
@@ -26,6 +27,7 @@
     if (x === null || x === undefined) { return ""; }
     if (Number.isInteger(x)) { return String(x); }
     if (x !== 0 && Math.abs(x) < 0.001) { return Number(x).toExponential(1); }
+    if (Math.abs(x) >= 1000) { return String(Math.round(x)); }
     return Number(x).toPrecision(3);
   }
 

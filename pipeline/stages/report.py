@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Optional
+from typing import Any
 
 import pandas as pd
 
@@ -57,13 +57,13 @@ class ReportContext:
     levels: dict[str, list[str]] = field(default_factory=dict)
     alpha: float = 0.05
     orient: bool = False
-    truth_edges: Optional[list[tuple[str, str]]] = None
-    review: Optional[dict[Any, dict[str, str]]] = None
+    truth_edges: list[tuple[str, str]] | None = None
+    review: dict[Any, dict[str, str]] | None = None
     warnings: list[str] = field(default_factory=list)
     png: bool = True
 
 
-def _with_review(evidence: pd.DataFrame, review: Optional[dict[Any, dict[str, str]]]) -> pd.DataFrame:
+def _with_review(evidence: pd.DataFrame, review: dict[Any, dict[str, str]] | None) -> pd.DataFrame:
     """Add the reviewer's verdict and comment per pair (columns ``review_verdict``, ``review_comment``)."""
     if not review:
         return evidence
