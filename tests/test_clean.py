@@ -296,3 +296,15 @@ def test_alarm_benchmark_columns_all_kept_as_numeric():
     assert got.table.shape == (10_000, 37) and set(got.kinds.values()) == {"numeric"}
     raw = np.loadtxt(BENCHMARKS / "alarm" / "data.txt", skiprows=1)
     np.testing.assert_array_equal(got.table.to_numpy(), raw)
+
+
+def test_summaries_are_plain_json(tmp_path):
+    """The ingest and clean summaries (cleaning.json) serialise with the standard json module."""
+    import json
+
+    data = _with_text()
+    data["at"] = pd.date_range("2024-01-01", periods=N, freq="h").strftime("%Y-%m-%d %H:%M")
+    ing = _frame_csv(tmp_path, data)
+    got = clean.run(ing, _cfg(clean={"timestamp_features": True}))
+    assert json.loads(json.dumps(got.summary))["rows"]["quarantined"] == 2
+    assert json.loads(json.dumps(ing.summary))["rows_read"] == N

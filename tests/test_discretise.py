@@ -260,3 +260,19 @@ def test_a_million_rows_by_forty_columns_in_under_twenty_seconds(tmp_path):
     # The machine is shared with other developers, so wall time swings with their load; the CPU
     # seconds this process used (all threads) are the stable measure of the work done.
     assert cpu < 20, f"used {cpu:.1f} CPU s ({wall:.1f} s wall)"
+
+
+def test_reuse_of_whole_number_levels_maps_new_values_to_minus_one():
+    """Reused numeric levels ["1", "2", "3"] code 1, 2, 3 as before; an unseen 7 becomes -1."""
+    kinds = {"k": "numeric", "j": "numeric"}
+    first = discretise.run(
+        _cleaned({"k": [1.0, 2.0, 3.0] * 5, "j": [1.0, 2.0] * 7 + [1.0]}, kinds), _cfg()
+    )
+    stored = {"levels": first.levels, "edges": first.edges}
+    later = discretise.run(
+        _cleaned({"k": [3.0, 7.0, 1.0, np.nan], "j": [2.0, 1.0, 2.0, 1.0]}, kinds),
+        _cfg(),
+        reuse=stored,
+    )
+    assert later.codes["k"].tolist() == [2, -1, 0, -1]
+    assert later.summary["unknown_levels"] == {"k": 1}

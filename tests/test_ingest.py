@@ -274,3 +274,11 @@ def test_too_many_rows_is_a_limit_error(tmp_path):
     cfg = _cfg(limits={"max_rows": 10})
     with pytest.raises(LimitError, match=r"50 rows, above `limits\.max_rows` = 10"):
         ingest.run(path, cfg.input, cfg.limits)
+
+
+def test_no_header_names_columns_by_position(tmp_path):
+    """With `input.header: false` every line is data and columns are named column_1, column_2, ..."""
+    path = _write(tmp_path, "x.csv", "1,a\n2,b\n3,c\n")
+    got = _read(path, header=False)
+    assert list(got.table.columns) == ["column_1", "column_2"]
+    assert got.table["column_1"].tolist() == [1, 2, 3] and got.table.index.tolist() == [1, 2, 3]
