@@ -1,0 +1,50 @@
+"""Shared helpers of the benchmark scripts: machine description, data loading, table output."""
+
+from __future__ import annotations
+
+import platform
+import sys
+from pathlib import Path
+
+import numpy as np
+
+BENCH = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+RESULTS = Path(__file__).resolve().parent / "results"
+
+
+def machine() -> str:
+    """One line naming the machine: cores, CPU model, python and numpy versions."""
+    import os
+
+    model = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    try:
+        import numba
+
+        nb = numba.__version__
+    except ImportError:
+        nb = "not installed"
+    return (f"nproc {os.cpu_count()}, CPU {model}, Python {platform.python_version()}, "
+            f"numpy {np.__version__}, numba {nb}")
+
+
+def load(name: str) -> tuple[np.ndarray, list[str], np.ndarray]:
+    """Codes shaped (variables, rows) as int8, the names and the raw (rows, variables) array."""
+    path = BENCH / name / "data.txt"
+    names = path.read_text().split("\n", 1)[0].split()
+    raw = np.loadtxt(path, skiprows=1, dtype=np.int64)
+    codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])])
+    return codes.astype(np.int8), names, raw
+
+
+def emit(name: str, text: str) -> None:
+    """Print the Markdown and write it to bench/results/<name>.md."""
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    (RESULTS / f"{name}.md").write_text(text)
+    sys.stdout.write(text)
