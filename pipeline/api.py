@@ -251,7 +251,7 @@ def run_pipeline(
     final.parent.mkdir(parents=True, exist_ok=True)
     partial = final.parent / f".{final.name}.partial"
     cache = StageCache(final.parent / ".cache")
-    with run_lock(final.parent / f".{final.name}.lock-dir", 0.0):
+    with run_lock(final.parent / ".locks" / final.name, 0.0):
         if partial.exists():
             shutil.rmtree(partial)
         partial.mkdir(parents=True)
@@ -261,6 +261,7 @@ def run_pipeline(
                         seconds=round(time.perf_counter() - t_start, 3), out_dir=str(final.resolve()))
         atomic_write_json(partial / "manifest.json", manifest)
         publish_run(partial, final)
+        cache.prune(cfg.output.cache_entries, protect={f"{k}-{v}" for k, v in manifest["cache_keys"].items()} | {f"shared-{manifest['cache_keys']['discretise']}"})
     rep.event("done", out=str(final), seconds=manifest["seconds"])
     return load_run(final)
 
@@ -291,17 +292,29 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
     reuse_levels = None
     if cfg.discretise.reuse_from:
         ref = Path(cfg.discretise.reuse_from) / "levels.json"
-        if not ref.is_file():
+        if cfg.discretise.reuse_from in ("latest", "previous"):
+            # the configuration's own run history: the first night sets the categories, later
+            # nights keep them, so nights stay comparable
+            ref = out.parent / cfg.discretise.reuse_from / "levels.json"
+            if not ref.is_file():
+                ref = None  # type: ignore[assignment]
+        if ref is None:
+            pass
+        elif not ref.is_file():
             raise ConfigError(
                 f"`discretise.reuse_from` = `{cfg.discretise.reuse_from}` holds no levels.json; name a finished run folder."
             )
-        reuse_levels = json.loads(ref.read_text(encoding="utf-8"))
+        else:
+            reuse_levels = json.loads(ref.read_text(encoding="utf-8"))
     k_disc = stable_hash(["discretise", k_clean, cfg.section("discretise"), cfg.test.missing, reuse_levels])
 
     # ingest + clean + discretise (each cached; a later hit skips the earlier stages entirely)
     disc_dir = cache.hit("discretise", k_disc)
     clean_dir = cache.hit("clean", k_clean)
     ingest_dir = cache.hit("ingest", k_ingest)
+    for stage_name, key, hit_dir in (("discretise", k_disc, disc_dir), ("clean", k_clean, clean_dir), ("ingest", k_ingest, ingest_dir)):
+        if hit_dir is not None:
+            cache.touch(stage_name, key)
     with _stage("ingest", timings, rep) as st:
         if disc_dir or clean_dir or ingest_dir:
             st.reused = True
@@ -503,6 +516,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
             truth_edges=_truth_edges(cfg, source),
             review={(c["var_a"], c["var_b"]): c for c in comments} or None,
             warnings=warnings,
+            png=cfg.output.png,
         )
         written = report.run(evidence, tests, ctx_report, out)
         if stability_info is not None:

@@ -74,7 +74,9 @@ class DiscretiseSettings(_Section):
     default: Literal["auto", "categorical", "quantile", "uniform"] = "auto"
     bins: int = Field(default=4, ge=2, le=64)
     max_categorical_levels: int = Field(default=12, ge=2)
-    reuse_from: Optional[str] = None  # a run folder whose bin edges and levels are reused
+    # a run folder whose bin edges and levels are reused, or `latest` / `previous` of this
+    # configuration's own runs (the first night then sets the categories for the nights after it)
+    reuse_from: Optional[str] = None
 
 
 class TestSettings(_Section):
@@ -144,6 +146,7 @@ class OutputSettings(_Section):
 
     root: Optional[str] = None
     keep_runs: int = Field(default=30, ge=1)
+    cache_entries: int = Field(default=4, ge=1)  # cached results kept per stage (most recently used)
     png: bool = True
 
 
@@ -155,6 +158,13 @@ class NightlySettings(_Section):
     ready_marker: Optional[str] = None  # e.g. "_SUCCESS": only folders holding it are picked up
     max_attempts: int = Field(default=3, ge=1)
     lock_wait_seconds: float = Field(default=0.0, ge=0.0)
+
+
+class ReportSettings(_Section):
+    """What the report shows besides the evidence."""
+
+    title: Optional[str] = None
+    truth_file: Optional[str] = None  # a known true graph (JSON {"edges": [[a, b], ...]}), e.g. the demo's
 
 
 class CompareSettings(_Section):
@@ -178,6 +188,7 @@ class Config(_Section):
     output: OutputSettings = Field(default_factory=OutputSettings)
     nightly: NightlySettings = Field(default_factory=NightlySettings)
     compare: CompareSettings = Field(default_factory=CompareSettings)
+    report: ReportSettings = Field(default_factory=ReportSettings)
     name: Optional[str] = None  # names the configuration's output folder; default: the file's stem
 
     def section(self, name: str) -> dict[str, Any]:

@@ -104,7 +104,7 @@ def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | Non
                 "`parallel.backend` = dask needs dask.distributed: pip install 'edgeproof[cluster]'."
             ) from err
         try:
-            client = Client(scheduler, timeout="20s", set_as_default=False)
+            client = Client(scheduler, timeout="8s", set_as_default=False)
         except OSError as err:
             raise ConfigError(
                 f"Cannot reach the dask scheduler at `{scheduler}`; start it or fix `parallel.scheduler`."

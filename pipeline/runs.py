@@ -15,6 +15,7 @@ import os
 import re
 import shutil
 import tempfile
+import time
 from pathlib import Path
 from typing import Any, Iterator
 
@@ -37,6 +38,8 @@ __all__ = [
 ]
 
 REPO_OUTPUTS = Path("outputs")
+_UMASK = os.umask(0)
+os.umask(_UMASK)
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -54,6 +57,7 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.fchmod(fd, 0o666 & ~_UMASK)  # the permissions an ordinary open() would give
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -176,6 +180,39 @@ class StageCache:
     def finish(self, stage: str, key: str) -> None:
         """Mark a stage's artifacts complete."""
         atomic_write_text(self.folder(stage, key) / "done", key + "\n")
+
+    def touch(self, stage: str, key: str) -> None:
+        """Record that a cached stage was used (pruning keeps the most recently used)."""
+        with contextlib.suppress(OSError):
+            os.utime(self.folder(stage, key) / "done")
+
+    def prune(self, keep: int, protect: set[str] | frozenset[str] = frozenset()) -> int:
+        """Delete all but the `keep` most recently used entries of each stage; returns how many went.
+
+        Entries named in `protect` (``<stage>-<key>``) and unfinished entries younger than a day
+        (another run may be writing them) are kept.
+        """
+        if not self.root.is_dir():
+            return 0
+        by_stage: dict[str, list[tuple[float, Path]]] = {}
+        for f in self.root.iterdir():
+            if not f.is_dir() or "-" not in f.name or f.name in protect:
+                continue
+            done = f / "done"
+            try:
+                stamp = done.stat().st_mtime if done.is_file() else f.stat().st_mtime
+            except OSError:
+                continue
+            if not done.is_file() and stamp > time.time() - 86400:
+                continue
+            by_stage.setdefault(f.name.rsplit("-", 1)[0], []).append((stamp, f))
+        removed = 0
+        for entries in by_stage.values():
+            entries.sort(reverse=True)
+            for _, f in entries[keep:]:
+                shutil.rmtree(f, ignore_errors=True)
+                removed += 1
+        return removed
 
 
 def publish_run(partial: Path, final: Path) -> None:

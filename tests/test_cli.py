@@ -113,3 +113,23 @@ def test_module_entry_point_runs():
     """`python -m pipeline --version` works like the console script."""
     out = subprocess.run([sys.executable, "-m", "pipeline", "--version"], capture_output=True, text=True, cwd=REPO, check=True)
     assert out.stdout.startswith("edgeproof ")
+
+
+def test_missing_graphviz_says_how_to_install_it(tmp_path, capsys, monkeypatch):
+    """Without Graphviz's `dot` on the PATH the run fails in one line that says how to install it,
+    and no run folder is published."""
+    data = benchmark_path("asia") / "data.txt"
+    monkeypatch.setenv("PATH", str(tmp_path / "empty-path"))
+    code = main(["run", "--input", str(data), "--out", str(tmp_path / "r"), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 1 and "apt-get install graphviz" in err and len(_error_lines(err)) == 1
+    assert not (tmp_path / "r").exists()
+
+
+def test_unreachable_dask_scheduler_is_a_configuration_error(tmp_path, capsys):
+    """A dask scheduler address where nothing listens exits 2 naming the address."""
+    data = benchmark_path("asia") / "data.txt"
+    code = main(["run", "--input", str(data), "--out", str(tmp_path / "r"), "--quiet",
+                 "--set", "parallel.backend=dask", "--set", "parallel.scheduler=tcp://127.0.0.1:9"])
+    err = capsys.readouterr().err
+    assert code == 2 and "tcp://127.0.0.1:9" in err and len(_error_lines(err)) == 1

@@ -80,7 +80,8 @@ def test_json_output_artifacts_and_fail_on_change(demo_runs, tmp_path, capsys):
         assert key in data
     assert data["shd"] == len(data["added"]) + len(data["removed"]) + len(data["orientation_changes"])
     assert all({"pvalue_a", "pvalue_b", "cmi_bits_a", "cmi_bits_b"} <= set(e) for e in data["evidence_change"])
-    assert "different categories" in captured.err  # quantile bins move from night to night
+    # the demo pins the first night's bins (discretise.reuse_from: latest): like is compared with like
+    assert "different categories" not in captured.err
     for name in ("diff.parquet", "diff.csv", "diff.svg", "diff.html", "diff.dot"):
         assert (out / name).is_file()
     table = pd.read_parquet(out / "diff.parquet")
@@ -111,10 +112,15 @@ def test_latest_and_previous_need_a_configuration(demo_runs, tmp_path, capsys):
         compare.run(tmp_path, tmp_path)
 
 
-def test_category_mismatch_refused_when_configured(demo_runs):
+def test_category_mismatch_refused_when_configured(demo_runs, tmp_path):
     """With compare.category_mismatch = refuse, runs on different bins are refused (exit 3)."""
+    from pipeline.api import run_pipeline
+
     scenario, cfg, root = demo_runs
-    a, b = (root / p.stem for p in scenario.snapshots[:2])
+    a = root / scenario.snapshots[0].stem
+    # the second night again, but with its own quantile bins instead of the first night's
+    own_bins = load_config(DEMO_CONFIG, ["discretise.reuse_from=null", "output.png=false"])
+    b = run_pipeline(own_bins, scenario.snapshots[1], tmp_path / "own-bins" / "night").out_dir
     with pytest.raises(DataError, match="different categories") as err:
         compare.run(a, b, category_mismatch="refuse")
     assert err.value.exit_code == 3
