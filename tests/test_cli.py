@@ -133,3 +133,13 @@ def test_unreachable_dask_scheduler_is_a_configuration_error(tmp_path, capsys):
                  "--set", "parallel.backend=dask", "--set", "parallel.scheduler=tcp://127.0.0.1:9"])
     err = capsys.readouterr().err
     assert code == 2 and "tcp://127.0.0.1:9" in err and len(_error_lines(err)) == 1
+
+
+def test_json_log_lines_when_not_a_terminal(tmp_path, capsys):
+    """`--log-format json` gives one JSON object per line: every stage's end and every search level."""
+    data = benchmark_path("asia") / "data.txt"
+    assert main(["run", "--input", str(data), "--out", str(tmp_path / "r"), "--log-format", "json"]) == 0
+    lines = [json.loads(line) for line in capsys.readouterr().err.strip().splitlines()]
+    done = {rec["name"] for rec in lines if rec["event"] == "stage" and rec.get("status") in ("done", "reused")}
+    assert {"ingest", "clean", "discretise", "battery", "skeleton", "report"} <= done
+    assert any(rec["event"] == "level" for rec in lines)
