@@ -10,6 +10,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
+import threading
 from dataclasses import dataclass, field
 from typing import Any, Callable, Iterator, Sequence
 
@@ -50,6 +51,7 @@ class ParallelContext:
     _parallel: Any = None
     _client: Any = None
     _scattered: list[tuple[Any, Any]] = field(default_factory=list)  # (object, future); kept alive
+    _warming: threading.Thread | None = None
 
     def map(self, fn: Callable[[Any, Any], Any], shared: Any, tasks: Sequence[Any]) -> list[Any]:
         """Apply `fn` to each task with the shared payload; results in task order."""
@@ -63,7 +65,24 @@ class ParallelContext:
             return self._client.gather(futures)
         from joblib import delayed
 
+        self._finish_warm_up()
         return list(self._parallel(delayed(fn)(shared, t) for t in tasks))
+
+    def _start_warm_up(self) -> None:
+        """Start the local workers (imports, compiled kernels) in the background while the caller goes on."""
+        from joblib import delayed
+
+        def warm() -> None:
+            with contextlib.suppress(Exception):  # best effort: a real failure shows in the first map
+                self._parallel(delayed(_warm_worker)(None, i) for i in range(self.jobs))
+
+        self._warming = threading.Thread(target=warm, name="edgeproof-warm-up", daemon=True)
+        self._warming.start()
+
+    def _finish_warm_up(self) -> None:
+        if self._warming is not None:
+            self._warming.join()
+            self._warming = None
 
     def _remote(self, shared: Any) -> Any:
         """`shared` with its numpy arrays replaced by the futures of their broadcast copies."""
@@ -121,4 +140,21 @@ def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | Non
     from joblib import Parallel
 
     with Parallel(n_jobs=n, backend="loky", batch_size=1) as par:
-        yield ParallelContext(jobs=n, backend="local", _parallel=par)
+        ctx = ParallelContext(jobs=n, backend="local", _parallel=par)
+        ctx._start_warm_up()
+        try:
+            yield ctx
+        finally:
+            ctx._finish_warm_up()
+
+
+def _warm_worker(_shared: Any, task: int) -> int:
+    """Import the test engine and load its compiled kernels in a worker (one tiny test per set size)."""
+    from .independence.engine import CIEngine
+
+    data = np.zeros((5, 64), dtype=np.int8)
+    data[:, ::2] = 1
+    engine = CIEngine(data, ["a", "b", "c", "d", "e"], [2] * 5)
+    for given in ((), ("c",), ("c", "d"), ("c", "d", "e")):
+        engine.test("a", "b", given)
+    return task
