@@ -29,7 +29,7 @@ import yaml
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 sys.path.insert(0, str(HERE))
-import gen_extract  # noqa: E402
+import gen_extract
 
 SIZES = [10_000, 100_000, 1_000_000, 10_000_000]
 QUICK_SIZES = [10_000, 100_000]
@@ -58,7 +58,7 @@ def _child(args: argparse.Namespace) -> int:
         "import_seconds": round(t1 - t0, 3),
         "run_seconds": round(t2 - t1, 3),
         "stages": res.manifest["stages"],
-        "tests": int(len(res.tests)),
+        "tests": len(res.tests),
         "rows_kept": res.manifest["rows"]["kept"],
         "true_found": len(truth & found),
         "true_total": len(truth),

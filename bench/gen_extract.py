@@ -23,17 +23,26 @@ from __future__ import annotations
 import argparse
 import json
 import os
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-__all__ = ["Signal", "SIGNALS", "BLOCK_ROWS", "blocks", "write_csv", "write_parquet_folder",
-           "config_dict", "truth_edges", "main"]
+__all__ = [
+    "BLOCK_ROWS",
+    "SIGNALS",
+    "Signal",
+    "blocks",
+    "config_dict",
+    "main",
+    "truth_edges",
+    "write_csv",
+    "write_parquet_folder",
+]
 
 BLOCK_ROWS = 250_000
 _MISSING_FRACTION = 0.005

@@ -13,14 +13,14 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from pipeline.api import run_pipeline  # noqa: E402
-from pipeline.config import apply_overrides, config_from_dict  # noqa: E402
-from pipeline.errors import ConfigError  # noqa: E402
-from pipeline.parallel import parallel_context  # noqa: E402
+from pipeline.api import run_pipeline
+from pipeline.config import apply_overrides, config_from_dict
+from pipeline.errors import ConfigError
+from pipeline.parallel import parallel_context
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "bench"))
-import gen_extract  # noqa: E402
+import gen_extract
 
 ROWS = 8_000
 
@@ -83,6 +83,5 @@ def test_dask_run_matches_serial_run_byte_for_byte(cluster, tmp_path, monkeypatc
 
 def test_dask_backend_without_scheduler_is_a_config_error():
     """`parallel.backend: dask` without `parallel.scheduler` stops with a ConfigError naming the key."""
-    with pytest.raises(ConfigError, match="parallel.scheduler"):
-        with parallel_context(1, "dask", None):
-            pass
+    with pytest.raises(ConfigError, match="parallel.scheduler"), parallel_context(1, "dask", None):
+        pass
