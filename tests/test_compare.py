@@ -119,7 +119,8 @@ def test_category_mismatch_refused_when_configured(demo_runs, tmp_path):
     scenario, cfg, root = demo_runs
     a = root / scenario.snapshots[0].stem
     # the second night again, but with its own quantile bins instead of the first night's
-    own_bins = load_config(DEMO_CONFIG, ["discretise.reuse_from=null", "output.png=false"])
+    own_bins = load_config(DEMO_CONFIG, ["discretise.reuse_from=null", "output.png=false",
+                                         f"report.truth_file={scenario.truth_path}"])
     b = run_pipeline(own_bins, scenario.snapshots[1], tmp_path / "own-bins" / "night").out_dir
     with pytest.raises(DataError, match="different categories") as err:
         compare.run(a, b, category_mismatch="refuse")
