@@ -28,7 +28,6 @@ from __future__ import annotations
 import argparse
 import json
 import math
-import os
 import time
 from itertools import product
 from pathlib import Path
@@ -231,12 +230,12 @@ def main(argv: list[str] | None = None) -> str:
     text = "\n".join([
         "# Test settings for small extracts: adjacency F1 against the true graph",
         "",
-        f"Sets: {', '.join(SETS)} (../shared/benchmarks). Sizes {args.sizes}; {seeds} seeded subsamples "
+        (f"Sets: {', '.join(SETS)} (../shared/benchmarks). Sizes {args.sizes}; {seeds} seeded subsamples "
         f"(without replacement, seed offset {args.seed_offset}) per size below 10,000, the full sample "
         "at 10,000. Codes from the levels present in each subsample. F1 is the mean over the four sets "
         "of the mean over the subsamples. `n/f`: an uncapped search stopped for needing more than "
         f"{args.budget} tests in one level. Sparse rule: 5 rows per cell (common practice). "
-        f"Run time {elapsed:.0f} s with jobs = {args.jobs}.",
+        f"Run time {elapsed:.0f} s with jobs = {args.jobs}."),
         "",
         *table,
         "",

@@ -7,7 +7,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from pipeline.errors import ConfigError, DataError
 from pipeline.independence.engine import EngineSettings
@@ -98,7 +99,8 @@ def test_strong_weak_and_independent_pair_in_one_seeded_case():
 def test_same_seed_gives_identical_figures_with_one_and_two_jobs():
     """Stability figures (linked and directed shares) are identical with jobs 1 and 2 for one seed."""
     data, names = _collider(3, 1500)
-    kwargs = dict(resamples=12, seed=42, orient_graph=True, collider_rule="conservative", max_order=None)
+    kwargs = {"resamples": 12, "seed": 42, "orient_graph": True, "collider_rule": "conservative",
+              "max_order": None}
     with parallel_context(jobs=1) as ctx1:
         one = stability.run(data, names, [3] * 4, EngineSettings(), Knowledge(), context=ctx1, **kwargs)
     with parallel_context(jobs=2) as ctx2:

@@ -17,9 +17,10 @@ from __future__ import annotations
 
 import shutil
 import tempfile
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from itertools import combinations
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -111,7 +112,7 @@ def _check(resamples: int, fraction: float, method: str, threshold: float, n_row
         raise ConfigError(f"`search.resample_fraction` = {fraction}; use a share in (0, 1], e.g. 0.5.")
     if not 0.0 < threshold <= 1.0:
         raise ConfigError(f"`search.stable_threshold` = {threshold}; use a share in (0, 1], e.g. 0.6.")
-    take = int(round(fraction * n_rows))
+    take = round(fraction * n_rows)
     if take < 2:
         raise DataError(
             f"Resampling {fraction} of {n_rows} rows leaves {take} rows per resample; "
