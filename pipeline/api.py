@@ -26,7 +26,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .config import Config
+from .config import Config, resolve_auto
 from .errors import ConfigError, DataError
 from .independence.engine import EngineSettings
 from .parallel import parallel_context, share_array
@@ -383,6 +383,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
             "see cleaning.json for why the others were dropped."
         )
     cards = [max(1, len(levels_doc["levels"][n])) for n in names]
+    cfg, auto_settings = resolve_auto(cfg, len(codes), cards)
 
     # knowledge: configuration + reviewed evidence file
     confirm, reject, comments, review_warnings = _review_knowledge(cfg, names)
@@ -494,6 +495,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
         "cache_keys": {"ingest": k_ingest, "clean": k_clean, "discretise": k_disc, "battery": k_battery, "skeleton": k_search},
         "edges": int(evidence["linked"].sum()),
         "tests": int(len(tests)),
+        "auto_settings": auto_settings,
         "review": comments,
         "warnings": warnings,
         "status": "ok",

@@ -9,14 +9,14 @@ from __future__ import annotations
 
 import copy
 from pathlib import Path
-from typing import Any, Literal, Optional, Union
+from typing import Annotated, Any, Literal, Optional, Union
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 from .errors import ConfigError
 
-__all__ = ["Config", "load_config", "apply_overrides", "config_from_dict"]
+__all__ = ["Config", "load_config", "apply_overrides", "config_from_dict", "resolve_auto"]
 
 
 class _Section(BaseModel):
@@ -83,7 +83,8 @@ class TestSettings(_Section):
     """The conditional-independence test used by every battery."""
 
     method: Literal["g", "chi2", "permutation"] = "g"
-    alpha: float = Field(default=0.05, gt=0.0, lt=1.0)
+    # `auto`: 0.2 for small extracts (fewer than 100 * k**2 rows, k the median level count), else 0.05
+    alpha: Union[Literal["auto"], Annotated[float, Field(gt=0.0, lt=1.0)]] = "auto"
     sparse_policy: Literal["flag", "independent", "dependent"] = "flag"
     min_rows_per_cell: float = Field(default=5.0, ge=0.0)
     missing: Literal["drop", "level"] = "drop"
@@ -97,7 +98,8 @@ class TestSettings(_Section):
 class SearchSettings(_Section):
     """The skeleton search (PC-stable) and optional orientation."""
 
-    max_order: Optional[int] = Field(default=None, ge=0)
+    # an integer, `none` (no cap), or `auto`: 2 for small extracts (fewer than 5 * k**5 rows), else none
+    max_order: Union[Literal["auto"], Annotated[int, Field(ge=0)], None] = "auto"
     orient: bool = False
     collider_rule: Literal["plain", "conservative", "majority"] = "conservative"
     resamples: int = Field(default=0, ge=0)
@@ -111,6 +113,8 @@ class SearchSettings(_Section):
     def _none_words(cls, value: Any) -> Any:
         if isinstance(value, str) and value.strip().lower() in {"none", "null", "unlimited", ""}:
             return None
+        if isinstance(value, str) and value.strip().lower() == "auto":
+            return "auto"
         return value
 
 
@@ -198,22 +202,78 @@ class Config(_Section):
         }
 
 
-def _describe(err: ValidationError, data: dict[str, Any]) -> str:
-    first = err.errors()[0]
-    key = ".".join(str(p) for p in first["loc"])
+def _key_path(loc: tuple[Any, ...], data: Any) -> tuple[list[str], Any]:
+    """The part of an error location that names configuration keys, and the value found there."""
+    parts: list[str] = []
     value: Any = data
-    for part in first["loc"]:
-        value = value.get(part, "?") if isinstance(value, dict) else "?"
+    for part in loc:
+        if isinstance(value, dict) and part in value:
+            parts.append(str(part))
+            value = value[part]
+        elif isinstance(value, (list, tuple)) and isinstance(part, int) and part < len(value):
+            parts.append(str(part))
+            value = value[part]
+        else:
+            if not parts or isinstance(value, dict):
+                parts.append(str(part))  # a key that is not there (unknown or missing)
+                value = "?"
+            break
+    return parts, value
+
+
+def _describe(err: ValidationError, data: dict[str, Any]) -> str:
+    errors = err.errors()
+    first = errors[0]
+    parts, value = _key_path(first["loc"], data)
+    key = ".".join(parts)
     if first["type"] == "extra_forbidden":
-        parent = first["loc"][:-1]
         model: Any = Config
-        for part in parent:
-            field = model.model_fields.get(str(part)) if hasattr(model, "model_fields") else None
+        for part in parts[:-1]:
+            field = model.model_fields.get(part) if hasattr(model, "model_fields") else None
             model = field.annotation if field is not None else None
         allowed = sorted(model.model_fields) if hasattr(model, "model_fields") else []
         hint = f"; allowed keys here: {', '.join(allowed)}" if allowed else ""
         return f"Unknown configuration key `{key}`{hint}."
-    return f"Configuration key `{key}` = {value!r} is not allowed: {first['msg']}."
+    # a key whose type is a union (`auto` or a number, say) reports one error per branch
+    msgs = []
+    for e in errors:
+        if ".".join(_key_path(e["loc"], data)[0]) == key and e["msg"] not in msgs:
+            msgs.append(e["msg"])
+    return f"Configuration key `{key}` = {value!r} is not allowed: {'; or '.join(msgs)}."
+
+
+def resolve_auto(cfg: Config, n_rows: int, cards: list[int]) -> tuple[Config, dict[str, Any]]:
+    """Replace `auto` settings by their values for an extract of `n_rows` rows and these level counts.
+
+    The rule comes from the study in ``bench/bench_small_samples.py`` (adjacency F1 on subsamples
+    of the four shared benchmark networks): with k the median number of levels (at least 2),
+    ``test.alpha`` is 0.2 below ``100 * k**2`` rows (a typical two-variable table has fewer than 100
+    rows per cell) and 0.05 above; ``search.max_order`` is 2 below ``5 * k**5`` rows (a typical
+    table of order 3 would have fewer than 5 rows per cell, common practice) and uncapped above.
+    Returns the resolved configuration and a record of what was decided and why.
+    """
+    import statistics
+
+    k = max(2.0, float(statistics.median(cards))) if cards else 2.0
+    decided: dict[str, Any] = {}
+    test, search = cfg.test, cfg.search
+    if test.alpha == "auto":
+        small = n_rows < 100 * k**2
+        test = test.model_copy(update={"alpha": 0.2 if small else 0.05})
+        decided["test.alpha"] = {
+            "value": test.alpha,
+            "why": f"{n_rows} rows {'<' if small else '>='} 100 * k^2 = {100 * k**2:g} (k = {k:g} levels, median)",
+        }
+    if search.max_order == "auto":
+        small = n_rows < 5 * k**5
+        search = search.model_copy(update={"max_order": 2 if small else None})
+        decided["search.max_order"] = {
+            "value": search.max_order,
+            "why": f"{n_rows} rows {'<' if small else '>='} 5 * k^5 = {5 * k**5:g} (k = {k:g} levels, median)",
+        }
+    if not decided:
+        return cfg, decided
+    return cfg.model_copy(update={"test": test, "search": search}), decided
 
 
 def config_from_dict(data: dict[str, Any] | None) -> Config:

@@ -6,7 +6,7 @@ import difflib
 import os
 from typing import Any, Sequence
 
-from .config import Config
+from .config import Config, resolve_auto
 from .errors import ConfigError
 from .independence.engine import CIEngine, EngineSettings
 from .stages import clean, discretise, ingest
@@ -31,6 +31,7 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
     if len({x, y, *given}) != 2 + len(given):
         raise ConfigError("x, y and the --given signals must all be different.")
     cards = [max(1, len(disc.levels[n])) for n in names]
+    cfg, _ = resolve_auto(cfg, len(disc.codes), cards)
     engine = CIEngine(_coded_matrix(disc.codes), names, cards, EngineSettings.from_config(cfg))
     r = engine.test(x, y, list(given))
     out = r.to_dict()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from pipeline.config import apply_overrides, config_from_dict, load_config
+from pipeline.config import apply_overrides, config_from_dict, load_config, resolve_auto
 from pipeline.errors import ConfigError
 
 
@@ -12,8 +12,7 @@ def test_defaults_validate():
     """The empty configuration is valid and has the documented defaults."""
     cfg = load_config(None)
     assert cfg.test.method == "g"
-    assert cfg.test.alpha == 0.05
-    assert cfg.search.max_order is None
+    assert cfg.test.alpha == "auto" and cfg.search.max_order == "auto"
     assert cfg.parallel.jobs == 1
     assert cfg.discretise.default == "auto"
 
@@ -75,3 +74,18 @@ def test_top_level_must_be_mapping():
     """A list at the top level is refused."""
     with pytest.raises(ConfigError, match="mapping"):
         config_from_dict([1, 2])  # type: ignore[arg-type]
+
+
+def test_auto_settings_follow_the_small_extract_rule():
+    """`auto` alpha and order cap follow the documented rule (bench/bench_small_samples.py): with k the
+    median level count, alpha 0.2 below 100 k^2 rows, order cap 2 below 5 k^5 rows."""
+    cfg = load_config(None)
+    small, why = resolve_auto(cfg, 300, [3, 3, 3, 2])
+    assert small.test.alpha == 0.2 and small.search.max_order == 2
+    assert "100 * k^2" in why["test.alpha"]["why"]
+    big, _ = resolve_auto(cfg, 10_000, [3, 3, 3, 2])
+    assert big.test.alpha == 0.05 and big.search.max_order is None
+    middle, _ = resolve_auto(cfg, 1_000, [3, 3, 3])  # 900 <= 1000 < 1215
+    assert middle.test.alpha == 0.05 and middle.search.max_order == 2
+    fixed, why = resolve_auto(load_config(None, ["test.alpha=0.01", "search.max_order=none"]), 300, [3, 3])
+    assert (fixed.test.alpha, fixed.search.max_order, why) == (0.01, None, {})
