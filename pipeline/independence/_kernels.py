@@ -10,7 +10,9 @@ import os
 
 import numpy as np
 
-__all__ = ["HAVE_NUMBA", "count_dense", "count_dense_numpy", "flat_statistics", "flat_statistics_numpy"]
+__all__ = [
+    "HAVE_NUMBA", "count_dense", "count_dense_numpy", "flat_statistics", "flat_statistics_numpy", "run_groups",
+]
 
 _LANES_MAX_CELLS = 1 << 13  # below this many cells, count into 4 interleaved tables (less stalling)
 
@@ -309,3 +311,285 @@ def flat_statistics(counts: np.ndarray, kx: int, ky: int) -> tuple[float, float,
         return flat_statistics_numpy(counts, kx, ky)
     g, chi2, dof, n, observed, m = _flat_statistics_nb(counts, kx, ky)
     return float(g), float(chi2), int(dof), int(n), int(observed), int(m)
+
+
+# --------------------------------------------------------------------------------------------------
+# Batched tests: one compiled call runs a whole list of tests (or PC's candidate lists, stopping at
+# the first independence of each pair) over weighted rows. Rows are taken in blocks of
+# ``_BLOCK`` rows: a cell-code pass per column (vectorises), then one counting pass into
+# interleaved tables, so nothing larger than a block is ever allocated besides the table.
+# --------------------------------------------------------------------------------------------------
+
+_BLOCK = 4096
+
+# Status of a group (a pair's candidate list) after a batched run.
+GROUP_DONE = 0  # ran to its end, or stopped at a test the kernel is sure is independent
+GROUP_UNSURE = 1  # stopped at a test whose decision lies within the margin of the critical value
+GROUP_TOO_BIG = 2  # stopped at a test whose table does not fit the kernel's dense scratch table
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes, table, code, bad):  # pragma: no cover
+        """Dense counts of one test into ``table[:lanes * possible]`` (zeroed here), summed to int64."""
+        n_rows = data.shape[1]
+        ky = cards[y]
+        kxy = cards[x] * ky
+        checked = colmiss[x] or colmiss[y]
+        for j in range(ng):
+            if colmiss[g[j]]:
+                checked = True
+        t = table[: lanes * possible]
+        t[:] = 0
+        lane_mask = lanes - 1
+        for start in range(0, n_rows, _BLOCK):
+            stop = min(n_rows, start + _BLOCK)
+            m = stop - start
+            # cell code: ((z0 * c1 + z1) * c2 + ...) * kxy + x * ky + y
+            if ng > 0:
+                zc = data[g[0], start:stop]
+                for r in range(m):
+                    code[r] = np.int32(zc[r])
+                for j in range(1, ng):
+                    zc = data[g[j], start:stop]
+                    c = np.int32(cards[g[j]])
+                    for r in range(m):
+                        code[r] = code[r] * c + np.int32(zc[r])
+                xc = data[x, start:stop]
+                yc = data[y, start:stop]
+                ukxy = np.int32(kxy)
+                uky = np.int32(ky)
+                for r in range(m):
+                    code[r] = code[r] * ukxy + np.int32(xc[r]) * uky + np.int32(yc[r])
+            else:
+                xc = data[x, start:stop]
+                yc = data[y, start:stop]
+                uky = np.int32(ky)
+                for r in range(m):
+                    code[r] = np.int32(xc[r]) * uky + np.int32(yc[r])
+            if checked:
+                xc = data[x, start:stop]
+                yc = data[y, start:stop]
+                for r in range(m):
+                    bad[r] = xc[r] | yc[r]
+                for j in range(ng):
+                    zc = data[g[j], start:stop]
+                    for r in range(m):
+                        bad[r] |= zc[r]
+                if w is None:
+                    for r in range(m):
+                        if bad[r] >= 0:
+                            t[(r & lane_mask) * possible + code[r]] += 1
+                else:
+                    for r in range(m):
+                        if bad[r] >= 0:
+                            t[(r & lane_mask) * possible + code[r]] += w[start + r]
+            else:
+                if w is None:
+                    for r in range(m):
+                        t[(r & lane_mask) * possible + code[r]] += 1
+                else:
+                    for r in range(m):
+                        t[(r & lane_mask) * possible + code[r]] += w[start + r]
+        counts = np.empty(possible, dtype=np.int64)
+        for c in range(possible):
+            counts[c] = t[c]
+        for lane in range(1, lanes):
+            off = lane * possible
+            for c in range(possible):
+                counts[c] += t[off + c]
+        return counts
+
+    from numba import types as _nbt
+    from numba.extending import intrinsic as _intrinsic
+
+    @_intrinsic
+    def _popcount(typingctx, v):  # pragma: no cover
+        """Number of set bits of a uint64 (the CPU's popcount instruction)."""
+        sig = _nbt.uint64(_nbt.uint64)
+
+        def codegen(context, builder, signature, args):
+            return builder.ctpop(args[0])
+
+        return sig, codegen
+
+    @njit(cache=True, nogil=True)
+    def _count_bits(planes, off, cards, x, y, g, ng, possible, st_idx, st_mask, nz, lev):  # pragma: no cover
+        """Dense counts of one test from bit planes: strata by ANDing planes (empty words dropped),
+        cells by popcounts of stratum & x-level & y-level."""
+        counts = np.zeros(possible, dtype=np.int64)
+        kx = cards[x]
+        ky = cards[y]
+        kxy = kx * ky
+        ox = off[x]
+        oy = off[y]
+        nwords = planes.shape[1]
+        for i in range(nwords):
+            st_idx[0, i] = i
+            st_mask[0, i] = ~np.uint64(0)
+        nz[0] = nwords
+        d = 0
+        lev[0] = 0
+        while True:
+            if ng > 0:
+                if lev[d] >= cards[g[d]]:
+                    if d == 0:
+                        break
+                    d -= 1
+                    lev[d] += 1
+                    continue
+                plane = planes[off[g[d]] + lev[d]]
+                cnt = 0
+                for i in range(nz[d]):
+                    w = st_idx[d, i]
+                    mm = st_mask[d, i] & plane[w]
+                    if mm != 0:
+                        st_idx[d + 1, cnt] = w
+                        st_mask[d + 1, cnt] = mm
+                        cnt += 1
+                nz[d + 1] = cnt
+                if cnt == 0:
+                    lev[d] += 1
+                    continue
+                if d + 1 < ng:
+                    d += 1
+                    lev[d] = 0
+                    continue
+                stratum = 0
+                for j in range(ng):
+                    stratum = stratum * cards[g[j]] + lev[j]
+                leaf = ng
+            else:
+                stratum = 0
+                leaf = 0
+            base = stratum * kxy
+            m_count = nz[leaf]
+            idx = st_idx[leaf]
+            msk = st_mask[leaf]
+            for a in range(kx):
+                px = planes[ox + a]
+                for b in range(ky):
+                    py = planes[oy + b]
+                    acc = np.uint64(0)
+                    if leaf == 0:
+                        for w in range(nwords):
+                            acc += _popcount(px[w] & py[w])
+                    else:
+                        for i in range(m_count):
+                            w = idx[i]
+                            acc += _popcount(msk[i] & px[w] & py[w])
+                    counts[base + a * ky + b] = np.int64(acc)
+            if ng == 0:
+                break
+            lev[d] += 1
+        return counts
+
+    @njit(cache=True, nogil=True)
+    def _run_groups_nb(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
+                       use_chi2, crit, margin, alpha, min_rows, policy, cap, table,
+                       planes, off, bit_cost,
+                       out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible,
+                       group_ran, group_status):  # pragma: no cover
+        """Run groups of tests; with `stop_first`, a group stops at its first independent test."""
+        code = np.empty(_BLOCK, dtype=np.int32)
+        bad = np.empty(_BLOCK, dtype=np.int8)
+        scratch = table.shape[0]
+        use_bits = bit_cost > 0.0
+        nwords = planes.shape[1]
+        depth = gs.shape[1] + 1
+        st_idx = np.empty((depth, nwords if use_bits else 1), dtype=np.int64)
+        st_mask = np.empty((depth, nwords if use_bits else 1), dtype=np.uint64)
+        nz = np.zeros(depth, dtype=np.int64)
+        lev = np.zeros(depth, dtype=np.int64)
+        rows = data.shape[1]
+        for k in range(group_start.shape[0]):
+            status = 0
+            ran = 0
+            for t in range(group_start[k], group_stop[k]):
+                x = xs[t]
+                y = ys[t]
+                ng = gn[t]
+                g = gs[t]
+                possible = cards[x] * cards[y]
+                too_big = possible > cap
+                for j in range(ng):
+                    if too_big:
+                        break
+                    possible *= cards[g[j]]
+                    too_big = possible > cap
+                lanes = 4 if possible <= 8192 else 1
+                if too_big or lanes * possible > scratch:
+                    status = 2
+                    break
+                if use_bits and nwords * possible * bit_cost * (1.0 + ng) < rows * (1.0 + 0.25 * ng):
+                    counts = _count_bits(planes, off, cards, x, y, g, ng, possible, st_idx, st_mask, nz, lev)
+                else:
+                    counts = _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes,
+                                                table, code, bad)
+                gv, cv, dof, n, obs, m = _flat_statistics_nb(counts, cards[x], cards[y])
+                out_g[t] = gv
+                out_chi2[t] = cv
+                out_dof[t] = dof
+                out_n[t] = n
+                out_obs[t] = obs
+                out_m[t] = m
+                out_possible[t] = possible
+                ran += 1
+                if not stop_first:
+                    continue
+                sparse = n < min_rows * possible
+                if sparse and policy != 0:
+                    if policy == 1:
+                        break  # decided independent by the sparse policy
+                    continue
+                if dof == 0:
+                    if 1.0 > alpha:
+                        break
+                    continue
+                stat = cv if use_chi2 else gv
+                if dof >= crit.shape[0]:
+                    status = 1
+                    break
+                c = crit[dof]
+                if stat < c * (1.0 - margin):
+                    break
+                if stat <= c * (1.0 + margin):
+                    status = 1
+                    break
+            group_ran[k] = ran
+            group_status[k] = status
+
+
+def run_groups(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
+               use_chi2, crit, margin, alpha, min_rows, policy, cap, table, planes, off, bit_cost,
+               out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible):
+    """Compiled batch runner (see `_run_groups_nb`); fills the per-test arrays at the tests it runs
+    and returns, per group, the number of tests run and a GROUP_* status."""
+    group_ran = np.zeros(group_start.shape[0], dtype=np.int64)
+    group_status = np.zeros(group_start.shape[0], dtype=np.int64)
+    _run_groups_nb(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
+                   use_chi2, crit, margin, alpha, min_rows, policy, cap, table, planes, off, bit_cost,
+                   out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible, group_ran, group_status)
+    return group_ran, group_status
+
+
+def bit_planes(data: np.ndarray, cards) -> tuple[np.ndarray, np.ndarray]:
+    """One bit plane per level of each variable (bit r of plane (v, l) set when row r has level l).
+
+    Returns the planes shaped (sum of levels, words) as uint64 and each variable's first plane.
+    Missing codes (-1) set no bit; bits past the last row are zero.
+    """
+    n = data.shape[1]
+    words = max(1, (n + 63) // 64)
+    off = np.zeros(len(cards), dtype=np.int64)
+    off[1:] = np.cumsum(np.asarray(cards, dtype=np.int64))[:-1]
+    planes = np.zeros((int(sum(cards)), words), dtype=np.uint64)
+    for v, k in enumerate(cards):
+        col = data[v]
+        for level in range(int(k)):
+            packed = np.packbits(col == level, bitorder="little")
+            buf = np.zeros(words * 8, dtype=np.uint8)
+            buf[: packed.size] = packed
+            planes[off[v] + level] = buf.view(np.uint64)
+    return planes, off

@@ -18,7 +18,7 @@ import numpy as np
 from ..errors import LimitError
 from ._kernels import count_dense
 
-__all__ = ["StratifiedTable", "count_flat", "count_table", "stratum_codes"]
+__all__ = ["StratifiedTable", "compress_rows", "count_flat", "count_table", "stratum_codes"]
 
 _INT64_SAFE = 1 << 62
 
@@ -84,6 +84,7 @@ def count_table(
     partition_rows: int = 2_000_000,
     max_cells: int = 50_000_000,
     strata: tuple[np.ndarray, int, np.ndarray | None] | None = None,
+    weights: np.ndarray | None = None,
 ) -> StratifiedTable:
     """Count x by y within each stratum of `given`, over all rows where all of them are present.
 
@@ -96,6 +97,7 @@ def count_table(
     partition_rows : rows counted at a time; the partial tables are summed.
     max_cells : refuse a dense table above this many cells (a sparse count is used before that).
     strata : a precomputed ``stratum_codes`` result for all rows (shared by tests with the same set).
+    weights : optional count of each row (distinct rows from `compress_rows`); n is their sum.
 
     Examples
     --------
@@ -126,7 +128,7 @@ def count_table(
     gcards = np.asarray([int(cards[k]) for k in given], dtype=np.int64)
     for start in range(0, n_rows, step):
         stop = min(n_rows, start + step)
-        if dense and strata is None:
+        if dense and strata is None and weights is None:
             part = count_dense(data, x, y, given_arr, gcards, kx, ky, start, stop, possible)
             used += int(part.sum())
             total += part
@@ -142,13 +144,22 @@ def count_table(
         idx += _as_index(xc) * ky
         idx += _as_index(yc)
         bad = (xc < 0) | (yc < 0) | (s < 0)
+        wp = None if weights is None else weights[start:stop]
         if bad.any():
             idx = idx[~bad]
-        used += int(idx.size)
+            wp = None if wp is None else wp[~bad]
+        used += int(idx.size) if wp is None else int(wp.sum())
         if dense:
-            total += np.bincount(idx, minlength=possible)
+            if wp is None:
+                total += np.bincount(idx, minlength=possible)
+            else:
+                total += np.bincount(idx, weights=wp, minlength=possible).astype(np.int64)
         else:
-            k, c = np.unique(idx, return_counts=True)
+            if wp is None:
+                k, c = np.unique(idx, return_counts=True)
+            else:
+                k, inv = np.unique(idx, return_inverse=True)
+                c = np.bincount(inv, weights=wp).astype(np.int64)
             keys_parts.append(k)
             counts_parts.append(c)
     if dense:
@@ -188,6 +199,7 @@ def count_flat(
     *,
     partition_rows: int = 2_000_000,
     max_cells: int = 50_000_000,
+    weights: np.ndarray | None = None,
 ) -> tuple[np.ndarray, int]:
     """Counts of x by y per stratum as one flat array of whole ``levels_x * levels_y`` blocks, and n.
 
@@ -202,9 +214,11 @@ def count_flat(
         c = int(cards[k])
         gcards_l.append(c)
         possible *= c
-    if possible > max(4 * min(n_rows, partition_rows), 1 << 16) or possible > max_cells:
+    too_big = possible > max(4 * min(n_rows, partition_rows), 1 << 16) or possible > max_cells
+    if too_big or weights is not None:
         table = count_table(
-            data, cards, x, y, given, partition_rows=partition_rows, max_cells=max_cells
+            data, cards, x, y, given, partition_rows=partition_rows, max_cells=max_cells,
+            weights=weights,
         )
         return table.counts.reshape(-1), table.n
     given_arr = np.asarray(given, dtype=np.int64)
@@ -218,3 +232,71 @@ def count_flat(
             stop = min(n_rows, start + step)
             total += count_dense(data, x, y, given_arr, gcards, kx, ky, start, stop, possible)
     return total, int(total.sum())
+
+
+_HASH_MULT = np.uint64(0x9E3779B97F4A7C15)
+
+
+def _row_hash(data: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of each column of `data` (each row of the table), mixing one variable at a time."""
+    h = np.full(data.shape[1], 0x243F6A8885A308D3, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for row in data:
+            h ^= row.astype(np.int64).view(np.uint64) + np.uint64(0x7F4A7C15)
+            h *= _HASH_MULT
+            h ^= h >> np.uint64(29)
+    return h
+
+
+def _distinct(data: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """First occurrence, inverse and counts of the distinct table rows, or None on a hash collision."""
+    first, inverse, counts = np.unique(_row_hash(data), return_index=True, return_inverse=True,
+                                       return_counts=True)[1:]
+    if not np.array_equal(data[:, first][:, inverse], data):
+        return None
+    return first, inverse, counts
+
+
+def compress_rows(
+    data: np.ndarray, *, max_ratio: float = 1.0, sample: int = 32_768
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """The distinct rows of a coded table and how often each occurs.
+
+    Counting over distinct rows with their counts as weights gives exactly the counts of the
+    full table. Returns ``(distinct, weights)`` with `distinct` shaped (variables, D) in order of
+    first occurrence and `weights` (int64, length D, summing to the rows), or None when the table
+    would keep more than ``max_ratio`` of its rows. Above `sample` rows, an evenly spaced sample is
+    looked at first: the share of distinct rows only falls as rows are added, so a sample above
+    `max_ratio` settles the question cheaply.
+
+    Examples
+    --------
+    >>> d = np.array([[0, 1, 0, 0], [1, 1, 1, 0]], dtype=np.int8)
+    >>> u, w = compress_rows(d)
+    >>> u.tolist(), w.tolist()
+    [[[0, 1, 0], [1, 1, 0]], [2, 1, 1]]
+    """
+    data = np.asarray(data)
+    n = data.shape[1]
+    if n == 0:
+        return None
+    if n > sample:
+        pick = np.linspace(0, n - 1, sample).astype(np.int64)
+        part = np.ascontiguousarray(data[:, pick])
+        found = _distinct(part)
+        d = found[0].size if found is not None else np.unique(
+            np.ascontiguousarray(part.T).view(np.dtype((np.void, part.dtype.itemsize * part.shape[0])))
+        ).size
+        if d > max_ratio * sample:
+            return None
+    found = _distinct(data)
+    if found is None:  # a hash collision (never seen): exact but slower
+        rows = np.ascontiguousarray(data.T)
+        view = rows.view(np.dtype((np.void, rows.dtype.itemsize * rows.shape[1]))).ravel()
+        _, first, counts = np.unique(view, return_index=True, return_counts=True)
+    else:
+        first, _, counts = found
+    if first.size > max_ratio * n:
+        return None
+    order = np.argsort(first, kind="stable")
+    return np.ascontiguousarray(data[:, first[order]]), counts[order].astype(np.int64)

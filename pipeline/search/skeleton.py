@@ -21,6 +21,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from ..independence._kernels import HAVE_NUMBA
+from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
 from ..independence.result import CITestResult
 from ..parallel import ParallelContext
@@ -94,18 +96,10 @@ def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) 
 
 def _battery_worker(shared: tuple[Any, ...], chunk: list[tuple[str, str, list[tuple[str, ...]]]]):
     """Test each pair of a chunk along its candidate sets until the first independence."""
-    data, names, cards, settings = shared
-    engine = CIEngine(data, names, cards, settings)
-    out = []
-    for a, b, cands in chunk:
-        results = []
-        for s in cands:
-            r = engine.test(a, b, s)
-            results.append(r)
-            if r.independent:
-                break
-        out.append(results)
-    return out
+    data, names, cards, settings, distinct, weights = shared
+    packed = None if weights is None else (distinct, weights)
+    engine = CIEngine(data, names, cards, settings, distinct=packed)
+    return engine.first_independent_many(chunk)
 
 
 def _chunks(items: list[Any], weights: list[int], n_chunks: int) -> list[list[Any]]:
@@ -164,7 +158,12 @@ def pc_stable_skeleton(
     """
     names = list(names)
     knowledge = knowledge or Knowledge()
-    shared = (data, names, list(cards), settings)
+    distinct = weights = None
+    if settings.compress_rows and settings.method != "permutation" and HAVE_NUMBA:
+        packed = compress_rows(data, max_ratio=settings.compress_max_ratio)
+        if packed is not None:  # distinct rows found once, shared by every worker
+            distinct, weights = packed
+    shared = (data, names, list(cards), settings, distinct, weights)
     all_pairs = [_pair(a, b) for a, b in combinations(sorted(names), 2)]
     forbidden = frozenset(p for p in all_pairs if knowledge.is_forbidden(*p))
     if resume is None:
