@@ -92,3 +92,67 @@ def test_stratum_codes_mixed_radix():
     assert possible == 6
     assert s.tolist() == [1, 2, 5, -1]
     assert missing.tolist() == [False, False, False, True]
+
+
+def test_compress_rows_weights_reproduce_every_table():
+    """Distinct rows with their counts as weights give exactly the counts of the full table, with missing values."""
+    from pipeline.independence.counting import compress_rows
+
+    rng = np.random.default_rng(4)
+    cards = [3, 2, 4, 2, 3]
+    base = _codes(rng, 300, cards, missing=0.05)
+    data = np.ascontiguousarray(base[:, rng.integers(0, 300, 5000)])  # many repeated rows
+    packed = compress_rows(data, max_ratio=0.5)
+    assert packed is not None
+    distinct, weights = packed
+    assert distinct.shape[1] <= 300 and int(weights.sum()) == 5000
+    assert np.unique(distinct.T, axis=0).shape[0] == distinct.shape[1]
+    for given in [(), (2,), (2, 3), (2, 3, 4)]:
+        full = count_table(data, cards, 0, 1, given)
+        small = count_table(distinct, cards, 0, 1, given, weights=weights)
+        np.testing.assert_array_equal(full.counts, small.counts)
+        assert full.n == small.n
+        fw, nw = count_flat(distinct, cards, 0, 1, given, weights=weights)
+        ff, nf = count_flat(data, cards, 0, 1, given)
+        assert nw == nf and fw.sum() == ff.sum()
+
+
+def test_compress_rows_declines_when_rows_are_distinct():
+    """A table whose rows are nearly all different is not compressed (None), checked on a sample first."""
+    from pipeline.independence.counting import compress_rows
+
+    rng = np.random.default_rng(5)
+    data = rng.integers(0, 4, (12, 50_000)).astype(np.int8)
+    assert compress_rows(data, max_ratio=0.75, sample=4096) is None
+    assert compress_rows(data[:, :10]) is not None  # max_ratio 1: always compressed
+
+
+def test_bit_plane_counts_equal_row_counts():
+    """Bit-plane counting (popcounts of level planes) gives the same table as the row loop, with missing values."""
+    from pipeline.independence._kernels import HAVE_NUMBA
+    from pipeline.independence.engine import CIEngine, EngineSettings
+
+    if not HAVE_NUMBA:
+        pytest.skip("numba not installed")
+    rng = np.random.default_rng(6)
+    cards = [3, 4, 2, 3, 2, 4]
+    data = _codes(rng, 3001, cards, missing=0.03)
+    names = list("abcdef")
+    tests = [(0, 1, ()), (0, 1, (2,)), (1, 3, (0, 2)), (0, 5, (1, 2, 3)), (4, 5, (0, 1, 2, 3))]
+    bits = CIEngine(data, names, cards, EngineSettings(bit_cost=1e-9, compress_rows=False))
+    rows = CIEngine(data, names, cards, EngineSettings(bit_cost=0.0, compress_rows=False))
+    assert bits.test_many(tests) == rows.test_many(tests)
+
+
+def test_tables_above_the_dense_cap_fall_back_to_the_sparse_count():
+    """A table with more cells than 4x the rows is counted sparsely inside test_many, with the numbers of count_table."""
+    from pipeline.independence.engine import CIEngine
+
+    rng = np.random.default_rng(9)
+    cards = [8] * 6
+    data = _codes(rng, 3001, cards)
+    eng = CIEngine(data, list("abcdef"), cards)
+    res = eng.test_many([(0, 1, (2, 3, 4, 5)), (0, 1, ())])  # 8**6 cells > 65,536: the sparse path
+    ref = contingency_statistics(count_table(data, cards, 0, 1, (2, 3, 4, 5)).counts)
+    assert res[0].statistic == pytest.approx(ref.g, rel=1e-12) and res[0].dof == ref.dof
+    assert res[0].n == 3001 and res[1] == eng.test(0, 1)

@@ -111,3 +111,76 @@ def test_settings_refuse_unknown_words():
         EngineSettings(method="fisher")
     with pytest.raises(ConfigError, match="test.sparse_policy"):
         EngineSettings(sparse_policy="maybe")
+
+
+def _alarm_tests(p: int, count: int, seed: int) -> list[tuple[int, int, tuple[int, ...]]]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(count):
+        x, y = (int(v) for v in rng.choice(p, 2, replace=False))
+        rest = [v for v in range(p) if v not in (x, y)]
+        k = int(rng.integers(0, 4))
+        out.append((x, y, tuple(int(v) for v in rng.choice(rest, k, replace=False))))
+    return out
+
+
+@pytest.mark.parametrize("method,policy", [("g", "flag"), ("chi2", "independent"), ("g", "dependent")])
+def test_test_many_equals_one_by_one_and_causal_learn(method, policy):
+    """test_many returns the same CITestResult values as test, compressed or not, and p-values equal causal-learn's CIT to rtol 1e-10."""
+    from causallearn.utils.cit import CIT
+
+    codes, names, raw = _load("alarm")
+    tests = _alarm_tests(codes.shape[0], 150, seed=3)
+    st = EngineSettings(method=method, sparse_policy=policy)
+    eng = CIEngine(codes, names, settings=st)
+    plain = CIEngine(codes, names, settings=EngineSettings(method=method, sparse_policy=policy,
+                                                            compress_rows=False, bit_cost=0.0))
+    assert eng.distinct_rows < eng.n_rows == plain.distinct_rows
+    many = eng.test_many(tests)
+    assert many == [eng.test(*t) for t in tests] == plain.test_many(tests)
+    cit = CIT(raw, "gsq" if method == "g" else "chisq")
+    for r, (x, y, s) in zip(many, tests):
+        assert r.pvalue == pytest.approx(cit(x, y, list(s)), rel=1e-10, abs=1e-300)
+
+
+def test_weights_equal_repeated_rows():
+    """An engine over distinct rows with weights gives the results of the engine over the repeated rows."""
+    from pipeline.independence.counting import compress_rows
+
+    rng = np.random.default_rng(8)
+    base = rng.integers(0, 3, (5, 200)).astype(np.int8)
+    data = np.ascontiguousarray(base[:, rng.integers(0, 200, 3000)])
+    names = list("abcde")
+    distinct, weights = compress_rows(data)
+    st = EngineSettings(compress_rows=False)
+    full = CIEngine(data, names, [3] * 5, st)
+    weighted = CIEngine(distinct, names, [3] * 5, st, weights=weights)
+    shared = CIEngine(data, names, [3] * 5, st, distinct=(distinct, weights))
+    tests = [(0, 1, ()), (0, 1, (2,)), (2, 4, (0, 1)), (1, 3, (0, 2, 4))]
+    assert full.test_many(tests) == weighted.test_many(tests) == shared.test_many(tests)
+    assert weighted.n_rows == 3000
+    np.testing.assert_array_equal(full.table(0, 1, [2]), weighted.table(0, 1, [2]))
+
+
+def test_first_independent_stops_exactly_at_p_above_alpha():
+    """first_independent runs the candidates in order up to the first p > alpha, also when a p-value sits at alpha."""
+    codes, names, _ = _load("alarm")
+    eng = CIEngine(codes, names)
+    cands = [(2,), (3,), (4, 5), (6,), (7, 8, 9)]
+    one_by_one = []
+    for s in cands:
+        one_by_one.append(eng.test(0, 1, s))
+        if one_by_one[-1].independent:
+            break
+    assert eng.first_independent(0, 1, cands) == one_by_one
+    # alpha set to a test's own p-value: p > alpha is false there, so that test does not stop the run
+    target = eng.test(0, 1, (3,))
+    at = CIEngine(codes, names, settings=EngineSettings(alpha=target.pvalue))
+    got = at.first_independent(0, 1, cands)
+    expected = []
+    for s in cands:
+        expected.append(at.test(0, 1, s))
+        if expected[-1].independent:
+            break
+    assert got == expected
+    assert not at.test(0, 1, (3,)).independent

@@ -5,7 +5,8 @@ missing value. A table of x by y given a conditioning set z is counted with one 
 a mixed-radix cell index, one row partition at a time; partition tables add up, so peak memory is
 bounded by the partition size. When the product of the levels is larger than the rows being counted,
 only the cells that occur are kept (a sparse count), so no table larger than the rows it counts is
-ever materialised.
+ever materialised. Rows may carry integer weights (distinct rows from `compress_rows` with their
+number of occurrences); n is then the sum of the weights of the rows used.
 """
 
 from __future__ import annotations

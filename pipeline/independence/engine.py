@@ -1,4 +1,21 @@
-"""The test engine: one object that answers "is x independent of y given z?" over coded data."""
+"""The test engine: one object that answers "is x independent of y given z?" over coded data.
+
+How a test is counted (every path gives the same integer counts, so the same CITestResult):
+
+* repeated rows are counted once with their number of occurrences as a weight
+  (`compress_rows`, used when the distinct rows are at most ``compress_max_ratio`` of the rows);
+* lists of tests run in one compiled call (`test_many`, and `first_independent_many` for PC's
+  candidate lists, which stops each pair at its first independent test);
+* small tables are counted from bit planes of the original rows (one bit per row and level;
+  a cell is a popcount of ANDed planes) when that is cheaper than a pass over the rows;
+* tables with more cells than the kernel's dense cap, and permutation tests, go one at a time
+  through `count_flat` / `count_table`.
+
+Inside the compiled loop a pair's decision is read off a table of critical values
+``chi2.isf(alpha, dof)``; a statistic within a relative ``1e-7`` of its critical value is handed back
+and decided by the exact p-value, and every decision is re-checked as ``pvalue > alpha`` afterwards,
+so the decisions are exactly those of one test at a time.
+"""
 
 from __future__ import annotations
 
@@ -10,12 +27,16 @@ from typing import Sequence
 
 import numpy as np
 from scipy.special import chdtrc as _chdtrc
-
-from ..errors import ConfigError
 from scipy.stats import chi2 as _chi2
 
+from ..errors import ConfigError
 from ._kernels import (
-    GROUP_TOO_BIG, HAVE_NUMBA, _LANES_MAX_CELLS, bit_planes, flat_statistics, run_groups,
+    _LANES_MAX_CELLS,
+    GROUP_TOO_BIG,
+    HAVE_NUMBA,
+    bit_planes,
+    flat_statistics,
+    run_groups,
 )
 from .counting import compress_rows, count_flat, count_table, stratum_codes
 from .permutation import permutation_pvalue

@@ -11,6 +11,9 @@ Order of work, fixed and documented so the result never depends on column order 
 * a pair's candidates are tested in that order until the first one that makes it independent: that
   set is the separating set and the pair is removed when the level ends;
 * the search stops when no pair has a candidate set of the next size, or at ``max_order``.
+
+The distinct rows of the table are found once (when that pays) and shared with every worker; a
+worker runs its whole chunk of pairs in one compiled call (`CIEngine.first_independent_many`).
 """
 
 from __future__ import annotations
