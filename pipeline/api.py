@@ -182,6 +182,13 @@ def _coded_matrix(codes: pd.DataFrame) -> np.ndarray:
     return out
 
 
+def _order(cfg: Config) -> int | None:
+    """The resolved order cap (`auto` is resolved before the search starts)."""
+    value = cfg.search.max_order
+    assert value != "auto", "resolve_auto must run before the search"
+    return value  # type: ignore[return-value]
+
+
 def _stability_frame(evidence: pd.DataFrame, res: Any) -> pd.DataFrame:
     """One row per pair: share of resamples linked, per direction, and whether the pair is stable."""
     rows = []
@@ -196,14 +203,14 @@ def _stability_frame(evidence: pd.DataFrame, res: Any) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def _stable_graph(evidence: pd.DataFrame, levels: dict[str, list[str]], cfg: Config, out: Path) -> dict[str, Path]:
+def _stable_graph(evidence: pd.DataFrame, levels: dict[str, Any], cfg: Config, out: Path) -> dict[str, Path]:
     """The stable graph (pairs linked in at least `search.stable_threshold` of the resamples), drawn
     beside the single-run graph."""
     from .report import _graph
 
     stable = evidence.assign(linked=evidence["stable"].astype(bool))
     names = sorted(set(evidence["var_a"]) | set(evidence["var_b"]))
-    g = _graph.build_graph(stable, names, levels, cfg.test.alpha, cfg.search.orient)
+    g = _graph.build_graph(stable, names, levels, float(cfg.test.alpha), cfg.search.orient)
     return {
         "stable_graph.dot": atomic_write_text(out / "stable_graph.dot", g.source),
         "stable_graph.svg": atomic_write_bytes(out / "stable_graph.svg", _graph.render(g, "svg", "stable_graph.svg")),
@@ -366,6 +373,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
             atomic_write_parquet(d / "discretised.parquet", disc.codes)
             atomic_write_json(d / "levels.json", {"levels": disc.levels, "edges": disc.edges, "kinds": disc.kinds})
             atomic_write_json(d / "discretise.json", disc.summary)
+            assert clean_dir is not None
             for name in ("rejected.parquet", "cleaning.json", "clean-meta.json"):
                 _link_or_copy(clean_dir / name, d / name)
             cache.finish("discretise", k_disc)
@@ -430,7 +438,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
                 d = cache.begin("skeleton", k_search) if not (cache.folder("skeleton", k_search) / "checkpoint.json").is_file() else cache.folder("skeleton", k_search)
                 outcome = skeleton.run(
                     data, names, cards, settings, knowledge, state,
-                    max_order=cfg.search.max_order, orient_graph=cfg.search.orient,
+                    max_order=_order(cfg), orient_graph=cfg.search.orient,
                     collider_rule=cfg.search.collider_rule, context=ctx,
                     checkpoint=d / "checkpoint.json", progress=rep.level,
                 )
@@ -453,7 +461,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
                     res_stab = stability.run(
                         data, names, cards, settings, knowledge, resamples=cfg.search.resamples,
                         fraction=cfg.search.resample_fraction, method=cfg.search.resample_method,
-                        max_order=cfg.search.max_order, orient_graph=cfg.search.orient,
+                        max_order=_order(cfg), orient_graph=cfg.search.orient,
                         collider_rule=cfg.search.collider_rule, seed=cfg.test.seed, context=ctx,
                         threshold=cfg.search.stable_threshold,
                     )
@@ -513,7 +521,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
                 "timings": timings,
             },
             levels=levels_doc["levels"],
-            alpha=cfg.test.alpha,
+            alpha=float(cfg.test.alpha),
             orient=cfg.search.orient,
             truth_edges=_truth_edges(cfg, source),
             review={(c["var_a"], c["var_b"]): c for c in comments} or None,

@@ -12,7 +12,7 @@ import json
 import sys
 import traceback
 from pathlib import Path
-from typing import Sequence
+from typing import NoReturn, Sequence
 
 from . import __version__
 from .errors import EXIT_FAILURE, EXIT_USAGE, ConfigError, EdgeproofError
@@ -21,7 +21,7 @@ __all__ = ["main", "build_parser"]
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> None:  # one line, exit code 2
+    def error(self, message: str) -> NoReturn:  # type: ignore[override]  # one line, exit code 2
         raise ConfigError(f"{message}; see `edgeproof {self.prog.split()[-1]} --help`." if " " in self.prog else f"{message}; see `edgeproof --help`.")
 
 

@@ -293,11 +293,11 @@ def _process(
             _write_state(root, state)
             continue
         if name in seen_names:
-            err = DataError(
+            clash = DataError(
                 f"Snapshots `{seen_names[name]}` and `{entry.entry_name}` both give the run name "
                 f"`{name}`; rename one of them."
             )
-            outcomes.append(_record_failure(snapshots, name, source, err, 0.0, cfg, emit, None))
+            outcomes.append(_record_failure(snapshots, name, source, clash, 0.0, cfg, emit, None))
             _write_state(root, state)
             continue
         seen_names[name] = entry.entry_name

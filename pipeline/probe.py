@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import difflib
 import os
+from pathlib import Path
 from typing import Any, Sequence
 
 from .config import Config, resolve_auto
@@ -18,8 +19,8 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
     """Test `x` independent of `y` given `given` on an extract; returns the result as plain data."""
     from .api import _coded_matrix, _input_files  # the same input resolution as a run
 
-    _input_files(__import__("pathlib").Path(input_path))
-    ing = ingest.run(input_path, cfg.input, cfg.limits)
+    _input_files(Path(input_path))
+    ing = ingest.run(Path(input_path), cfg.input, cfg.limits)
     cl = clean.run(ing, cfg)
     disc = discretise.run(cl, cfg, None)
     names = [str(c) for c in disc.codes.columns]

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 import pandas as pd
@@ -98,7 +98,7 @@ def direction(row: Any) -> tuple[str, str] | None:
     return None
 
 
-def signal_names(evidence: pd.DataFrame, levels: dict[str, Sequence[str]]) -> list[str]:
+def signal_names(evidence: pd.DataFrame, levels: Mapping[str, Sequence[str]]) -> list[str]:
     """Every signal, in the order of `levels` then first appearance in the evidence."""
     names: list[str] = [str(k) for k in levels]
     seen = set(names)

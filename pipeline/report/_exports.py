@@ -13,7 +13,7 @@ import io
 import json
 import math
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -97,7 +97,7 @@ def _cell(column: str, value: Any) -> str:
     return str(value)
 
 
-def evidence_csv(evidence: pd.DataFrame, levels: dict[str, Sequence[str]]) -> bytes:
+def evidence_csv(evidence: pd.DataFrame, levels: Mapping[str, Sequence[str]]) -> bytes:
     """The evidence table for spreadsheet review, ending with `verdict` and `comment` columns.
 
     Those two are empty unless an earlier review (columns ``review_verdict`` / ``review_comment``)
@@ -181,7 +181,7 @@ _EDGE_ATTRS = (
 
 
 def build_nx_graph(
-    evidence: pd.DataFrame, names: Sequence[str], levels: dict[str, Sequence[str]]
+    evidence: pd.DataFrame, names: Sequence[str], levels: Mapping[str, Sequence[str]]
 ) -> nx.Graph:
     """The linked pairs as a networkx Graph, evidence on the edges, levels on the nodes."""
     g = nx.Graph()

@@ -8,7 +8,7 @@ Every string that comes from the data reaches DOT only through `_html_text` (HTM
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import graphviz
@@ -112,7 +112,7 @@ def _node_tooltip(name: str, levels: Sequence[str]) -> graphviz.quoting.NoHtml:
     return _esc_string(text)
 
 
-def _add_nodes(g: graphviz.Digraph, names: Sequence[str], levels: dict[str, Sequence[str]]) -> dict[str, str]:
+def _add_nodes(g: graphviz.Digraph, names: Sequence[str], levels: Mapping[str, Sequence[str]]) -> dict[str, str]:
     ids = {}
     for i, name in enumerate(names):
         ids[name] = f"s{i}"
@@ -123,7 +123,7 @@ def _add_nodes(g: graphviz.Digraph, names: Sequence[str], levels: dict[str, Sequ
 def build_graph(
     evidence: pd.DataFrame,
     names: Sequence[str],
-    levels: dict[str, Sequence[str]],
+    levels: Mapping[str, Sequence[str]],
     alpha: float,
     orient: bool,
 ) -> graphviz.Digraph:
@@ -169,7 +169,7 @@ def build_graph(
 
 def build_truth_graph(
     names: Sequence[str],
-    levels: dict[str, Sequence[str]],
+    levels: Mapping[str, Sequence[str]],
     truth_edges: Sequence[tuple[str, str]],
     linked_pairs: Sequence[tuple[str, str]],
 ) -> graphviz.Digraph:

@@ -90,7 +90,7 @@ def _timings(summary: Mapping[str, Any]) -> list[tuple[str, str, str]]:
             secs, reused = value.get("seconds"), value.get("reused")
         else:
             secs, reused = value, None
-        secs_text = f"{float(secs):.2f}" if plain(secs) is not None else ""
+        secs_text = f"{float(secs):.2f}" if secs is not None and plain(secs) is not None else ""
         out.append((str(name), secs_text, "reused" if reused else ""))
     return out
 

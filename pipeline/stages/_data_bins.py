@@ -60,7 +60,7 @@ def fresh(
         return _text_levels(name, values, max_levels, order_hint)
     x = values.to_numpy(dtype=float, na_value=np.nan)
     present = x[np.isfinite(x)]
-    method = method or settings.default
+    method = method or settings.default  # type: ignore[assignment]
     uniques = None
     if method == "auto":
         method = "quantile"
@@ -86,7 +86,7 @@ def fresh(
         coded,
         interval_labels(cuts, unit),
         [float(c) for c in cuts],
-        method,
+        str(method),
         {"bins_requested": int(bins) if method != "fixed" else len(cuts) + 1},
     )
 

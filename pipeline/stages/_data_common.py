@@ -173,9 +173,10 @@ def render_rows(table: pd.DataFrame, delimiter: str) -> pd.Series:
     """Each row's values joined by `delimiter` (missing shown empty), built column by column."""
     if table.shape[1] == 0:
         return pd.Series([""] * len(table), index=table.index, dtype=object)
-    out = None
+    out: pd.Series | None = None
     for name in table.columns:
         col = table[name].astype(object)
         text = col.where(col.notna(), "").astype(str)
         out = text if out is None else out + delimiter + text
+    assert out is not None
     return out.astype(object)

@@ -140,7 +140,7 @@ def detect_format(path: Path, head: bytes, settings: InputSettings) -> str:
     """``csv``, ``parquet`` or ``jsonl`` for one file; `DataError` for binary files of other kinds."""
     if head.startswith(b"PAR1") and settings.format in ("auto", "parquet"):
         return "parquet"
-    fmt = settings.format
+    fmt: str = settings.format
     if fmt == "auto":
         fmt = _KNOWN_SUFFIXES.get(path.suffix.lower(), "")
     if fmt == "parquet":

@@ -165,7 +165,7 @@ def evidence_frame(
 
 
 def _explain(row: dict[str, object], alpha: float) -> str:
-    n_tests = int(row["n_tests"])  # type: ignore[arg-type]
+    n_tests = int(row["n_tests"])  # type: ignore[call-overload]
     p = float(row["pvalue"])  # type: ignore[arg-type]
     given = _set_text(str(row["given"]))
     if row["knowledge"] == "forbidden":

@@ -287,8 +287,8 @@ def _package(
     n_duplicates: int,
 ) -> Cleaned:
     """Apply `columns: {x: {rename: ...}}`, check two columns remain, and write the summary."""
-    renamed = {
-        name: cfg.columns[name].rename
+    renamed: dict[str, str] = {
+        name: str(cfg.columns[name].rename)
         for name in out
         if name in cfg.columns and cfg.columns[name].rename
     }

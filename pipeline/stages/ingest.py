@@ -78,7 +78,7 @@ def run(source: str | Path, settings: InputSettings, limits: LimitSettings) -> I
     """
     files, kind = _read.find_files(source)
     wanted = list(settings.columns) if settings.columns is not None else None
-    parts = []
+    parts: list[Any] = []
     for path, partition in files:
         part = _read_one(
             path, settings, limits, wanted, sum(len(p.table) + len(p.rejected) for p in parts)
