@@ -1,9 +1,10 @@
 """The `make bench` driver: run every bench/bench_*.py and collect their tables in bench/RESULTS.md.
 
-Each bench script prints a Markdown table and writes it to bench/results/<name>.md; this driver
-runs them one after another (each in its own process, so one failure does not stop the others),
-takes the results files each one wrote (or its printed output when it wrote none) and puts them
-under a header naming the machine, the date and the command.
+Each bench script prints a Markdown table and writes it to bench/results/<name>.md (<name> is the
+script's stem, with or without its ``bench_`` prefix); this driver runs them one after another (each
+in its own process, so one failure does not stop the others), takes the results file each one wrote
+during its run (or its printed output when it wrote none) and puts them under a header naming the
+machine, the date and the command.
 
     .venv/bin/python bench/run_all.py            # every size (the 10,000,000-row run takes minutes)
     .venv/bin/python bench/run_all.py --quick    # smaller sizes, for a first look
@@ -87,7 +88,9 @@ def _run_script(script: Path, quick: bool) -> tuple[int, float, str, list[Path],
     proc = subprocess.run(cmd, cwd=REPO, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     seconds = time.perf_counter() - t0
     sys.stderr.write(proc.stderr[-4000:])
-    written = sorted(p for p in RESULTS_DIR.glob("*.md") if p.stat().st_mtime >= started)
+    # its own results file(s) only: other people may be writing other results at the same time
+    own = {script.stem, script.stem.removeprefix("bench_")}
+    written = sorted(p for p in RESULTS_DIR.glob("*.md") if p.stem in own and p.stat().st_mtime >= started)
     return proc.returncode, seconds, proc.stdout, written, proc.stderr[-1500:]
 
 
