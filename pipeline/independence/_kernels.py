@@ -385,13 +385,36 @@ if HAVE_NUMBA:
                     for r in range(m):
                         if bad[r] >= 0:
                             t[(r & lane_mask) * possible + code[r]] += w[start + r]
+            elif lanes == 4:
+                t0 = t[:possible]
+                t1 = t[possible: 2 * possible]
+                t2 = t[2 * possible: 3 * possible]
+                t3 = t[3 * possible:]
+                m4 = m - (m & 3)
+                if w is None:
+                    for r in range(0, m4, 4):
+                        t0[code[r]] += 1
+                        t1[code[r + 1]] += 1
+                        t2[code[r + 2]] += 1
+                        t3[code[r + 3]] += 1
+                    for r in range(m4, m):
+                        t0[code[r]] += 1
+                else:
+                    ws = w[start:stop]
+                    for r in range(0, m4, 4):
+                        t0[code[r]] += ws[r]
+                        t1[code[r + 1]] += ws[r + 1]
+                        t2[code[r + 2]] += ws[r + 2]
+                        t3[code[r + 3]] += ws[r + 3]
+                    for r in range(m4, m):
+                        t0[code[r]] += ws[r]
             else:
                 if w is None:
                     for r in range(m):
-                        t[(r & lane_mask) * possible + code[r]] += 1
+                        t[code[r]] += 1
                 else:
                     for r in range(m):
-                        t[(r & lane_mask) * possible + code[r]] += w[start + r]
+                        t[code[r]] += w[start + r]
         counts = np.empty(possible, dtype=np.int64)
         for c in range(possible):
             counts[c] = t[c]
@@ -522,7 +545,7 @@ if HAVE_NUMBA:
                 if too_big or lanes * possible > scratch:
                     status = 2
                     break
-                if use_bits and nwords * possible * bit_cost * (1.0 + ng) < rows * (1.0 + 0.25 * ng):
+                if use_bits and nwords * possible * bit_cost * (1 << ng) < rows * (1.0 + 0.1 * ng):
                     counts = _count_bits(planes, off, cards, x, y, g, ng, possible, st_idx, st_mask, nz, lev)
                 else:
                     counts = _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes,

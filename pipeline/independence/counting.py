@@ -275,7 +275,7 @@ def compress_rows(
     >>> d = np.array([[0, 1, 0, 0], [1, 1, 1, 0]], dtype=np.int8)
     >>> u, w = compress_rows(d)
     >>> u.tolist(), w.tolist()
-    [[[0, 1, 0], [1, 1, 0]], [2, 1, 1]]
+    ([[0, 1, 0], [1, 1, 0]], [2, 1, 1])
     """
     data = np.asarray(data)
     n = data.shape[1]

@@ -81,7 +81,7 @@ class EngineSettings:
     strata_cache_bytes: int = 128 * 1024 * 1024
     compress_rows: bool = True
     compress_max_ratio: float = 0.75
-    bit_cost: float = 0.3  # bit-plane counting when words * cells * bit_cost < rows * (1 + ng / 4); 0: off
+    bit_cost: float = 0.6  # bit planes when words * cells * bit_cost * 2**ng < rows * (1 + ng / 10); 0: off
     bit_planes_bytes: int = 64 * 1024 * 1024
 
     def __post_init__(self) -> None:
@@ -400,12 +400,10 @@ class CIEngine:
         n_tests = len(tests)
         xs = np.fromiter((t[0] for t in tests), dtype=np.int64, count=n_tests)
         ys = np.fromiter((t[1] for t in tests), dtype=np.int64, count=n_tests)
-        width = max(1, max(len(t[2]) for t in tests))
-        gs = np.zeros((n_tests, width), dtype=np.int64)
         gn = np.fromiter((len(t[2]) for t in tests), dtype=np.int64, count=n_tests)
-        for i, t in enumerate(tests):
-            if t[2]:
-                gs[i, : len(t[2])] = t[2]
+        width = max(1, int(gn.max()))
+        pads = [(0,) * (width - k) for k in range(width + 1)]
+        gs = np.array([t[2] + pads[len(t[2])] for t in tests], dtype=np.int64).reshape(n_tests, width)
         arrays = [np.zeros(n_tests), np.zeros(n_tests)] + [np.zeros(n_tests, dtype=np.int64) for _ in range(5)]
         crit = self._critical(1024) if stop_first else np.zeros(1)
         policy = _POLICY_CODE[st.sparse_policy]
@@ -477,21 +475,29 @@ class CIEngine:
         method = st.method
         policy = st.sparse_policy
         nan = _NAN
+        gcache = self._given_names
         given_tuple = self._given_tuple
+        new = _new
+        setattr_ = _setattr
+        cls = CITestResult
         out = []
+        append = out.append
         for t, s_, d_, p_, n_, cmi_, v_, sp_, dg_, ind_, ap_ in zip(
             idx.tolist(), stat.tolist(), dof.tolist(), pvalue.tolist(), n.tolist(), cmi.tolist(),
             v.tolist(), sparse.tolist(), degenerate.tolist(), independent.tolist(), applied.tolist(),
         ):
             xi, yi, gi = tests[t]
-            r = _new(CITestResult)
-            _setattr(r, "__dict__", {
-                "x": names[xi], "y": names[yi], "given": given_tuple(gi), "statistic": s_, "dof": d_,
+            gnames = gcache.get(gi)
+            if gnames is None:
+                gnames = given_tuple(gi)
+            r = new(cls)
+            setattr_(r, "__dict__", {
+                "x": names[xi], "y": names[yi], "given": gnames, "statistic": s_, "dof": d_,
                 "pvalue": p_, "n": n_, "method": method, "cmi_bits": cmi_,
                 "cramers_v": nan if gi else v_, "sparse": sp_, "degenerate": dg_, "independent": ind_,
                 "policy": policy, "policy_applied": ap_, "permutations": 0,
             })
-            out.append(r)
+            append(r)
         return out
 
     def _test_seed(self, x: int, y: int, given: tuple[int, ...]) -> np.random.SeedSequence:
