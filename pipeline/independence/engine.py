@@ -245,7 +245,29 @@ class CIEngine:
 
     def test(self, x: int | str, y: int | str, given: Sequence[int | str] = ()) -> CITestResult:
         """Test x independent of y given `given` with the configured method and policy."""
-        return self._run_groups([self._resolve(x, y, given)], [(0, 1)], stop_first=False)[0][0]
+        xi, yi, gi = self._resolve(x, y, given)
+        st = self.settings
+        if st.method == "permutation" or not HAVE_NUMBA:
+            return self._single(xi, yi, gi)
+        if not self._kernel_ready:
+            self._prepare_kernel()
+        one = self._one
+        xs, ys, gs, gn = one["xs"], one["ys"], one["gs"], one["gn"]
+        if len(gi) > gs.shape[1]:
+            return self._run_groups([(xi, yi, gi)], [(0, 1)], stop_first=False)[0][0]
+        xs[0], ys[0], gn[0] = xi, yi, len(gi)
+        gs[0, : len(gi)] = gi
+        arrays = one["arrays"]
+        _, status = run_groups(
+            self._cdata, self._kw, self._cards_arr, self._colmiss, xs, ys, gs, gn, one["start"], one["stop"],
+            False, False, one["crit"], _MARGIN, st.alpha, st.min_rows_per_cell, 0,
+            self._cap, self._scratch, self._planes, self._off, self._bit_cost, *arrays,
+        )
+        if status[0] == GROUP_TOO_BIG:
+            return self._single(xi, yi, gi)
+        g_all, c_all, dof_all, n_all, _, m_all, poss_all = arrays
+        return self._finish(xi, yi, gi, float(g_all[0]), float(c_all[0]), int(dof_all[0]), int(n_all[0]),
+                            int(m_all[0]), int(poss_all[0]))
 
     def test_many(self, tests: Sequence[tuple[int | str, int | str, Sequence[int | str]]]) -> list[CITestResult]:
         """Run a list of ``(x, y, given)`` tests; the same results as calling `test` on each, faster.
@@ -360,6 +382,12 @@ class CIEngine:
         self._scratch = np.zeros(max(4 * _LANES_MAX_CELLS, min(4 * self._cap, _SCRATCH_CELLS)), dtype=dtype)
         self._kw = None if self._cw is None else (
             self._cw.astype(np.int32) if dtype == np.int32 else self._cw)
+        self._one = {  # reusable arrays of a one-test batch (`test`)
+            "xs": np.zeros(1, dtype=np.int64), "ys": np.zeros(1, dtype=np.int64),
+            "gs": np.zeros((1, 8), dtype=np.int64), "gn": np.zeros(1, dtype=np.int64),
+            "start": np.zeros(1, dtype=np.int64), "stop": np.ones(1, dtype=np.int64),
+            "crit": np.zeros(1), "arrays": [np.zeros(1), np.zeros(1)] + [np.zeros(1, dtype=np.int64) for _ in range(5)],
+        }
         self._bit_cost = 0.0
         self._planes, self._off = np.zeros((1, 1), dtype=np.uint64), np.zeros(len(self.cards), dtype=np.int64)
         words = (self.data.shape[1] + 63) // 64
