@@ -616,3 +616,28 @@ def bit_planes(data: np.ndarray, cards) -> tuple[np.ndarray, np.ndarray]:
             buf[: packed.size] = packed
             planes[off[v] + level] = buf.view(np.uint64)
     return planes, off
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _row_hash_nb(data):  # pragma: no cover
+        n = data.shape[1]
+        h = np.full(n, np.uint64(0x243F6A8885A308D3))
+        mult = np.uint64(0x9E3779B97F4A7C15)
+        add = np.uint64(0x7F4A7C15)
+        s29 = np.uint64(29)
+        for v in range(data.shape[0]):
+            col = data[v]
+            for r in range(n):
+                x = h[r] ^ (np.uint64(np.int64(col[r])) + add)
+                x = x * mult
+                h[r] = x ^ (x >> s29)
+        return h
+
+
+def row_hash(data: np.ndarray) -> np.ndarray | None:
+    """The compiled twin of `counting._row_hash` (same values), or None without numba."""
+    if not HAVE_NUMBA:
+        return None
+    return _row_hash_nb(data)

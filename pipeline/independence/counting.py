@@ -17,7 +17,7 @@ from typing import Sequence
 import numpy as np
 
 from ..errors import LimitError
-from ._kernels import count_dense
+from ._kernels import count_dense, row_hash
 
 __all__ = ["StratifiedTable", "compress_rows", "count_flat", "count_table", "stratum_codes"]
 
@@ -240,6 +240,9 @@ _HASH_MULT = np.uint64(0x9E3779B97F4A7C15)
 
 def _row_hash(data: np.ndarray) -> np.ndarray:
     """A 64-bit hash of each column of `data` (each row of the table), mixing one variable at a time."""
+    fast = row_hash(data)
+    if fast is not None:
+        return fast
     h = np.full(data.shape[1], 0x243F6A8885A308D3, dtype=np.uint64)
     with np.errstate(over="ignore"):
         for row in data:
