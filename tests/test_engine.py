@@ -184,3 +184,13 @@ def test_first_independent_stops_exactly_at_p_above_alpha():
             break
     assert got == expected
     assert not at.test(0, 1, (3,)).independent
+
+
+def test_test_many_refuses_repeated_variables():
+    """test_many refuses a test whose x, y and conditioning set share a variable, given by index or by name."""
+    data = np.random.default_rng(2).integers(0, 3, (4, 300)).astype(np.int8)
+    eng = CIEngine(data, list("abcd"))
+    for bad in ([(0, 0, ())], [(0, 1, (1,))], [(0, 1, (2, 2))], [("a", "b", ["b"])]):
+        with pytest.raises(ValueError, match="distinct variables"):
+            eng.test_many(bad)
+    assert eng.test_many([(0, 1, (2,)), ("a", "b", ["c"])]) == [eng.test("a", "b", ["c"])] * 2

@@ -278,9 +278,33 @@ class CIEngine:
         >>> [r.dof for r in CIEngine(d, ["a", "b", "c"]).test_many([(0, 1, ()), (0, 1, (2,))])]
         [1, 1]
         """
-        resolved = [self._resolve(x, y, g) for x, y, g in tests]
+        resolved = self._resolve_ints(tests)
+        if resolved is None:
+            resolved = [self._resolve(x, y, g) for x, y, g in tests]
         out = self._run_groups(resolved, [(i, i + 1) for i in range(len(resolved))], stop_first=False)
         return [r[0] for r in out]
+
+    def _resolve_ints(self, tests) -> list[tuple[int, int, tuple[int, ...]]] | None:
+        """`tests` as index triples when every test is ``(int, int, tuple of ints)`` (checked with
+        arrays), else None (then `_resolve` looks names up one test at a time)."""
+        if not tests or not all(t.__class__ is tuple and len(t) == 3 and t[2].__class__ is tuple for t in tests):
+            return None
+        try:
+            flat = np.fromiter((v for t in tests for v in (t[0], t[1], *t[2])), dtype=np.int64)
+        except (TypeError, ValueError):
+            return None
+        if not all(t[0].__class__ is int and t[1].__class__ is int for t in tests):
+            return None
+        sizes = np.fromiter((2 + len(t[2]) for t in tests), dtype=np.int64, count=len(tests))
+        if flat.size and (flat.min() < 0 or flat.max() >= len(self.names)):
+            raise IndexError("a variable index is outside the table")
+        # distinct variables within each test: sort each test's indices and compare neighbours
+        owner = np.repeat(np.arange(len(tests)), sizes)
+        order = np.lexsort((flat, owner))
+        f, o = flat[order], owner[order]
+        if np.any((f[1:] == f[:-1]) & (o[1:] == o[:-1])):
+            raise ValueError("x, y and the conditioning set must be distinct variables")
+        return tests  # type: ignore[return-value]
 
     def first_independent(
         self, x: int | str, y: int | str, candidates: Sequence[Sequence[int | str]]
