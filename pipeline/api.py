@@ -356,6 +356,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
             atomic_write_json(d / "clean-meta.json", {"kinds": cleaned.kinds, "columns": cleaned.columns, "rows_read": ingested.rows_read, "rejected": len(ingested.rejected), "quarantined": len(cleaned.quarantined), "sources": ingested.sources})
             cache.finish("clean", k_clean)
             clean_dir = d
+            ingested = None  # the raw table is no longer needed: free it before discretising
     with _stage("discretise", timings, rep) as st:
         if disc_dir:
             st.reused = True
@@ -378,6 +379,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
                 _link_or_copy(clean_dir / name, d / name)
             cache.finish("discretise", k_disc)
             disc_dir = d
+            cleaned = disc = None  # type: ignore[assignment]  # the codes are read back below
     assert disc_dir is not None
     for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json"):
         _link_or_copy(disc_dir / name, out / name)
@@ -405,6 +407,8 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
     k_battery = stable_hash(["battery", k_disc, cfg.section("test"), sorted(knowledge.required), sorted(knowledge.forbidden)])
     k_search = stable_hash(["search", k_battery, cfg.search.max_order, cfg.search.orient, cfg.search.collider_rule, [list(t) for t in knowledge.tiers]])
     data = _coded_matrix(codes)
+    n_kept = len(codes)
+    del codes  # the matrix holds the same codes, one signal per row
     par = cfg.parallel
     with parallel_context(par.jobs, par.backend, par.scheduler) as ctx:
         if ctx.backend == "local":
@@ -483,7 +487,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
         "read": int(clean_meta["rows_read"]),
         "rejected": int(clean_meta["rejected"]),
         "quarantined": int(clean_meta["quarantined"]),
-        "kept": int(len(codes)),
+        "kept": int(n_kept),
     }
     warnings = list(review_warnings)
     if rows["read"] != rows["kept"] + rows["rejected"] + rows["quarantined"]:
