@@ -87,17 +87,23 @@ class ParallelContext:
     def _remote(self, shared: Any) -> Any:
         """`shared` with its numpy arrays replaced by the futures of their broadcast copies."""
         if isinstance(shared, tuple) and any(isinstance(x, np.ndarray) for x in shared):
+            arrays = [x for x in shared if isinstance(x, np.ndarray)]
+            self._scatter_new(arrays)
             return tuple(self._future(x) if isinstance(x, np.ndarray) else x for x in shared)
+        self._scatter_new([shared])
         return self._future(shared)
 
+    def _scatter_new(self, objects: list[Any]) -> None:
+        """Send the objects not on the workers yet to every worker, in one scatter call."""
+        new = [o for o in objects if all(held is not o for held, _ in self._scattered)]
+        new = [o for i, o in enumerate(new) if all(o is not p for p in new[:i])]
+        if new:
+            futures = self._client.scatter(new, broadcast=True, hash=False)
+            self._scattered.extend(zip(new, futures))
+
     def _future(self, obj: Any) -> Any:
-        """The future of `obj` on every worker, scattered on first use."""
-        for held, future in self._scattered:
-            if held is obj:
-                return future
-        [future] = self._client.scatter([obj], broadcast=True, hash=False)
-        self._scattered.append((obj, future))
-        return future
+        """The future of an object already scattered."""
+        return next(future for held, future in self._scattered if held is obj)
 
     @property
     def width(self) -> int:
