@@ -13,14 +13,14 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from pipeline.api import run_pipeline
-from pipeline.config import apply_overrides, config_from_dict
-from pipeline.errors import ConfigError
-from pipeline.parallel import parallel_context
+from pipeline.api import run_pipeline  # noqa: E402
+from pipeline.config import apply_overrides, config_from_dict  # noqa: E402
+from pipeline.errors import ConfigError  # noqa: E402
+from pipeline.parallel import parallel_context  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "bench"))
-import gen_extract
+import gen_extract  # noqa: E402
 
 ROWS = 8_000
 

@@ -22,7 +22,7 @@ from pipeline.independence.engine import CIEngine, EngineSettings
 
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "bench"))
-import gen_extract
+import gen_extract  # noqa: E402
 
 ROWS = 20_000
 
