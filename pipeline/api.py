@@ -10,6 +10,7 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
 import glob
 import json
 import os
@@ -29,7 +30,7 @@ from . import __version__
 from .config import Config, resolve_auto
 from .errors import ConfigError, DataError
 from .independence.engine import EngineSettings
-from .parallel import parallel_context, share_array
+from .parallel import ParallelContext, parallel_context, share_array
 from .progress import Reporter
 from .runs import (
     StageCache,
@@ -262,7 +263,10 @@ def run_pipeline(
         if partial.exists():
             shutil.rmtree(partial)
         partial.mkdir(parents=True)
-        result = _run_stages(cfg, source, files, partial, cache, rep)
+        par = cfg.parallel
+        # the workers start in the background while the data stages run
+        with parallel_context(par.jobs, par.backend, par.scheduler) as workers:
+            result = _run_stages(cfg, source, files, partial, cache, rep, workers)
         manifest = result["manifest"]
         manifest.update(started=started, finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                         seconds=round(time.perf_counter() - t_start, 3), out_dir=str(final.resolve()))
@@ -290,7 +294,8 @@ def _stage(name: str, timings: dict[str, Any], rep: Reporter):
     return _Timer()
 
 
-def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: StageCache, rep: Reporter) -> dict[str, Any]:
+def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: StageCache, rep: Reporter,
+                workers: ParallelContext) -> dict[str, Any]:
     timings: dict[str, Any] = {}
     fp = fingerprint_paths(files)
     version = __version__
@@ -409,8 +414,7 @@ def _run_stages(cfg: Config, source: Path, files: list[Path], out: Path, cache: 
     data = _coded_matrix(codes)
     n_kept = len(codes)
     del codes  # the matrix holds the same codes, one signal per row
-    par = cfg.parallel
-    with parallel_context(par.jobs, par.backend, par.scheduler) as ctx:
+    with contextlib.nullcontext(workers) as ctx:
         if ctx.backend == "local":
             shared_dir = cache.hit("shared", k_disc)
             if shared_dir is None:
