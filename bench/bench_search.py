@@ -181,12 +181,14 @@ def main(argv: list[str] | None = None) -> int:
         t_fwd1, _ = _ours(fwd, names, cards)
         with parallel_context(jobs=2) as ctx:
             _ours(codes[:, :3000], names, cards, ctx)
-            t_fwd, res_fwd = _ours(fwd, names, cards, ctx)
+            runs = [_ours(fwd, names, cards, ctx) for _ in range(3)]
+        t_first, res_fwd = runs[0]
+        t_fwd = min(t for t, _ in runs)
         prec, rec, f1 = _prf(res_fwd.adjacency(), _truth("alarm", names))
         lines += ["## 100,000 rows forward-sampled from ALARM's true network (seed 2024), 2 workers", "",
-                  "| edgeproof s, 2 workers | 1 worker s | tests | levels | edges | precision | recall | F1 |",
-                  "|---:|---:|---:|---:|---:|---:|---:|---:|",
-                  f"| {t_fwd:.2f} | {t_fwd1:.2f} | {len(res_fwd.tests)} | {res_fwd.levels} | {len(res_fwd.edges)} | "
+                  "| edgeproof s, 2 workers (best of 3) | first of the 3 | 1 worker s | tests | levels | edges | precision | recall | F1 |",
+                  "|---:|---:|---:|---:|---:|---:|---:|---:|---:|",
+                  f"| {t_fwd:.2f} | {t_first:.2f} | {t_fwd1:.2f} | {len(res_fwd.tests)} | {res_fwd.levels} | {len(res_fwd.edges)} | "
                   f"{prec:.3f} | {rec:.3f} | {f1:.3f} |", "", "Target: < 30 s.", ""]
     lines += ["## Adjacency accuracy against truth.graph.txt (G, alpha 0.05)", "",
               "| set | edgeproof precision | recall | F1 | causal-learn precision | recall | F1 |",
