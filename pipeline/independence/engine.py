@@ -27,7 +27,7 @@ from typing import Sequence
 
 import numpy as np
 from scipy.special import chdtrc as _chdtrc
-from scipy.stats import chi2 as _chi2
+from scipy.special import chdtri as _chdtri
 
 from ..errors import ConfigError
 from ._kernels import (
@@ -427,7 +427,7 @@ class CIEngine:
         """chi2.isf(alpha, dof) for dof 0..max_dof (cached, grown on demand)."""
         if self._crit.shape[0] <= max_dof:
             size = max(max_dof + 1, 2 * self._crit.shape[0], 1024)
-            crit = _chi2.isf(self.settings.alpha, np.arange(size, dtype=np.float64))
+            crit = _chdtri(np.arange(size, dtype=np.float64), self.settings.alpha)  # = chi2.isf(alpha, dof)
             crit[0] = 0.0
             self._crit = np.ascontiguousarray(np.nan_to_num(crit, nan=0.0), dtype=np.float64)
         return self._crit

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-from scipy.stats import beta
+from scipy.special import betaincinv
 
 from .counting import stratum_codes
 
@@ -94,7 +94,7 @@ def permutation_pvalue(
         hits += int(extreme.sum())
         drawn += b
         if alpha is not None and drawn < permutations and hits < drawn:
-            upper = float(beta.ppf(1.0 - certainty, hits + 1, drawn - hits))
+            upper = float(betaincinv(hits + 1, drawn - hits, 1.0 - certainty))  # = beta.ppf(...)
             if upper < alpha:
                 return (hits + 1) / (drawn + 1), drawn
     return (hits + 1) / (drawn + 1), drawn
