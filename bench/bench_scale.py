@@ -29,7 +29,7 @@ import yaml
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 sys.path.insert(0, str(HERE))
-import gen_extract
+import gen_extract  # noqa: E402 - beside this script
 
 SIZES = [10_000, 100_000, 1_000_000, 10_000_000]
 QUICK_SIZES = [10_000, 100_000]

@@ -33,7 +33,7 @@ from typing import Any, Optional, Union
 import pandas as pd
 
 from .config import Config
-from .errors import ConfigError, DataError, EXIT_CHANGED, EXIT_OK
+from .errors import EXIT_CHANGED, EXIT_OK, ConfigError, DataError
 
 __all__ = ["Comparison", "run", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
 

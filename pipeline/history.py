@@ -26,7 +26,7 @@ from typing import Optional, Sequence, Union
 import pandas as pd
 
 from .config import Config
-from .errors import ConfigError, DataError, EXIT_OK
+from .errors import EXIT_OK, ConfigError, DataError
 
 __all__ = ["History", "run", "edge_history", "history_main"]
 

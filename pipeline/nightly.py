@@ -59,7 +59,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Optional, Union
 
 from .config import Config
-from .errors import ConfigError, DataError, EdgeproofError, LockHeldError, EXIT_FAILURE, EXIT_OK
+from .errors import EXIT_FAILURE, EXIT_OK, ConfigError, DataError, EdgeproofError, LockHeldError
 
 __all__ = [
     "NightlyResult",
@@ -271,7 +271,6 @@ def _process(
     cfg: Config, inbox: Path, root: Path, emit: Callable[..., None], config_path: Optional[Path]
 ) -> NightlyResult:
     """The body of `run`, called with the lock held."""
-    from .api import run_pipeline  # imported before any snapshot: a broken install fails them none
 
     state = _read_state(root)
     snapshots = state.setdefault("snapshots", {})

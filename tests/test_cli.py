@@ -8,11 +8,9 @@ import sys
 
 import numpy as np
 import pandas as pd
-import pytest
+from _shared import REPO, benchmark_path, reference_skeleton
 
 from pipeline.cli import main
-
-from _shared import REPO, benchmark_path, reference_skeleton
 
 REFERENCE_ARGS = [
     "--set", "discretise.default=categorical", "--set", "test.method=chi2", "--set", "test.alpha=0.05",

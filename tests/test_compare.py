@@ -13,7 +13,7 @@ import pytest
 from pipeline import compare, nightly
 from pipeline.config import load_config
 from pipeline.demo import generate
-from pipeline.errors import ConfigError, DataError, EXIT_CHANGED
+from pipeline.errors import EXIT_CHANGED, ConfigError, DataError
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO_CONFIG = REPO / "configs" / "demo.yaml"

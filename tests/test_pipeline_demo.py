@@ -5,12 +5,11 @@ from __future__ import annotations
 import json
 
 import pandas as pd
+from _shared import REPO
 
 from pipeline.api import load_run, run_pipeline
 from pipeline.config import load_config
 from pipeline.demo import generate
-
-from _shared import REPO
 
 
 def test_demo_snapshot_recovers_the_planted_structure(tmp_path):

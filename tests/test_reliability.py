@@ -14,10 +14,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from _shared import REPO, benchmark_path
 
 from pipeline.cli import main
-
-from _shared import REPO, benchmark_path
 
 DATA_ARTIFACTS = ["evidence.parquet", "tests.parquet", "marginal.parquet", "discretised.parquet",
                   "rejected.parquet", "levels.json", "cleaning.json", "evidence.csv", "graph.dot"]

@@ -3,13 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+from _shared import benchmark_path
 
 from pipeline.independence import EngineSettings
 from pipeline.search import Knowledge
 from pipeline.stages import battery, skeleton
 from pipeline.stages.skeleton import state_from_json, state_to_json
-
-from _shared import benchmark_path
 
 
 def _child():

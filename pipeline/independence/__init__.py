@@ -2,7 +2,7 @@
 
 from .engine import CIEngine, EngineSettings
 from .result import CITestResult
-from .statistics import contingency_statistics, g_test_table, chi2_test_table
+from .statistics import chi2_test_table, contingency_statistics, g_test_table
 
 __all__ = [
     "CIEngine",

@@ -78,7 +78,6 @@ if HAVE_NUMBA:
         o = out.ravel()
         cells = np.uint64(out.shape[1])
         lane = np.uint64(out.shape[0] - 1)
-        ukxy = np.uint64(kxy)
         uky = np.uint64(ky)
         if checked:
             for r in range(xc.shape[0]):

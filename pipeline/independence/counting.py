@@ -12,7 +12,7 @@ number of occurrences); n is then the sum of the weights of the rows used.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
 
@@ -120,7 +120,7 @@ def count_table(
             f"A table of `{x}` by `{y}` given {len(given)} variables would have {possible:.3g} cells; "
             "lower `search.max_order` or the number of levels per column."
         )
-    total = np.zeros(possible, dtype=np.int64) if dense else None
+    total: Any = np.zeros(possible, dtype=np.int64) if dense else None
     keys_parts: list[np.ndarray] = []
     counts_parts: list[np.ndarray] = []
     used = 0
@@ -157,11 +157,11 @@ def count_table(
                 total += np.bincount(idx, weights=wp, minlength=possible).astype(np.int64)
         else:
             if wp is None:
-                k, c = np.unique(idx, return_counts=True)
+                part_keys, c = np.unique(idx, return_counts=True)
             else:
-                k, inv = np.unique(idx, return_inverse=True)
+                part_keys, inv = np.unique(idx, return_inverse=True)
                 c = np.bincount(inv, weights=wp).astype(np.int64)
-            keys_parts.append(k)
+            keys_parts.append(part_keys)
             counts_parts.append(c)
     if dense:
         assert total is not None

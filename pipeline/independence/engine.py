@@ -23,7 +23,7 @@ import math
 import zlib
 from collections import OrderedDict
 from dataclasses import dataclass
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
 from scipy.special import chdtrc as _chdtrc
@@ -406,7 +406,7 @@ class CIEngine:
         self._scratch = np.zeros(max(4 * _LANES_MAX_CELLS, min(4 * self._cap, _SCRATCH_CELLS)), dtype=dtype)
         self._kw = None if self._cw is None else (
             self._cw.astype(np.int32) if dtype == np.int32 else self._cw)
-        self._one = {  # reusable arrays of a one-test batch (`test`)
+        self._one: dict[str, Any] = {  # reusable arrays of a one-test batch (`test`)
             "xs": np.zeros(1, dtype=np.int64), "ys": np.zeros(1, dtype=np.int64),
             "gs": np.zeros((1, 8), dtype=np.int64), "gn": np.zeros(1, dtype=np.int64),
             "start": np.zeros(1, dtype=np.int64), "stop": np.ones(1, dtype=np.int64),
@@ -532,7 +532,7 @@ class CIEngine:
         new = _new
         setattr_ = _setattr
         cls = CITestResult
-        out = []
+        out: list[CITestResult] = []
         append = out.append
         for t, s_, d_, p_, n_, cmi_, v_, sp_, dg_, ind_, ap_ in zip(
             idx.tolist(), stat.tolist(), dof.tolist(), pvalue.tolist(), n.tolist(), cmi.tolist(),
