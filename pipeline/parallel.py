@@ -156,11 +156,16 @@ def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | Non
 
 def _warm_worker(_shared: Any, task: int) -> int:
     """Import the test engine and load its compiled kernels in a worker (one tiny test per set size)."""
-    from .independence.engine import CIEngine
+    from .independence.engine import CIEngine, EngineSettings
+    from .search.skeleton import pc_stable_skeleton
 
-    data = np.zeros((5, 64), dtype=np.int8)
-    data[:, ::2] = 1
-    engine = CIEngine(data, ["a", "b", "c", "d", "e"], [2] * 5)
+    rng = np.random.default_rng(task)
+    data = rng.integers(0, 2, size=(5, 256)).astype(np.int8)
+    names = ["a", "b", "c", "d", "e"]
+    engine = CIEngine(data, names, [2] * 5)
     for given in ((), ("c",), ("c", "d"), ("c", "d", "e")):
         engine.test("a", "b", given)
+    # the kernels a search level uses, over distinct weighted rows and over plain rows
+    for compress in (True, False):
+        pc_stable_skeleton(data, names, [2] * 5, EngineSettings(compress_rows=compress))
     return task
