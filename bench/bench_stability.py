@@ -68,7 +68,7 @@ def main(argv: list[str] | None = None) -> str:
     ap.add_argument("--threshold", type=float, default=0.6)
     ap.add_argument("--rows", type=int, nargs="+", default=[1000, 2000, 10000])
     ap.add_argument("--alpha", type=float, nargs="+", default=[0.05, 0.2])
-    ap.add_argument("--jobs", type=int, default=1)
+    ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
 
