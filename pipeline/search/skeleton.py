@@ -97,12 +97,32 @@ def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) 
     return out
 
 
+_WORKER_ENGINES: dict[Any, CIEngine] = {}
+
+
+def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> CIEngine:
+    """The engine of a worker process, reused across its tasks when the table is a memory-mapped file.
+
+    Building an engine and its first call cost tens of milliseconds on big tables; a level split into
+    many chunks would pay that once per chunk. A memory map names its file, which holds one coded
+    table for good (see `parallel.share_array`), so it is a safe key; anything else gets a new engine.
+    """
+    filename = getattr(data, "filename", None) if isinstance(data, np.memmap) else None
+    if filename is None or packed is not None:
+        return CIEngine(data, names, cards, settings, distinct=packed)
+    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings)
+    engine = _WORKER_ENGINES.get(key)
+    if engine is None:
+        _WORKER_ENGINES.clear()  # one table at a time per worker
+        engine = _WORKER_ENGINES[key] = CIEngine(data, names, cards, settings, distinct=packed)
+    return engine
+
+
 def _battery_worker(shared: tuple[Any, ...], chunk: list[tuple[str, str, list[tuple[str, ...]]]]):
     """Test each pair of a chunk along its candidate sets until the first independence."""
     data, names, cards, settings, distinct, weights = shared
     packed = None if weights is None else (distinct, weights)
-    engine = CIEngine(data, names, cards, settings, distinct=packed)
-    return engine.first_independent_many(chunk)
+    return _worker_engine(data, names, cards, settings, packed).first_independent_many(chunk)
 
 
 def _chunks(items: list[Any], weights: list[int], n_chunks: int) -> list[list[Any]]:
