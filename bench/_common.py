@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import platform
+import re
 import sys
 from pathlib import Path
 
@@ -41,6 +42,19 @@ def load(name: str) -> tuple[np.ndarray, list[str], np.ndarray]:
     raw = np.loadtxt(path, skiprows=1, dtype=np.int64)
     codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])])
     return codes.astype(np.int8), names, raw
+
+
+def true_edges(name: str, folder: Path | None = None) -> list[tuple[str, str]]:
+    """The true DAG of a benchmark set as (parent, child) pairs, read from its truth.graph.txt
+    (lines ``N. Xi --> Xj`` under ``Graph Edges:``)."""
+    text = ((folder or BENCH) / name / "truth.graph.txt").read_text(encoding="utf-8")
+    body = text.split("Graph Edges:", 1)[-1]
+    return [(a, b) for a, b in re.findall(r"(\S+)\s+-->\s+(\S+)", body)]
+
+
+def true_skeleton(name: str, folder: Path | None = None) -> frozenset[tuple[str, str]]:
+    """The true adjacencies of a benchmark set as unordered pairs (a < b by name)."""
+    return frozenset((a, b) if a <= b else (b, a) for a, b in true_edges(name, folder))
 
 
 def emit(name: str, text: str) -> None:

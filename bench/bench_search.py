@@ -13,7 +13,6 @@ sample.
 from __future__ import annotations
 
 import argparse
-import re
 import sys
 import time
 from pathlib import Path
@@ -21,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import BENCH, emit, load, machine  # noqa: E402
+from _common import emit, load, machine, true_edges  # noqa: E402
 
 from pipeline.independence import EngineSettings  # noqa: E402
 from pipeline.parallel import parallel_context  # noqa: E402
@@ -31,8 +30,7 @@ from pipeline.search import pc_stable_skeleton  # noqa: E402
 def _truth(name: str, names: list[str]) -> np.ndarray:
     idx = {n: i for i, n in enumerate(names)}
     m = np.zeros((len(names), len(names)), dtype=bool)
-    text = (BENCH / name / "truth.graph.txt").read_text()
-    for a, b in re.findall(r"(\S+)\s+-->\s+(\S+)", text):
+    for a, b in true_edges(name):
         m[idx[a], idx[b]] = m[idx[b], idx[a]] = True
     return m
 
@@ -56,7 +54,7 @@ def _ours(codes, names, cards, ctx=None):
 def _parents(name: str, names: list[str]) -> dict[int, list[int]]:
     idx = {n: i for i, n in enumerate(names)}
     out: dict[int, list[int]] = {i: [] for i in range(len(names))}
-    for a, b in re.findall(r"(\S+)\s+-->\s+(\S+)", (BENCH / name / "truth.graph.txt").read_text()):
+    for a, b in true_edges(name):
         out[idx[b]].append(idx[a])
     return out
 

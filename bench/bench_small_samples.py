@@ -28,6 +28,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 import time
 from itertools import product
 from pathlib import Path
@@ -37,6 +38,9 @@ import numpy as np
 from pipeline.independence.engine import EngineSettings
 from pipeline.parallel import parallel_context
 from pipeline.search import pc_stable_skeleton
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import true_skeleton  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
@@ -58,15 +62,7 @@ def _load(name: str):
     with (folder / "data.txt").open(encoding="utf-8") as fh:
         names = fh.readline().split()
     raw = np.loadtxt(folder / "data.txt", skiprows=1, dtype=np.int64, ndmin=2)
-    truth = set()
-    in_edges = False
-    for line in (folder / "truth.graph.txt").read_text(encoding="utf-8").splitlines():
-        if line.strip() == "Graph Edges:":
-            in_edges = True
-        elif in_edges and "-->" in line:
-            _, a, _, b = line.split()
-            truth.add((a, b) if a <= b else (b, a))
-    return raw, names, frozenset(truth)
+    return raw, names, true_skeleton(name, BENCHMARKS)
 
 
 def _code(raw: np.ndarray) -> tuple[np.ndarray, list[int]]:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 import time
 from pathlib import Path
 
@@ -20,6 +21,9 @@ from pipeline.independence.engine import EngineSettings
 from pipeline.parallel import parallel_context
 from pipeline.search import Knowledge, pc_stable_skeleton
 from pipeline.stages import stability
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import true_skeleton  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
@@ -33,15 +37,7 @@ def _load(name: str):
     raw = np.loadtxt(folder / "data.txt", skiprows=1, dtype=np.int64, ndmin=2)
     codes = np.vstack([np.unique(col, return_inverse=True)[1] for col in raw.T]).astype(np.int8)
     cards = [int(row.max()) + 1 for row in codes]
-    truth = set()
-    in_edges = False
-    for line in (folder / "truth.graph.txt").read_text(encoding="utf-8").splitlines():
-        if line.strip() == "Graph Edges:":
-            in_edges = True
-        elif in_edges and "-->" in line:
-            _, a, _, b = line.split()
-            truth.add((a, b) if a <= b else (b, a))
-    return codes, names, cards, truth
+    return codes, names, cards, set(true_skeleton(name, BENCHMARKS))
 
 
 def _scores(edges, truth) -> tuple[float, float, float]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from itertools import combinations
 from pathlib import Path
 
@@ -16,6 +17,9 @@ from pipeline.parallel import parallel_context
 from pipeline.search import Knowledge, pc_stable_skeleton
 from pipeline.stages import stability
 from pipeline.stages.stability import _draw_rows
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
+from _common import true_skeleton  # noqa: E402
 
 BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
 
@@ -48,15 +52,7 @@ def _load(name: str) -> tuple[np.ndarray, list[str], list[int], set[tuple[str, s
     raw = np.loadtxt(folder / "data.txt", skiprows=1, dtype=np.int64, ndmin=2)
     codes = np.vstack([np.unique(col, return_inverse=True)[1] for col in raw.T]).astype(np.int8)
     cards = [int(row.max()) + 1 for row in codes]
-    truth: set[tuple[str, str]] = set()
-    in_edges = False
-    for line in (folder / "truth.graph.txt").read_text(encoding="utf-8").splitlines():
-        if line.strip() == "Graph Edges:":
-            in_edges = True
-        elif in_edges and "-->" in line:
-            _, a, _, b = line.split()
-            truth.add((a, b) if a <= b else (b, a))
-    return codes, names, cards, truth
+    return codes, names, cards, set(true_skeleton(name, BENCHMARKS))
 
 
 def _precision(edges: frozenset[tuple[str, str]], truth: set[tuple[str, str]]) -> float:
