@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 
-BENCH = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCH = Path(__file__).resolve().parents[1] / "tests" / "data" / "benchmarks"
 RESULTS = Path(__file__).resolve().parent / "results"
 
 

@@ -43,7 +43,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import true_skeleton  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
-BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCHMARKS = Path(__file__).resolve().parents[1] / "tests" / "data" / "benchmarks"
 SETS = ("asia", "child", "insurance", "alarm")
 ALPHAS = (0.01, 0.05, 0.1, 0.2)
 TESTS = ("g", "chi2")

@@ -1,23 +1,19 @@
-"""Where the published benchmark data lie (beside the repository, in ../shared)."""
+"""Where the published benchmark data lie: carried in the repository under tests/data/benchmarks."""
 
 from __future__ import annotations
 
-import os
 from pathlib import Path
 
 import numpy as np
-import pytest
 
 REPO = Path(__file__).resolve().parents[1]
-SHARED = Path(os.environ.get("EDGEPROOF_SHARED", REPO.parent / "shared"))
-BENCHMARKS = SHARED / "benchmarks"
+BENCHMARKS = REPO / "tests" / "data" / "benchmarks"  # sources and licence: tests/data/benchmarks/README.md
 
 
 def benchmark_path(name: str) -> Path:
-    """The folder of one shared benchmark set; skips the test when the shared data are absent."""
+    """The folder of one benchmark set carried under tests/data/benchmarks."""
     folder = BENCHMARKS / name
-    if not (folder / "data.txt").is_file():
-        pytest.skip(f"shared benchmark data not found at {folder}")
+    assert (folder / "data.txt").is_file(), f"benchmark data missing at {folder}"
     return folder
 
 

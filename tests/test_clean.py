@@ -12,7 +12,7 @@ from pipeline.config import config_from_dict
 from pipeline.errors import ConfigError, DataError, LimitError
 from pipeline.stages import clean, ingest
 
-BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCHMARKS = Path(__file__).resolve().parent / "data" / "benchmarks"
 N = 40
 
 

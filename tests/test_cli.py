@@ -33,7 +33,7 @@ def _adjacency(evidence: pd.DataFrame, names: list[str]) -> np.ndarray:
 
 def test_alarm_run_gives_the_reference_skeleton(tmp_path, capsys):
     """`edgeproof run` on ALARM gives exactly causal-learn's published PC-stable chi-square skeleton."""
-    # Reference: ../shared/benchmarks/alarm/reference_pc_chisq_0.05_stable.txt, causal-learn 0.1.4.8
+    # Reference: tests/data/benchmarks/alarm/reference_pc_chisq_0.05_stable.txt, causal-learn 0.1.4.8
     # pc(data, 0.05, "chisq", stable=True) on the same 10,000 rows.
     data = benchmark_path("alarm") / "data.txt"
     code = main(["run", "--input", str(data), "--out", str(tmp_path / "run"), "--quiet", *REFERENCE_ARGS])

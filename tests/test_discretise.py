@@ -16,7 +16,7 @@ from pipeline.stages import clean, discretise, ingest
 from pipeline.stages._data_common import empty_rejected
 from pipeline.stages.clean import Cleaned
 
-BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCHMARKS = Path(__file__).resolve().parent / "data" / "benchmarks"
 ALARM = BENCHMARKS / "alarm" / "data.txt"
 
 

@@ -11,7 +11,7 @@ import pytest
 from pipeline.errors import ConfigError
 from pipeline.independence import CIEngine, EngineSettings
 
-BENCH = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCH = Path(__file__).resolve().parent / "data" / "benchmarks"
 
 
 def _load(name: str) -> tuple[np.ndarray, list[str], np.ndarray]:

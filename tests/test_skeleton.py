@@ -13,7 +13,7 @@ from pipeline.parallel import parallel_context
 from pipeline.search import Knowledge, pc_stable_skeleton
 from pipeline.search.skeleton import candidate_sets
 
-BENCH = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCH = Path(__file__).resolve().parent / "data" / "benchmarks"
 SETS = ["asia", "child", "insurance", "alarm"]
 
 

@@ -21,7 +21,7 @@ from pipeline.stages.stability import _draw_rows
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "bench"))
 from _common import true_skeleton  # noqa: E402
 
-BENCHMARKS = Path(__file__).resolve().parents[2] / "shared" / "benchmarks"
+BENCHMARKS = Path(__file__).resolve().parent / "data" / "benchmarks"
 
 
 def _strong_weak_null(seed: int, n: int, strong_noise: float, weak_noise: float) -> tuple[np.ndarray, list[str]]:
@@ -167,7 +167,7 @@ def test_bad_arguments_are_refused(kwargs, error, match):
 def test_child_stable_graph_precision_at_least_single_run(alpha):
     """On CHILD (2,000 rows), the stable graph's adjacency precision against the true graph is at least the single run's."""
     # Source: CHILD network (Spiegelhalter & Cowell 1992), sample and true graph from causal-learn's
-    # test data in ../shared/benchmarks/child.
+    # test data, carried in tests/data/benchmarks/child.
     codes, names, cards, truth = _load("child")
     sub = codes[:, :2000]
     st_ = EngineSettings(alpha=alpha)

@@ -11,7 +11,7 @@ from scipy.stats import chi2_contingency
 from pipeline.independence import contingency_statistics
 from pipeline.independence._kernels import flat_statistics, flat_statistics_numpy
 
-# (source, table, statistic to 4 decimals, dof, p-value, p tolerance) from /work/shared/REFERENCE_VALUES.md
+# (source, table, statistic to 4 decimals, dof, p-value, p tolerance) from the published tables listed beside each row
 G_CASES = [
     # McDonald (2014), Handbook of Biological Statistics, G-test of independence: G = 2.14, P = 0.14 (from memory)
     ([[4758, 30], [8840, 76]], 2.1405, 1, 0.1435),
