@@ -85,8 +85,8 @@ class EngineSettings:
     bit_planes_bytes: int = 64 * 1024 * 1024
 
     def __post_init__(self) -> None:
-        if self.method not in {"g", "chi2", "permutation"}:
-            raise ConfigError(f"`test.method` = {self.method!r}; use g, chi2 or permutation.")
+        if self.method not in {"auto", "g", "chi2", "permutation", "gcm"}:
+            raise ConfigError(f"`test.method` = {self.method!r}; use auto, g, chi2, permutation or gcm.")
         if self.sparse_policy not in {"flag", "independent", "dependent"}:
             raise ConfigError(
                 f"`test.sparse_policy` = {self.sparse_policy!r}; use flag, independent or dependent."

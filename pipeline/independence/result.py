@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass
 from typing import Any
 
@@ -33,6 +34,14 @@ class CITestResult:
     policy: str
     policy_applied: bool
     permutations: int = 0
+    correction: str = "none"  # what was done about serial dependence (see independence.mixed)
+    n_effective: float = float("nan")  # rows after that correction; NaN: the same as n
+
+    @property
+    def effect_r(self) -> float:
+        """Partial-association effect comparable across methods: ``sqrt(1 - 2 ** (-2 * cmi_bits))``
+        (the partial correlation a Gaussian pair with this much information would have)."""
+        return math.sqrt(max(0.0, 1.0 - 2.0 ** (-2.0 * self.cmi_bits))) if self.cmi_bits == self.cmi_bits else float("nan")
 
     @property
     def flags(self) -> tuple[str, ...]:
