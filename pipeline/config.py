@@ -82,7 +82,9 @@ class DiscretiseSettings(_Section):
 class TestSettings(_Section):
     """The conditional-independence test used by every battery."""
 
-    method: Literal["g", "chi2", "permutation"] = "g"
+    # auto: G-test on codes for categorical signals on independent rows; the residual-covariance
+    # test (gcm) when a numeric signal is involved or the rows are time-ordered
+    method: Literal["auto", "g", "chi2", "permutation", "gcm"] = "auto"
     # `auto`: 0.2 for small extracts (fewer than 100 * k**2 rows, k the median level count), else 0.05
     alpha: Union[Literal["auto"], Annotated[float, Field(gt=0.0, lt=1.0)]] = "auto"
     sparse_policy: Literal["flag", "independent", "dependent"] = "flag"
@@ -93,6 +95,29 @@ class TestSettings(_Section):
     permutation_batch: int = Field(default=100, ge=1)
     permutation_score: Literal["g", "cmi"] = "g"
     seed: int = Field(default=0, ge=0)
+
+
+class TimeSettings(_Section):
+    """Which column orders the rows in time and which columns name one series (e.g. the node)."""
+
+    # the timestamp column; None: the first column that parses as timestamps (the manifest says so)
+    column: Optional[str] = None
+    # columns that identify one series; None: found from the data when timestamps repeat
+    series: Optional[list[str]] = None
+    # auto: time-aware tests whenever a time column is known; off: rows are treated as independent
+    serial: Literal["auto", "off"] = "auto"
+    # whether series columns (e.g. the node) are also tested as signals
+    test_series: bool = False
+    # add each signal's values 1..lags windows earlier as variables (lagged links); 0: off
+    lags: int = Field(default=0, ge=0, le=6)
+    # window length in seconds; None: the most common step between consecutive rows of a series
+    window_seconds: Optional[float] = Field(default=None, gt=0)
+
+    @field_validator("serial", mode="before")
+    @classmethod
+    def _yaml_words(cls, value: Any) -> Any:
+        # YAML reads a bare `off` as false and `on` as true
+        return {False: "off", True: "auto"}.get(value, value) if isinstance(value, bool) else value
 
 
 class SearchSettings(_Section):
@@ -186,6 +211,7 @@ class Config(_Section):
     discretise: DiscretiseSettings = Field(default_factory=DiscretiseSettings)
     test: TestSettings = Field(default_factory=TestSettings)
     search: SearchSettings = Field(default_factory=SearchSettings)
+    time: TimeSettings = Field(default_factory=TimeSettings)
     knowledge: KnowledgeSettings = Field(default_factory=KnowledgeSettings)
     parallel: ParallelSettings = Field(default_factory=ParallelSettings)
     limits: LimitSettings = Field(default_factory=LimitSettings)

@@ -229,8 +229,8 @@ def nightly_logs(seed: int = 0, *, nodes: int = 6, windows: int = 288, day: int 
     shuffle_rows : write the rows in an arbitrary order, as extracts often are (the time column and the
         node column carry the order).
     """
+    levels = np.random.default_rng([int(seed), 20261101]).normal(0.0, 1.0, nodes)  # a node keeps its level
     rng = np.random.default_rng([int(seed), int(day), 20261101])
-    levels = rng.normal(0.0, 1.0, nodes)
     parts = []
     for k in range(nodes):
         sig = _one_node(rng, windows, float(levels[k]), persistence=persistence, strength=strength,

@@ -27,11 +27,13 @@ import numpy as np
 from ..independence._kernels import HAVE_NUMBA
 from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
+from ..independence.mixed import MixedEngine
+from ..independence.residual import Timeline
 from ..independence.result import CITestResult
 from ..parallel import ParallelContext
 from .knowledge import Knowledge
 
-__all__ = ["TestRecord", "SkeletonResult", "pc_stable_skeleton", "candidate_sets"]
+__all__ = ["TestRecord", "SkeletonResult", "SignalExtras", "pc_stable_skeleton", "candidate_sets"]
 
 Pair = tuple[str, str]
 
@@ -100,29 +102,56 @@ def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) 
 _WORKER_ENGINES: dict[Any, CIEngine] = {}
 
 
-def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> CIEngine:
+@dataclass(frozen=True)
+class SignalExtras:
+    """What tests beyond codes need: normal scores of numeric signals, previous windows, lag copies.
+
+    ``scores`` holds one row per variable (NaN rows for variables that are not numeric, flagged by
+    ``numeric``); ``prev`` the previous-window row of each row (or None: rows independent).
+    """
+
+    scores: np.ndarray
+    numeric: tuple[bool, ...]
+    prev: np.ndarray | None
+    series_length: float
+    own_past: tuple[bool, ...]
+
+    def engine(self, data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> MixedEngine:
+        timeline = None if self.prev is None else Timeline(prev=np.asarray(self.prev), series_length=self.series_length)
+        scores = [np.asarray(self.scores[i]) if num else None for i, num in enumerate(self.numeric)]
+        return MixedEngine(data, names, cards, settings, scores=scores, timeline=timeline,
+                           own_past=list(self.own_past), distinct=packed)
+
+
+def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any,
+                   extras: SignalExtras | None = None) -> CIEngine | MixedEngine:
     """The engine of a worker process, reused across its tasks when the table is a memory-mapped file.
 
     Building an engine and its first call cost tens of milliseconds on big tables; a level split into
     many chunks would pay that once per chunk. A memory map names its file, which holds one coded
     table for good (see `parallel.share_array`), so it is a safe key; anything else gets a new engine.
     """
+    def build() -> CIEngine | MixedEngine:
+        if extras is not None:
+            return extras.engine(data, names, cards, settings, packed)
+        return CIEngine(data, names, cards, settings, distinct=packed)
+
     filename = getattr(data, "filename", None) if isinstance(data, np.memmap) else None
     if filename is None or packed is not None:
-        return CIEngine(data, names, cards, settings, distinct=packed)
-    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings)
+        return build()
+    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings, id(extras))
     engine = _WORKER_ENGINES.get(key)
     if engine is None:
         _WORKER_ENGINES.clear()  # one table at a time per worker
-        engine = _WORKER_ENGINES[key] = CIEngine(data, names, cards, settings, distinct=packed)
+        engine = _WORKER_ENGINES[key] = build()
     return engine
 
 
 def _battery_worker(shared: tuple[Any, ...], chunk: list[tuple[str, str, list[tuple[str, ...]]]]):
     """Test each pair of a chunk along its candidate sets until the first independence."""
-    data, names, cards, settings, distinct, weights = shared
+    data, names, cards, settings, distinct, weights, extras = shared
     packed = None if weights is None else (distinct, weights)
-    return _worker_engine(data, names, cards, settings, packed).first_independent_many(chunk)
+    return _worker_engine(data, names, cards, settings, packed, extras).first_independent_many(chunk)
 
 
 def _chunks(items: list[Any], weights: list[int], n_chunks: int) -> list[list[Any]]:
@@ -154,6 +183,7 @@ def pc_stable_skeleton(
     resume: SearchState | None = None,
     on_level: Callable[[SearchState], None] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    extras: SignalExtras | None = None,
 ) -> SkeletonResult:
     """Search the skeleton with PC-stable.
 
@@ -168,6 +198,8 @@ def pc_stable_skeleton(
     resume : the state saved after a finished level, to go on from there.
     on_level : called with the state after each finished level (for checkpoints).
     progress : called with (level, pairs to test) before each level.
+    extras : numeric scores, previous windows and lag copies (`SignalExtras`); None: codes only,
+        rows independent (the compiled contingency path).
 
     Examples
     --------
@@ -186,7 +218,7 @@ def pc_stable_skeleton(
         packed = compress_rows(data, max_ratio=settings.compress_max_ratio)
         if packed is not None:  # distinct rows found once, shared by every worker
             distinct, weights = packed
-    shared = (data, names, list(cards), settings, distinct, weights)
+    shared = (data, names, list(cards), settings, distinct, weights, extras)
     all_pairs = [_pair(a, b) for a, b in combinations(sorted(names), 2)]
     forbidden = frozenset(p for p in all_pairs if knowledge.is_forbidden(*p))
     if resume is None:

@@ -6,7 +6,7 @@ row removed here is in `Cleaned.quarantined` with its reason, so nothing is lost
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -46,6 +46,7 @@ class Cleaned:
     columns: list[dict[str, Any]]
     quarantined: pd.DataFrame
     summary: dict[str, Any]
+    times: pd.DataFrame = field(default_factory=pd.DataFrame)  # timestamp columns, int64 ns UTC (NaT: min int64)
 
 
 def run(ingested: Ingested, cfg: Config) -> Cleaned:
@@ -94,7 +95,16 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
         )
     out, kinds, records = _apply_rules(typed, derived, keep, cfg)
     quarantined = _quarantine(ingested, bad_rows, bad_reasons, duplicate)
-    return _package(ingested, out, kinds, records, quarantined, order, cfg, int(duplicate.sum()))
+    cleaned = _package(ingested, out, kinds, records, quarantined, order, cfg, int(duplicate.sum()))
+    times = pd.DataFrame({name: _utc_nanoseconds(col.values[keep]) for name, col in typed.items()
+                          if col.kind == "timestamp"})
+    return Cleaned(cleaned.table, cleaned.kinds, cleaned.columns, cleaned.quarantined, cleaned.summary, times)
+
+
+def _utc_nanoseconds(values: pd.Series) -> np.ndarray:
+    """Timestamps as int64 nanoseconds since the epoch in UTC (missing: the smallest int64)."""
+    s = pd.to_datetime(values, utc=True, errors="coerce")
+    return s.dt.tz_convert(None).to_numpy(dtype="datetime64[ns]").view(np.int64)
 
 
 def _check_column_specs(table: pd.DataFrame, cfg: Config) -> None:
