@@ -14,6 +14,13 @@ A pair is *near alpha* when the p-value its verdict rests on (the ``pvalue`` col
 within a factor ``search.near_alpha_factor`` of that run's ``test.alpha`` on either side,
 ``alpha / f < p < alpha * f``, in either run.
 
+Flips are not changes until tested: `run` tests every flipped pair and every pair near alpha for a
+change of its conditional association between the two nights, and every signal for a change of its
+distribution given its neighbours (`pipeline.change`), with Benjamini-Hochberg q-values over all of
+them. ``added`` and ``removed`` keep only the flips whose change test has ``q <= compare.alpha``; the
+other flips are ``unconfirmed``; ``mechanism_changes`` are the signals whose test passed. Without the
+runs' coded data (``discretised.parquet``) nothing can be tested and every flip is unconfirmed.
+
 Artifacts written to the comparison folder: ``diff.parquet``, ``diff.csv`` (one row per pair
 linked in at least one run or near alpha in either), ``diff.dot``, ``diff.svg`` and ``diff.html``.
 """
@@ -30,12 +37,14 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Optional, Union
 
+import numpy as np
 import pandas as pd
 
+from .change import ChangeTest, NightData, mechanism_change, pair_change, with_qvalues
 from .config import Config
 from .errors import EXIT_CHANGED, EXIT_OK, ConfigError, DataError
 
-__all__ = ["Comparison", "run", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
+__all__ = ["Comparison", "run", "confirm", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
 
 Pair = tuple[str, str]
 PathLike = Union[str, "os.PathLike[str]"]
@@ -43,9 +52,13 @@ PathLike = Union[str, "os.PathLike[str]"]
 DIFF_COLUMNS = [
     "var_a", "var_b", "change", "linked_a", "linked_b", "orientation_a", "orientation_b",
     "orientation_changed", "pvalue_a", "pvalue_b", "cmi_bits_a", "cmi_bits_b", "given_a", "given_b",
-    "near_alpha_a", "near_alpha_b",
+    "near_alpha_a", "near_alpha_b", "flip", "change_pvalue", "change_qvalue", "change_method",
+    "change_given", "effect", "effect_a", "effect_b",
 ]
+MECHANISM_COLUMNS = ["signal", "neighbours", "change_pvalue", "change_qvalue", "change_method",
+                     "statistic", "dof", "supported"]
 _UNDIRECTED = "--"
+TIMELINE_SERIES, TIMELINE_ORDER = "series", "order"  # columns of a run's timeline.parquet
 
 
 @dataclass(frozen=True)
@@ -79,25 +92,75 @@ class Comparison:
     alpha: tuple[float, float] = (0.05, 0.05)
     near_alpha_factor: tuple[float, float] = (2.0, 2.0)
     warnings: tuple[str, ...] = field(default_factory=tuple)
+    unconfirmed: tuple[Pair, ...] = ()
+    mechanism: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=MECHANISM_COLUMNS))
+    change_alpha: float = 0.05
+    tested: bool = False
 
     @property
     def shd(self) -> int:
-        """Structural Hamming distance: added + removed + orientation changes among kept pairs."""
-        return len(self.added) + len(self.removed) + len(self.orientation_changes)
+        """Structural Hamming distance: every flip (supported or not) plus orientation changes."""
+        return len(self.added) + len(self.removed) + len(self.unconfirmed) + len(self.orientation_changes)
+
+    @property
+    def mechanism_changes(self) -> tuple[str, ...]:
+        """Signals whose distribution given their neighbours changed (supported by the test)."""
+        m = self.mechanism
+        return tuple(str(s) for s in m.loc[m["supported"].astype(bool), "signal"]) if len(m) else ()
 
     @property
     def changed(self) -> int:
-        """Number of links that appeared or disappeared (what ``--fail-on-change`` counts)."""
-        return len(self.added) + len(self.removed)
+        """Supported changes: added + removed links + mechanism changes (what ``--fail-on-change`` counts)."""
+        return len(self.added) + len(self.removed) + len(self.mechanism_changes)
+
+    def pair_figures(self, pair: Pair) -> dict[str, Any]:
+        """The change test's figures of one pair: p, q, effects before and after, and more."""
+        t = self.table
+        r = t[(t["var_a"] == pair[0]) & (t["var_b"] == pair[1])].iloc[0]
+        return {
+            "pair": [pair[0], pair[1]], "flip": str(r["flip"]),
+            "change_pvalue": _num(r["change_pvalue"]), "change_qvalue": _num(r["change_qvalue"]),
+            "change_method": str(r["change_method"]), "given": str(r["change_given"]),
+            "effect": str(r["effect"]), "effect_before": _num(r["effect_a"]),
+            "effect_after": _num(r["effect_b"]), "pvalue_before": _num(r["pvalue_a"]),
+            "pvalue_after": _num(r["pvalue_b"]), "cmi_bits_before": _num(r["cmi_bits_a"]),
+            "cmi_bits_after": _num(r["cmi_bits_b"]),
+        }
+
+    def summary(self) -> dict[str, Any]:
+        """The change summary a nightly report shows: previous run, supported changes, unconfirmed flips."""
+        return {
+            "previous_run": self.run_a,
+            "added": [self.pair_figures(p) for p in self.added],
+            "removed": [self.pair_figures(p) for p in self.removed],
+            "unconfirmed": [self.pair_figures(p) for p in self.unconfirmed],
+            "mechanism_changes": [
+                {"signal": str(r.signal), "neighbours": str(r.neighbours),
+                 "change_pvalue": _num(r.change_pvalue), "change_qvalue": _num(r.change_qvalue),
+                 "change_method": str(r.change_method)}
+                for r in self.mechanism.itertuples(index=False) if bool(r.supported)
+            ],
+        }
 
     def to_json(self) -> dict[str, Any]:
         """Plain-data summary (what ``--json`` prints)."""
         kept_rows = self.table[self.table["change"] == "kept"]
+        s = self.summary()
         return {
             "run_a": self.run_a,
             "run_b": self.run_b,
-            "added": [list(p) for p in self.added],
-            "removed": [list(p) for p in self.removed],
+            "tested": self.tested,
+            "change_alpha": self.change_alpha,
+            "added": s["added"],
+            "removed": s["removed"],
+            "unconfirmed": s["unconfirmed"],
+            "mechanism_changes": s["mechanism_changes"],
+            "mechanism_tests": [
+                {"signal": str(r.signal), "neighbours": str(r.neighbours),
+                 "change_pvalue": _num(r.change_pvalue), "change_qvalue": _num(r.change_qvalue),
+                 "supported": bool(r.supported)}
+                for r in self.mechanism.itertuples(index=False)
+            ],
             "kept": len(self.kept),
             "orientation_changes": list(self.orientation_changes),
             "shd": self.shd,
@@ -127,6 +190,7 @@ def run(
     *,
     category_mismatch: str = "warn",
     near_alpha_factor: Optional[float] = None,
+    change_alpha: float = 0.05,
 ) -> Comparison:
     """Compare two run folders (A before, B after).
 
@@ -138,6 +202,9 @@ def run(
         What to do when the two runs' ``levels.json`` differ: a warning, or `DataError`.
     near_alpha_factor : float, optional
         Overrides the factor each run's manifest records (``search.near_alpha_factor``).
+    change_alpha : float
+        False discovery rate of the change tests (``compare.alpha``): a flip or a mechanism change
+        is supported when its Benjamini-Hochberg q-value is at most this.
 
     Returns
     -------
@@ -155,7 +222,7 @@ def run(
             f"`compare.category_mismatch` = {category_mismatch!r} is not allowed; use warn or refuse."
         )
     a, b = _load(Path(run_a)), _load(Path(run_b))
-    warnings = _category_warnings(a, b)
+    warnings = list(_category_warnings(a, b))
     if warnings and category_mismatch == "refuse":
         raise DataError(warnings[0] + " (compare.category_mismatch = refuse; set it to warn to compare anyway)")
     alpha = (a["alpha"], b["alpha"])
@@ -166,6 +233,13 @@ def run(
         a["evidence"], b["evidence"], alpha=alpha, near_alpha_factor=factor,
         names=(a["name"], b["name"]),
     )
+    night_a, night_b = _load_night(Path(run_a), a["levels"]), _load_night(Path(run_b), b["levels"])
+    if night_a is None or night_b is None:
+        warnings.append(
+            "A run folder lacks `discretised.parquet`, so no change could be tested; every flip is "
+            "listed as unconfirmed"
+        )
+    cmp = confirm(cmp, night_a, night_b, alpha=change_alpha)
     if warnings:
         cmp = replace(cmp, warnings=tuple(warnings))
     return cmp
@@ -216,6 +290,9 @@ def diff_evidence(
             "cmi_bits_a": _float(ra.get("cmi_bits")), "cmi_bits_b": _float(rb.get("cmi_bits")),
             "given_a": str(ra.get("given", "") or ""), "given_b": str(rb.get("given", "") or ""),
             "near_alpha_a": near_a, "near_alpha_b": near_b,
+            "flip": change if change in ("added", "removed") else "",
+            "change_pvalue": math.nan, "change_qvalue": math.nan, "change_method": "",
+            "change_given": "", "effect": "", "effect_a": math.nan, "effect_b": math.nan,
         })
     table = pd.DataFrame(rows, columns=DIFF_COLUMNS)
     table = table.astype({
@@ -223,7 +300,9 @@ def diff_evidence(
         "linked_b": bool, "orientation_a": "string", "orientation_b": "string",
         "orientation_changed": bool, "pvalue_a": float, "pvalue_b": float, "cmi_bits_a": float,
         "cmi_bits_b": float, "given_a": "string", "given_b": "string", "near_alpha_a": bool,
-        "near_alpha_b": bool,
+        "near_alpha_b": bool, "flip": "string", "change_pvalue": float, "change_qvalue": float,
+        "change_method": "string", "change_given": "string", "effect": "string", "effect_a": float,
+        "effect_b": float,
     })
     pick = lambda kind: tuple(  # noqa: E731
         (str(r.var_a), str(r.var_b)) for r in table.itertuples(index=False) if r.change == kind
@@ -252,6 +331,91 @@ def diff_evidence(
         alpha=(float(alpha_ab[0]), float(alpha_ab[1])),
         near_alpha_factor=(float(factor_ab[0]), float(factor_ab[1])),
     )
+
+
+def confirm(
+    cmp: Comparison,
+    night_a: Optional[NightData],
+    night_b: Optional[NightData],
+    *,
+    alpha: float = 0.05,
+) -> Comparison:
+    """Test every flip, every pair near alpha and every signal's mechanism; keep supported flips.
+
+    Each pair is tested given each distinct deciding conditioning set of the two nights (the
+    ``given`` of its evidence rows); its p-value is the smallest, times the number of sets
+    (Bonferroni). Benjamini-Hochberg runs over all pair and mechanism tests together. A signal's
+    neighbours are the union of its linked pairs in either night. Without data (either night None)
+    nothing is tested and every flip is unconfirmed.
+    """
+    t = cmp.table.copy()
+    tests: list[ChangeTest] = []
+    rows_tested: list[int] = []
+    mech_rows: list[dict[str, Any]] = []
+    if night_a is not None and night_b is not None:
+        common = set(night_a.codes.columns) & set(night_b.codes.columns)
+        for i, r in enumerate(t.itertuples(index=False)):
+            x, y = str(r.var_a), str(r.var_b)
+            if not (r.flip or r.near_alpha_a or r.near_alpha_b) or not {x, y} <= common:
+                continue
+            sets = []
+            for text in (str(r.given_a), str(r.given_b)):
+                g = tuple(sorted(v for v in text.split(";") if v and v in common))
+                if g not in sets:
+                    sets.append(g)
+            found = [_safe_test(pair_change, night_a, night_b, x, y, g) for g in sets]
+            best = min(found, key=lambda c: c.pvalue)
+            tests.append(replace(best, pvalue=min(1.0, best.pvalue * len(found))))
+            rows_tested.append(i)
+        linked = t[t["linked_a"] | t["linked_b"]]
+        for sig in sorted(common):
+            nbrs = sorted(
+                {str(v) for v in linked.loc[linked["var_a"] == sig, "var_b"]}
+                | {str(v) for v in linked.loc[linked["var_b"] == sig, "var_a"]}
+            )
+            tests.append(_safe_test(mechanism_change, night_a, night_b, sig, [n for n in nbrs if n in common]))
+    tests = with_qvalues(tests)
+    for i, c in zip(rows_tested, tests):
+        t.loc[t.index[i], ["change_pvalue", "change_qvalue", "effect_a", "effect_b"]] = [
+            c.pvalue, c.qvalue, c.effect_a, c.effect_b]
+        t.loc[t.index[i], ["change_method", "change_given", "effect"]] = [c.method, ";".join(c.given), c.effect]
+    for c in tests[len(rows_tested):]:
+        mech_rows.append({
+            "signal": c.var_a, "neighbours": ";".join(c.given), "change_pvalue": c.pvalue,
+            "change_qvalue": c.qvalue, "change_method": c.method, "statistic": c.statistic,
+            "dof": c.dof, "supported": bool(c.qvalue <= alpha),
+        })
+    supported = t["change_qvalue"].fillna(1.0) <= alpha
+    t.loc[(t["flip"] != "") & ~supported, "change"] = "unconfirmed"
+    pick = lambda kind: tuple(  # noqa: E731
+        (str(r.var_a), str(r.var_b)) for r in t.itertuples(index=False) if r.change == kind
+    )
+    near = []
+    for n in cmp.near_alpha:
+        hit = t[(t["var_a"] == n["pair"][0]) & (t["var_b"] == n["pair"][1])].iloc[0]
+        near.append({**n, "change_pvalue": _num(hit["change_pvalue"]),
+                     "change_qvalue": _num(hit["change_qvalue"]),
+                     "association_changed": bool(_float(hit["change_qvalue"]) <= alpha)})
+    mech = pd.DataFrame(mech_rows, columns=MECHANISM_COLUMNS).astype(
+        {"signal": "string", "neighbours": "string", "change_pvalue": float, "change_qvalue": float,
+         "change_method": "string", "statistic": float, "dof": "int64", "supported": bool})
+    return replace(
+        cmp, table=t, added=pick("added"), removed=pick("removed"), unconfirmed=pick("unconfirmed"),
+        near_alpha=tuple(near), mechanism=mech, change_alpha=float(alpha),
+        tested=night_a is not None and night_b is not None,
+    )
+
+
+def _safe_test(fn: Any, a: NightData, b: NightData, *args: Any) -> ChangeTest:
+    """Run one change test; a numerically impossible one (no usable rows) is a p-value of 1."""
+    try:
+        return fn(a, b, *args)
+    except (np.linalg.LinAlgError, ValueError) as err:
+        x = str(args[0])
+        y = str(args[1]) if fn is pair_change else ""
+        given = tuple(args[-1])
+        return ChangeTest("pair" if fn is pair_change else "mechanism", x, y, given,
+                          f"not testable ({type(err).__name__})", math.nan, 0, 1.0, 0, 0)
 
 
 def resolve_run(
@@ -307,7 +471,9 @@ def compare_main(
     folder_b = resolve_run(run_b, cfg, config_path)
     mismatch = cfg.compare.category_mismatch if cfg is not None else "warn"
     factor = cfg.search.near_alpha_factor if cfg is not None else None
-    cmp = run(folder_a, folder_b, category_mismatch=mismatch, near_alpha_factor=factor)
+    change_alpha = cfg.compare.alpha if cfg is not None else 0.05
+    cmp = run(folder_a, folder_b, category_mismatch=mismatch, near_alpha_factor=factor,
+              change_alpha=change_alpha)
     if out_dir is None:
         base = Path.cwd()
         if cfg is not None:
@@ -327,7 +493,7 @@ def compare_main(
         print(f"Written: {', '.join(str(p) for p in written)}")
     if fail_on_change is not None and cmp.changed > fail_on_change:
         print(
-            f"edgeproof compare: {cmp.changed} links changed, more than --fail-on-change "
+            f"edgeproof compare: {cmp.changed} supported changes, more than --fail-on-change "
             f"{fail_on_change}.",
             file=sys.stderr,
         )
@@ -365,6 +531,39 @@ def _load(folder: Path) -> dict[str, Any]:
         "alpha": alpha if math.isfinite(alpha) else 0.05,
         "factor": factor if math.isfinite(factor) else 2.0,
     }
+
+
+def _load_night(folder: Path, levels: dict[str, Any]) -> Optional[NightData]:
+    """The coded data of a run (``discretised.parquet``) and, when the run has it, its time table.
+
+    ``timeline.parquet`` (rows aligned with the codes) may hold ``series`` (series id), ``order``
+    (time order within the series) and the raw values of numeric signals under their own names.
+    Without it the night is categorical with independent rows. None when the codes are missing.
+    """
+    path = folder / "discretised.parquet"
+    if not path.is_file():
+        return None
+    try:
+        codes = pd.read_parquet(path)
+    except Exception as err:  # noqa: BLE001 - pyarrow raises several types
+        raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    kinds = {str(k): str(v) for k, v in (levels.get("kinds") or {}).items()}
+    timeline = folder / "timeline.parquet"
+    if not timeline.is_file():
+        return NightData(codes, kinds)
+    try:
+        tl = pd.read_parquet(timeline)
+    except Exception as err:  # noqa: BLE001
+        raise DataError(f"`{timeline}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    if len(tl) != len(codes):
+        raise DataError(
+            f"`{timeline}` has {len(tl)} rows but `{path}` has {len(codes)}; re-run that snapshot."
+        )
+    numeric = [c for c in codes.columns if kinds.get(c) == "numeric" and c in tl.columns]
+    series = tl[TIMELINE_SERIES].to_numpy() if TIMELINE_SERIES in tl.columns else None
+    order = tl[TIMELINE_ORDER].to_numpy(dtype=np.int64) if TIMELINE_ORDER in tl.columns else None
+    values = tl[numeric].astype(float) if numeric else None
+    return NightData(codes, kinds, values, series, order)
 
 
 def _read_json(path: Path) -> Any:
