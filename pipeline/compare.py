@@ -22,7 +22,9 @@ other flips are ``unconfirmed``; ``mechanism_changes`` are the signals whose tes
 runs' coded data (``discretised.parquet``) nothing can be tested and every flip is unconfirmed.
 
 Artifacts written to the comparison folder: ``diff.parquet``, ``diff.csv`` (one row per pair
-linked in at least one run or near alpha in either), ``diff.dot``, ``diff.svg`` and ``diff.html``.
+linked in at least one run or near alpha in either; ``change`` is added, removed, unconfirmed, kept
+or unlinked, ``flip`` the raw flip, with the change test's figures), ``mechanism.csv`` (one row per
+signal's mechanism test), ``diff.dot``, ``diff.svg`` and ``diff.html``.
 """
 
 from __future__ import annotations
@@ -501,6 +503,14 @@ def compare_main(
     return EXIT_OK
 
 
+def compare_main_quiet(run_a: Path, run_b: Path, cfg: Config, out: Path) -> dict[str, Any]:
+    """Compare two runs with the configuration's settings, write the artifacts into `out`, return the summary."""
+    cmp = run(run_a, run_b, category_mismatch="warn", near_alpha_factor=cfg.search.near_alpha_factor,
+              change_alpha=cfg.compare.alpha)
+    _write(cmp, out)
+    return {**cmp.summary(), "warnings": list(cmp.warnings)}
+
+
 # ----------------------------------------------------------------------------- loading
 
 
@@ -669,6 +679,9 @@ def _write(cmp: Comparison, out: Path) -> list[Path]:
     _atomic(parquet, lambda p: cmp.table.to_parquet(p, index=False))
     csv = out / "diff.csv"
     _atomic(csv, lambda p: cmp.table.to_csv(p, index=False))
+    mech = out / "mechanism.csv"
+    _atomic(mech, lambda p: cmp.mechanism.to_csv(p, index=False))
+    written.append(mech)
     dot_source = _dot(cmp)
     dot = out / "diff.dot"
     _atomic(dot, lambda p: Path(p).write_text(dot_source, encoding="utf-8"))
@@ -715,6 +728,9 @@ def _dot(cmp: Comparison) -> str:
             head, tail, direction = _direction((a, b), str(r.orientation_a), names)
             g.edge(tail, head, label="- removed", style="dashed", penwidth="1.5", color="#9c1f1f",
                    dir=direction)
+        elif r.change == "unconfirmed":
+            g.edge(b, a, label=f"? {r.flip}, not supported", style="dotted", penwidth="1",
+                   color="#777777", dir="none")
         elif r.change == "kept":
             head, tail, direction = _direction((a, b), str(r.orientation_b), names)
             label = graphviz.escape(f"kept, turned (was {r.orientation_a})") if r.orientation_changed else ""
@@ -723,10 +739,12 @@ def _dot(cmp: Comparison) -> str:
     with g.subgraph(name="cluster_legend") as key:
         key.attr(label="Key", fontsize="10", style="rounded")
         key.node("_k1", "solid line: kept", shape="plaintext")
-        key.node("_k2", "thick line, '+ added': new in after", shape="plaintext")
-        key.node("_k3", "dashed line, '- removed': gone in after", shape="plaintext")
+        key.node("_k2", "thick line, '+ added': new in after (supported change)", shape="plaintext")
+        key.node("_k3", "dashed line, '- removed': gone in after (supported change)", shape="plaintext")
         key.edge("_k1", "_k2", style="invis")
+        key.node("_k4", "dotted line, '?': a flip the change test does not support", shape="plaintext")
         key.edge("_k2", "_k3", style="invis")
+        key.edge("_k3", "_k4", style="invis")
     return g.source
 
 
@@ -759,17 +777,26 @@ def _render_svg(source: str) -> Optional[str]:
         return None
 
 
+def _g(v: Optional[float]) -> str:
+    """A number in 3 significant digits, '-' for none."""
+    return "-" if v is None else f"{v:.3g}"
+
+
 def _text_summary(cmp: Comparison) -> str:
     """The human summary printed without --json."""
     lines = [
         f"Compare {cmp.run_a} (before) with {cmp.run_b} (after): {len(cmp.added)} added, "
-        f"{len(cmp.removed)} removed, {len(cmp.kept)} kept, {len(cmp.orientation_changes)} turned; "
-        f"structural Hamming distance {cmp.shd}."
+        f"{len(cmp.removed)} removed, {len(cmp.mechanism_changes)} mechanism changes (supported by "
+        f"the change test, q <= {cmp.change_alpha:g}); {len(cmp.unconfirmed)} unconfirmed flips; "
+        f"{len(cmp.kept)} kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}."
     ]
-    for p in cmp.added:
-        lines.append(f"  + {p[0]} -- {p[1]}")
-    for p in cmp.removed:
-        lines.append(f"  - {p[0]} -- {p[1]}")
+    for sign, pairs in (("+", cmp.added), ("-", cmp.removed), ("?", cmp.unconfirmed)):
+        for p in pairs:
+            f = cmp.pair_figures(p)
+            lines.append(f"  {sign} {p[0]} -- {p[1]}  change p = {_g(f['change_pvalue'])}, "
+                         f"q = {_g(f['change_qvalue'])}" + (f" ({f['flip']})" if sign == "?" else ""))
+    for sig in cmp.mechanism_changes:
+        lines.append(f"  ~ {sig}: distribution given its neighbours changed")
     for o in cmp.orientation_changes:
         lines.append(f"  ~ {o['before']}  now  {o['after']}")
     if cmp.near_alpha:
@@ -806,23 +833,43 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         f"<title>{e(f'Compare {cmp.run_a} with {cmp.run_b}')}</title><style>{_CSS}</style></head><body>",
         f"<h1>{e(cmp.run_a)} (before) &rarr; {e(cmp.run_b)} (after)</h1>",
-        f"<p>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.kept)} kept, "
-        f"{len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p>",
+        f"<p>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.mechanism_changes)} "
+        f"mechanism changes (supported); {len(cmp.unconfirmed)} unconfirmed flips; {len(cmp.kept)} "
+        f"kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p>",
     ]
     for w in cmp.warnings:
         parts.append(f"<p class='warn'>Warning: {e(w)}.</p>")
     if svg is not None:
         start = svg.find("<svg")
         parts.append(f"<div class='figure'>{svg[start:] if start >= 0 else ''}</div>")
-    changed = t[t["change"].isin(["added", "removed"])]
-    parts.append("<h2>Links added (+) and removed (&minus;)</h2>")
+    heads = ["", "pair", "change p", "change q", "effect before", "effect after", "measure",
+             "tested given", "p-value before", "p-value after"]
+
+    def flip_rows(kinds: list[str]) -> list[list[str]]:
+        rows = t[t["change"].isin(kinds)]
+        return [[td("+" if r.flip == "added" else "\u2212"), td(f"{r.var_a} -- {r.var_b}"),
+                 tn(r.change_pvalue), tn(r.change_qvalue), tn(r.effect_a), tn(r.effect_b),
+                 td(r.effect), td(r.change_given), tn(r.pvalue_a), tn(r.pvalue_b)]
+                for r in rows.itertuples(index=False)]
+
+    parts.append(
+        f"<p>A flip is a <em>supported change</em> when the test that the pair's conditional "
+        f"association differs between the two nights has a Benjamini-Hochberg q-value of at most "
+        f"{e(f'{cmp.change_alpha:g}')}" + ("" if cmp.tested else " (no coded data: nothing was tested)")
+        + ".</p>")
+    parts.append("<h2>Links added (+) and removed (&minus;): supported changes</h2>")
+    parts.append(table(heads, flip_rows(["added", "removed"])))
+    parts.append("<h2>Signals whose mechanism changed</h2><p>The distribution of the signal given its "
+                 "neighbours (in either night) differs between the nights.</p>")
+    m = cmp.mechanism
     parts.append(table(
-        ["", "pair", "p-value before", "p-value after", "cmi bits before", "cmi bits after",
-         "given before", "given after"],
-        [[td("+" if r.change == "added" else "\u2212"), td(f"{r.var_a} -- {r.var_b}"),
-          tn(r.pvalue_a), tn(r.pvalue_b), tn(r.cmi_bits_a), tn(r.cmi_bits_b), td(r.given_a),
-          td(r.given_b)] for r in changed.itertuples(index=False)],
+        ["signal", "neighbours", "change p", "change q", "test"],
+        [[td(r.signal), td(r.neighbours), tn(r.change_pvalue), tn(r.change_qvalue), td(r.change_method)]
+         for r in m[m["supported"].astype(bool)].itertuples(index=False)] if len(m) else [],
     ))
+    parts.append("<h2>Unconfirmed flips</h2><p>Linked on one night only, but the change test does not "
+                 "support a change: most likely chance near alpha.</p>")
+    parts.append(table(heads, flip_rows(["unconfirmed"])))
     parts.append("<h2>Orientation changes among kept links</h2>")
     parts.append(table(["before", "after"], [[td(o["before"]), td(o["after"])]
                                              for o in cmp.orientation_changes]))
@@ -840,10 +887,12 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
         f"{e(f'{cmp.alpha[1]:g}')} (after), on either side.</p>"
     )
     parts.append(table(
-        ["pair", "linked before", "linked after", "p-value before", "p-value after", "near in"],
+        ["pair", "linked before", "linked after", "p-value before", "p-value after", "near in",
+         "change p", "change q"],
         [[td(f"{n['pair'][0]} -- {n['pair'][1]}"), td("yes" if n["linked_a"] else "no"),
           td("yes" if n["linked_b"] else "no"), tn(n["pvalue_a"]), tn(n["pvalue_b"]),
-          td(", ".join("before" if k == "a" else "after" for k in n["near_in"]))]
+          td(", ".join("before" if k == "a" else "after" for k in n["near_in"])),
+          tn(n.get("change_pvalue")), tn(n.get("change_qvalue"))]
          for n in cmp.near_alpha],
     ))
     parts.append("</body></html>\n")
