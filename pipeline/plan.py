@@ -23,7 +23,8 @@ import pandas as pd
 from .independence.engine import EngineSettings
 from .runner import Stage, StageCall
 from .stages import battery, clean, discretise, ingest, skeleton, stability
-from .stages.skeleton import state_from_json, state_to_json
+from .stages._evidence import records_from_part, tests_part
+from .stages.skeleton import state_doc, state_from
 
 __all__ = ["STAGES", "coded_matrix"]
 
@@ -90,25 +91,18 @@ def _settings(call: StageCall) -> EngineSettings:
 def _battery(call: StageCall) -> dict[str, Any]:
     sig = call["signals"]
     marginal = battery.run(call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], call.env["workers"])
-    return {"marginal.parquet": marginal.tests, "state.json": json_doc(state_to_json(marginal.state))}
-
-
-def json_doc(text: str) -> Any:
-    """Plain data of a JSON text (artifacts ending in .json are written from plain data)."""
-    import json
-
-    return json.loads(text)
+    return {"marginal.parquet": marginal.tests, "state.json": state_doc(marginal.state),
+            "marginal-part.parquet": tests_part(marginal.state.tests)}
 
 
 def _skeleton(call: StageCall) -> dict[str, Any]:
-    import json
-
     sig, cfg, rep = call["signals"], call.cfg, call.env["reporter"]
-    state = state_from_json(json.dumps(call["state.json"]))
+    state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
+    call.inputs.pop("marginal-part.parquet")
     outcome = skeleton.run(
         call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,
         max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
-        context=call.env["workers"], checkpoint=call.work / "checkpoint.json", progress=rep.level,
+        context=call.env["workers"], checkpoint=call.work, progress=rep.level,
     )
     rep.close()
     return {"evidence.parquet": outcome.evidence, "tests.parquet": outcome.tests}
@@ -151,8 +145,8 @@ STAGES: tuple[Stage, ...] = (
           writes=("discretised.parquet", "codes.npy", "levels.json", "discretise.json"),
           carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("battery", _battery, reads=("codes.npy", "signals", "knowledge"), settings=("test",),
-          writes=("marginal.parquet", "state.json")),
-    Stage("skeleton", _skeleton, reads=("codes.npy", "signals", "knowledge", "marginal.parquet", "state.json"),
+          writes=("marginal.parquet", "marginal-part.parquet", "state.json")),
+    Stage("skeleton", _skeleton, reads=("codes.npy", "signals", "knowledge", "marginal-part.parquet", "state.json"),
           settings=_SEARCH, writes=("evidence.parquet", "tests.parquet"), resumable=True),
     Stage("stability", _stability, reads=("codes.npy", "signals", "knowledge", "evidence.parquet"),
           settings=(*_SEARCH, "search.resamples", "search.resample_fraction", "search.resample_method",
