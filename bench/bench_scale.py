@@ -154,8 +154,9 @@ def _extract(work: Path, rows: int, seed: int) -> Path:
 
 def _link_cache(src_parent: Path, dst_parent: Path) -> None:
     """Hard-link the ingest, clean and discretise stage cache of one output parent into another."""
-    src, dst = src_parent / ".cache", dst_parent / ".cache"
-    dst.mkdir(parents=True, exist_ok=True)
+    from pipeline.runs import CACHE_FOLDER, StageCache
+
+    src, dst = src_parent / CACHE_FOLDER, StageCache.beside(dst_parent).open().root
     for d in sorted(src.iterdir()):
         if d.is_dir() and d.name.split("-", 1)[0] in ("ingest", "clean", "discretise"):
             shutil.copytree(d, dst / d.name, copy_function=os.link, dirs_exist_ok=True)

@@ -14,8 +14,17 @@ A pair is *near alpha* when the p-value its verdict rests on (the ``pvalue`` col
 within a factor ``search.near_alpha_factor`` of that run's ``test.alpha`` on either side,
 ``alpha / f < p < alpha * f``, in either run.
 
+Flips are not changes until tested: `run` tests every flipped pair and every pair near alpha for a
+change of its conditional association between the two nights, and every signal for a change of its
+distribution given its neighbours (`pipeline.change`), with Benjamini-Hochberg q-values over all of
+them. ``added`` and ``removed`` keep only the flips whose change test has ``q <= compare.alpha``; the
+other flips are ``unconfirmed``; ``mechanism_changes`` are the signals whose test passed. Without the
+runs' coded data (``discretised.parquet``) nothing can be tested and every flip is unconfirmed.
+
 Artifacts written to the comparison folder: ``diff.parquet``, ``diff.csv`` (one row per pair
-linked in at least one run or near alpha in either), ``diff.dot``, ``diff.svg`` and ``diff.html``.
+linked in at least one run or near alpha in either; ``change`` is added, removed, unconfirmed, kept
+or unlinked, ``flip`` the raw flip, with the change test's figures), ``mechanism.csv`` (one row per
+signal's mechanism test), ``diff.dot``, ``diff.svg`` and ``diff.html``.
 """
 
 from __future__ import annotations
@@ -30,12 +39,14 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Optional, Union
 
+import numpy as np
 import pandas as pd
 
+from .change import ChangeTest, NightData, mechanism_change, pair_change, with_qvalues
 from .config import Config
 from .errors import EXIT_CHANGED, EXIT_OK, ConfigError, DataError
 
-__all__ = ["Comparison", "run", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
+__all__ = ["Comparison", "run", "confirm", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
 
 Pair = tuple[str, str]
 PathLike = Union[str, "os.PathLike[str]"]
@@ -43,9 +54,13 @@ PathLike = Union[str, "os.PathLike[str]"]
 DIFF_COLUMNS = [
     "var_a", "var_b", "change", "linked_a", "linked_b", "orientation_a", "orientation_b",
     "orientation_changed", "pvalue_a", "pvalue_b", "cmi_bits_a", "cmi_bits_b", "given_a", "given_b",
-    "near_alpha_a", "near_alpha_b",
+    "near_alpha_a", "near_alpha_b", "flip", "change_pvalue", "change_qvalue", "change_method",
+    "change_given", "effect", "effect_a", "effect_b",
 ]
+MECHANISM_COLUMNS = ["signal", "neighbours", "change_pvalue", "change_qvalue", "change_method",
+                     "statistic", "dof", "supported"]
 _UNDIRECTED = "--"
+TIMELINE_SERIES, TIMELINE_ORDER = "series", "order"  # columns of a run's timeline.parquet
 
 
 @dataclass(frozen=True)
@@ -79,25 +94,75 @@ class Comparison:
     alpha: tuple[float, float] = (0.05, 0.05)
     near_alpha_factor: tuple[float, float] = (2.0, 2.0)
     warnings: tuple[str, ...] = field(default_factory=tuple)
+    unconfirmed: tuple[Pair, ...] = ()
+    mechanism: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=MECHANISM_COLUMNS))
+    change_alpha: float = 0.05
+    tested: bool = False
 
     @property
     def shd(self) -> int:
-        """Structural Hamming distance: added + removed + orientation changes among kept pairs."""
-        return len(self.added) + len(self.removed) + len(self.orientation_changes)
+        """Structural Hamming distance: every flip (supported or not) plus orientation changes."""
+        return len(self.added) + len(self.removed) + len(self.unconfirmed) + len(self.orientation_changes)
+
+    @property
+    def mechanism_changes(self) -> tuple[str, ...]:
+        """Signals whose distribution given their neighbours changed (supported by the test)."""
+        m = self.mechanism
+        return tuple(str(s) for s in m.loc[m["supported"].astype(bool), "signal"]) if len(m) else ()
 
     @property
     def changed(self) -> int:
-        """Number of links that appeared or disappeared (what ``--fail-on-change`` counts)."""
-        return len(self.added) + len(self.removed)
+        """Supported changes: added + removed links + mechanism changes (what ``--fail-on-change`` counts)."""
+        return len(self.added) + len(self.removed) + len(self.mechanism_changes)
+
+    def pair_figures(self, pair: Pair) -> dict[str, Any]:
+        """The change test's figures of one pair: p, q, effects before and after, and more."""
+        t = self.table
+        r = t[(t["var_a"] == pair[0]) & (t["var_b"] == pair[1])].iloc[0]
+        return {
+            "pair": [pair[0], pair[1]], "flip": str(r["flip"]),
+            "change_pvalue": _num(r["change_pvalue"]), "change_qvalue": _num(r["change_qvalue"]),
+            "change_method": str(r["change_method"]), "given": str(r["change_given"]),
+            "effect": str(r["effect"]), "effect_before": _num(r["effect_a"]),
+            "effect_after": _num(r["effect_b"]), "pvalue_before": _num(r["pvalue_a"]),
+            "pvalue_after": _num(r["pvalue_b"]), "cmi_bits_before": _num(r["cmi_bits_a"]),
+            "cmi_bits_after": _num(r["cmi_bits_b"]),
+        }
+
+    def summary(self) -> dict[str, Any]:
+        """The change summary a nightly report shows: previous run, supported changes, unconfirmed flips."""
+        return {
+            "previous_run": self.run_a,
+            "added": [self.pair_figures(p) for p in self.added],
+            "removed": [self.pair_figures(p) for p in self.removed],
+            "unconfirmed": [self.pair_figures(p) for p in self.unconfirmed],
+            "mechanism_changes": [
+                {"signal": str(r.signal), "neighbours": str(r.neighbours),
+                 "change_pvalue": _num(r.change_pvalue), "change_qvalue": _num(r.change_qvalue),
+                 "change_method": str(r.change_method)}
+                for r in self.mechanism.itertuples(index=False) if bool(r.supported)
+            ],
+        }
 
     def to_json(self) -> dict[str, Any]:
         """Plain-data summary (what ``--json`` prints)."""
         kept_rows = self.table[self.table["change"] == "kept"]
+        s = self.summary()
         return {
             "run_a": self.run_a,
             "run_b": self.run_b,
-            "added": [list(p) for p in self.added],
-            "removed": [list(p) for p in self.removed],
+            "tested": self.tested,
+            "change_alpha": self.change_alpha,
+            "added": s["added"],
+            "removed": s["removed"],
+            "unconfirmed": s["unconfirmed"],
+            "mechanism_changes": s["mechanism_changes"],
+            "mechanism_tests": [
+                {"signal": str(r.signal), "neighbours": str(r.neighbours),
+                 "change_pvalue": _num(r.change_pvalue), "change_qvalue": _num(r.change_qvalue),
+                 "supported": bool(r.supported)}
+                for r in self.mechanism.itertuples(index=False)
+            ],
             "kept": len(self.kept),
             "orientation_changes": list(self.orientation_changes),
             "shd": self.shd,
@@ -127,6 +192,7 @@ def run(
     *,
     category_mismatch: str = "warn",
     near_alpha_factor: Optional[float] = None,
+    change_alpha: float = 0.05,
 ) -> Comparison:
     """Compare two run folders (A before, B after).
 
@@ -138,6 +204,9 @@ def run(
         What to do when the two runs' ``levels.json`` differ: a warning, or `DataError`.
     near_alpha_factor : float, optional
         Overrides the factor each run's manifest records (``search.near_alpha_factor``).
+    change_alpha : float
+        False discovery rate of the change tests (``compare.alpha``): a flip or a mechanism change
+        is supported when its Benjamini-Hochberg q-value is at most this.
 
     Returns
     -------
@@ -155,7 +224,7 @@ def run(
             f"`compare.category_mismatch` = {category_mismatch!r} is not allowed; use warn or refuse."
         )
     a, b = _load(Path(run_a)), _load(Path(run_b))
-    warnings = _category_warnings(a, b)
+    warnings = list(_category_warnings(a, b))
     if warnings and category_mismatch == "refuse":
         raise DataError(warnings[0] + " (compare.category_mismatch = refuse; set it to warn to compare anyway)")
     alpha = (a["alpha"], b["alpha"])
@@ -166,6 +235,13 @@ def run(
         a["evidence"], b["evidence"], alpha=alpha, near_alpha_factor=factor,
         names=(a["name"], b["name"]),
     )
+    night_a, night_b = _load_night(Path(run_a), a["levels"]), _load_night(Path(run_b), b["levels"])
+    if night_a is None or night_b is None:
+        warnings.append(
+            "A run folder lacks `discretised.parquet`, so no change could be tested; every flip is "
+            "listed as unconfirmed"
+        )
+    cmp = confirm(cmp, night_a, night_b, alpha=change_alpha)
     if warnings:
         cmp = replace(cmp, warnings=tuple(warnings))
     return cmp
@@ -216,6 +292,9 @@ def diff_evidence(
             "cmi_bits_a": _float(ra.get("cmi_bits")), "cmi_bits_b": _float(rb.get("cmi_bits")),
             "given_a": str(ra.get("given", "") or ""), "given_b": str(rb.get("given", "") or ""),
             "near_alpha_a": near_a, "near_alpha_b": near_b,
+            "flip": change if change in ("added", "removed") else "",
+            "change_pvalue": math.nan, "change_qvalue": math.nan, "change_method": "",
+            "change_given": "", "effect": "", "effect_a": math.nan, "effect_b": math.nan,
         })
     table = pd.DataFrame(rows, columns=DIFF_COLUMNS)
     table = table.astype({
@@ -223,7 +302,9 @@ def diff_evidence(
         "linked_b": bool, "orientation_a": "string", "orientation_b": "string",
         "orientation_changed": bool, "pvalue_a": float, "pvalue_b": float, "cmi_bits_a": float,
         "cmi_bits_b": float, "given_a": "string", "given_b": "string", "near_alpha_a": bool,
-        "near_alpha_b": bool,
+        "near_alpha_b": bool, "flip": "string", "change_pvalue": float, "change_qvalue": float,
+        "change_method": "string", "change_given": "string", "effect": "string", "effect_a": float,
+        "effect_b": float,
     })
     pick = lambda kind: tuple(  # noqa: E731
         (str(r.var_a), str(r.var_b)) for r in table.itertuples(index=False) if r.change == kind
@@ -252,6 +333,91 @@ def diff_evidence(
         alpha=(float(alpha_ab[0]), float(alpha_ab[1])),
         near_alpha_factor=(float(factor_ab[0]), float(factor_ab[1])),
     )
+
+
+def confirm(
+    cmp: Comparison,
+    night_a: Optional[NightData],
+    night_b: Optional[NightData],
+    *,
+    alpha: float = 0.05,
+) -> Comparison:
+    """Test every flip, every pair near alpha and every signal's mechanism; keep supported flips.
+
+    Each pair is tested given each distinct deciding conditioning set of the two nights (the
+    ``given`` of its evidence rows); its p-value is the smallest, times the number of sets
+    (Bonferroni). Benjamini-Hochberg runs over all pair and mechanism tests together. A signal's
+    neighbours are the union of its linked pairs in either night. Without data (either night None)
+    nothing is tested and every flip is unconfirmed.
+    """
+    t = cmp.table.copy()
+    tests: list[ChangeTest] = []
+    rows_tested: list[int] = []
+    mech_rows: list[dict[str, Any]] = []
+    if night_a is not None and night_b is not None:
+        common = set(night_a.codes.columns) & set(night_b.codes.columns)
+        for i, r in enumerate(t.itertuples(index=False)):
+            x, y = str(r.var_a), str(r.var_b)
+            if not (r.flip or r.near_alpha_a or r.near_alpha_b) or not {x, y} <= common:
+                continue
+            sets = []
+            for text in (str(r.given_a), str(r.given_b)):
+                g = tuple(sorted(v for v in text.split(";") if v and v in common))
+                if g not in sets:
+                    sets.append(g)
+            found = [_safe_test(pair_change, night_a, night_b, x, y, g) for g in sets]
+            best = min(found, key=lambda c: c.pvalue)
+            tests.append(replace(best, pvalue=min(1.0, best.pvalue * len(found))))
+            rows_tested.append(i)
+        linked = t[t["linked_a"] | t["linked_b"]]
+        for sig in sorted(common):
+            nbrs = sorted(
+                {str(v) for v in linked.loc[linked["var_a"] == sig, "var_b"]}
+                | {str(v) for v in linked.loc[linked["var_b"] == sig, "var_a"]}
+            )
+            tests.append(_safe_test(mechanism_change, night_a, night_b, sig, [n for n in nbrs if n in common]))
+    tests = with_qvalues(tests)
+    for i, c in zip(rows_tested, tests):
+        t.loc[t.index[i], ["change_pvalue", "change_qvalue", "effect_a", "effect_b"]] = [
+            c.pvalue, c.qvalue, c.effect_a, c.effect_b]
+        t.loc[t.index[i], ["change_method", "change_given", "effect"]] = [c.method, ";".join(c.given), c.effect]
+    for c in tests[len(rows_tested):]:
+        mech_rows.append({
+            "signal": c.var_a, "neighbours": ";".join(c.given), "change_pvalue": c.pvalue,
+            "change_qvalue": c.qvalue, "change_method": c.method, "statistic": c.statistic,
+            "dof": c.dof, "supported": bool(c.qvalue <= alpha),
+        })
+    supported = t["change_qvalue"].fillna(1.0) <= alpha
+    t.loc[(t["flip"] != "") & ~supported, "change"] = "unconfirmed"
+    pick = lambda kind: tuple(  # noqa: E731
+        (str(r.var_a), str(r.var_b)) for r in t.itertuples(index=False) if r.change == kind
+    )
+    near = []
+    for n in cmp.near_alpha:
+        hit = t[(t["var_a"] == n["pair"][0]) & (t["var_b"] == n["pair"][1])].iloc[0]
+        near.append({**n, "change_pvalue": _num(hit["change_pvalue"]),
+                     "change_qvalue": _num(hit["change_qvalue"]),
+                     "association_changed": bool(_float(hit["change_qvalue"]) <= alpha)})
+    mech = pd.DataFrame(mech_rows, columns=MECHANISM_COLUMNS).astype(
+        {"signal": "string", "neighbours": "string", "change_pvalue": float, "change_qvalue": float,
+         "change_method": "string", "statistic": float, "dof": "int64", "supported": bool})
+    return replace(
+        cmp, table=t, added=pick("added"), removed=pick("removed"), unconfirmed=pick("unconfirmed"),
+        near_alpha=tuple(near), mechanism=mech, change_alpha=float(alpha),
+        tested=night_a is not None and night_b is not None,
+    )
+
+
+def _safe_test(fn: Any, a: NightData, b: NightData, *args: Any) -> ChangeTest:
+    """Run one change test; a numerically impossible one (no usable rows) is a p-value of 1."""
+    try:
+        return fn(a, b, *args)
+    except (np.linalg.LinAlgError, ValueError) as err:
+        x = str(args[0])
+        y = str(args[1]) if fn is pair_change else ""
+        given = tuple(args[-1])
+        return ChangeTest("pair" if fn is pair_change else "mechanism", x, y, given,
+                          f"not testable ({type(err).__name__})", math.nan, 0, 1.0, 0, 0)
 
 
 def resolve_run(
@@ -307,7 +473,9 @@ def compare_main(
     folder_b = resolve_run(run_b, cfg, config_path)
     mismatch = cfg.compare.category_mismatch if cfg is not None else "warn"
     factor = cfg.search.near_alpha_factor if cfg is not None else None
-    cmp = run(folder_a, folder_b, category_mismatch=mismatch, near_alpha_factor=factor)
+    change_alpha = cfg.compare.alpha if cfg is not None else 0.05
+    cmp = run(folder_a, folder_b, category_mismatch=mismatch, near_alpha_factor=factor,
+              change_alpha=change_alpha)
     if out_dir is None:
         base = Path.cwd()
         if cfg is not None:
@@ -327,12 +495,20 @@ def compare_main(
         print(f"Written: {', '.join(str(p) for p in written)}")
     if fail_on_change is not None and cmp.changed > fail_on_change:
         print(
-            f"edgeproof compare: {cmp.changed} links changed, more than --fail-on-change "
+            f"edgeproof compare: {cmp.changed} supported changes, more than --fail-on-change "
             f"{fail_on_change}.",
             file=sys.stderr,
         )
         return EXIT_CHANGED
     return EXIT_OK
+
+
+def compare_main_quiet(run_a: Path, run_b: Path, cfg: Config, out: Path) -> dict[str, Any]:
+    """Compare two runs with the configuration's settings, write the artifacts into `out`, return the summary."""
+    cmp = run(run_a, run_b, category_mismatch="warn", near_alpha_factor=cfg.search.near_alpha_factor,
+              change_alpha=cfg.compare.alpha)
+    _write(cmp, out)
+    return {**cmp.summary(), "warnings": list(cmp.warnings)}
 
 
 # ----------------------------------------------------------------------------- loading
@@ -365,6 +541,39 @@ def _load(folder: Path) -> dict[str, Any]:
         "alpha": alpha if math.isfinite(alpha) else 0.05,
         "factor": factor if math.isfinite(factor) else 2.0,
     }
+
+
+def _load_night(folder: Path, levels: dict[str, Any]) -> Optional[NightData]:
+    """The coded data of a run (``discretised.parquet``) and, when the run has it, its time table.
+
+    ``timeline.parquet`` (rows aligned with the codes) may hold ``series`` (series id), ``order``
+    (time order within the series) and the raw values of numeric signals under their own names.
+    Without it the night is categorical with independent rows. None when the codes are missing.
+    """
+    path = folder / "discretised.parquet"
+    if not path.is_file():
+        return None
+    try:
+        codes = pd.read_parquet(path)
+    except Exception as err:  # noqa: BLE001 - pyarrow raises several types
+        raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    kinds = {str(k): str(v) for k, v in (levels.get("kinds") or {}).items()}
+    timeline = folder / "timeline.parquet"
+    if not timeline.is_file():
+        return NightData(codes, kinds)
+    try:
+        tl = pd.read_parquet(timeline)
+    except Exception as err:  # noqa: BLE001
+        raise DataError(f"`{timeline}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    if len(tl) != len(codes):
+        raise DataError(
+            f"`{timeline}` has {len(tl)} rows but `{path}` has {len(codes)}; re-run that snapshot."
+        )
+    numeric = [c for c in codes.columns if kinds.get(c) == "numeric" and c in tl.columns]
+    series = tl[TIMELINE_SERIES].to_numpy() if TIMELINE_SERIES in tl.columns else None
+    order = tl[TIMELINE_ORDER].to_numpy(dtype=np.int64) if TIMELINE_ORDER in tl.columns else None
+    values = tl[numeric].astype(float) if numeric else None
+    return NightData(codes, kinds, values, series, order)
 
 
 def _read_json(path: Path) -> Any:
@@ -470,6 +679,9 @@ def _write(cmp: Comparison, out: Path) -> list[Path]:
     _atomic(parquet, lambda p: cmp.table.to_parquet(p, index=False))
     csv = out / "diff.csv"
     _atomic(csv, lambda p: cmp.table.to_csv(p, index=False))
+    mech = out / "mechanism.csv"
+    _atomic(mech, lambda p: cmp.mechanism.to_csv(p, index=False))
+    written.append(mech)
     dot_source = _dot(cmp)
     dot = out / "diff.dot"
     _atomic(dot, lambda p: Path(p).write_text(dot_source, encoding="utf-8"))
@@ -516,6 +728,9 @@ def _dot(cmp: Comparison) -> str:
             head, tail, direction = _direction((a, b), str(r.orientation_a), names)
             g.edge(tail, head, label="- removed", style="dashed", penwidth="1.5", color="#9c1f1f",
                    dir=direction)
+        elif r.change == "unconfirmed":
+            g.edge(b, a, label=f"? {r.flip}, not supported", style="dotted", penwidth="1",
+                   color="#777777", dir="none")
         elif r.change == "kept":
             head, tail, direction = _direction((a, b), str(r.orientation_b), names)
             label = graphviz.escape(f"kept, turned (was {r.orientation_a})") if r.orientation_changed else ""
@@ -524,10 +739,12 @@ def _dot(cmp: Comparison) -> str:
     with g.subgraph(name="cluster_legend") as key:
         key.attr(label="Key", fontsize="10", style="rounded")
         key.node("_k1", "solid line: kept", shape="plaintext")
-        key.node("_k2", "thick line, '+ added': new in after", shape="plaintext")
-        key.node("_k3", "dashed line, '- removed': gone in after", shape="plaintext")
+        key.node("_k2", "thick line, '+ added': new in after (supported change)", shape="plaintext")
+        key.node("_k3", "dashed line, '- removed': gone in after (supported change)", shape="plaintext")
         key.edge("_k1", "_k2", style="invis")
+        key.node("_k4", "dotted line, '?': a flip the change test does not support", shape="plaintext")
         key.edge("_k2", "_k3", style="invis")
+        key.edge("_k3", "_k4", style="invis")
     return g.source
 
 
@@ -560,17 +777,26 @@ def _render_svg(source: str) -> Optional[str]:
         return None
 
 
+def _g(v: Optional[float]) -> str:
+    """A number in 3 significant digits, '-' for none."""
+    return "-" if v is None else f"{v:.3g}"
+
+
 def _text_summary(cmp: Comparison) -> str:
     """The human summary printed without --json."""
     lines = [
         f"Compare {cmp.run_a} (before) with {cmp.run_b} (after): {len(cmp.added)} added, "
-        f"{len(cmp.removed)} removed, {len(cmp.kept)} kept, {len(cmp.orientation_changes)} turned; "
-        f"structural Hamming distance {cmp.shd}."
+        f"{len(cmp.removed)} removed, {len(cmp.mechanism_changes)} mechanism changes (supported by "
+        f"the change test, q <= {cmp.change_alpha:g}); {len(cmp.unconfirmed)} unconfirmed flips; "
+        f"{len(cmp.kept)} kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}."
     ]
-    for p in cmp.added:
-        lines.append(f"  + {p[0]} -- {p[1]}")
-    for p in cmp.removed:
-        lines.append(f"  - {p[0]} -- {p[1]}")
+    for sign, pairs in (("+", cmp.added), ("-", cmp.removed), ("?", cmp.unconfirmed)):
+        for p in pairs:
+            f = cmp.pair_figures(p)
+            lines.append(f"  {sign} {p[0]} -- {p[1]}  change p = {_g(f['change_pvalue'])}, "
+                         f"q = {_g(f['change_qvalue'])}" + (f" ({f['flip']})" if sign == "?" else ""))
+    for sig in cmp.mechanism_changes:
+        lines.append(f"  ~ {sig}: distribution given its neighbours changed")
     for o in cmp.orientation_changes:
         lines.append(f"  ~ {o['before']}  now  {o['after']}")
     if cmp.near_alpha:
@@ -607,23 +833,43 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         f"<title>{e(f'Compare {cmp.run_a} with {cmp.run_b}')}</title><style>{_CSS}</style></head><body>",
         f"<h1>{e(cmp.run_a)} (before) &rarr; {e(cmp.run_b)} (after)</h1>",
-        f"<p>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.kept)} kept, "
-        f"{len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p>",
+        f"<p>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.mechanism_changes)} "
+        f"mechanism changes (supported); {len(cmp.unconfirmed)} unconfirmed flips; {len(cmp.kept)} "
+        f"kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p>",
     ]
     for w in cmp.warnings:
         parts.append(f"<p class='warn'>Warning: {e(w)}.</p>")
     if svg is not None:
         start = svg.find("<svg")
         parts.append(f"<div class='figure'>{svg[start:] if start >= 0 else ''}</div>")
-    changed = t[t["change"].isin(["added", "removed"])]
-    parts.append("<h2>Links added (+) and removed (&minus;)</h2>")
+    heads = ["", "pair", "change p", "change q", "effect before", "effect after", "measure",
+             "tested given", "p-value before", "p-value after"]
+
+    def flip_rows(kinds: list[str]) -> list[list[str]]:
+        rows = t[t["change"].isin(kinds)]
+        return [[td("+" if r.flip == "added" else "\u2212"), td(f"{r.var_a} -- {r.var_b}"),
+                 tn(r.change_pvalue), tn(r.change_qvalue), tn(r.effect_a), tn(r.effect_b),
+                 td(r.effect), td(r.change_given), tn(r.pvalue_a), tn(r.pvalue_b)]
+                for r in rows.itertuples(index=False)]
+
+    parts.append(
+        f"<p>A flip is a <em>supported change</em> when the test that the pair's conditional "
+        f"association differs between the two nights has a Benjamini-Hochberg q-value of at most "
+        f"{e(f'{cmp.change_alpha:g}')}" + ("" if cmp.tested else " (no coded data: nothing was tested)")
+        + ".</p>")
+    parts.append("<h2>Links added (+) and removed (&minus;): supported changes</h2>")
+    parts.append(table(heads, flip_rows(["added", "removed"])))
+    parts.append("<h2>Signals whose mechanism changed</h2><p>The distribution of the signal given its "
+                 "neighbours (in either night) differs between the nights.</p>")
+    m = cmp.mechanism
     parts.append(table(
-        ["", "pair", "p-value before", "p-value after", "cmi bits before", "cmi bits after",
-         "given before", "given after"],
-        [[td("+" if r.change == "added" else "\u2212"), td(f"{r.var_a} -- {r.var_b}"),
-          tn(r.pvalue_a), tn(r.pvalue_b), tn(r.cmi_bits_a), tn(r.cmi_bits_b), td(r.given_a),
-          td(r.given_b)] for r in changed.itertuples(index=False)],
+        ["signal", "neighbours", "change p", "change q", "test"],
+        [[td(r.signal), td(r.neighbours), tn(r.change_pvalue), tn(r.change_qvalue), td(r.change_method)]
+         for r in m[m["supported"].astype(bool)].itertuples(index=False)] if len(m) else [],
     ))
+    parts.append("<h2>Unconfirmed flips</h2><p>Linked on one night only, but the change test does not "
+                 "support a change: most likely chance near alpha.</p>")
+    parts.append(table(heads, flip_rows(["unconfirmed"])))
     parts.append("<h2>Orientation changes among kept links</h2>")
     parts.append(table(["before", "after"], [[td(o["before"]), td(o["after"])]
                                              for o in cmp.orientation_changes]))
@@ -641,10 +887,12 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
         f"{e(f'{cmp.alpha[1]:g}')} (after), on either side.</p>"
     )
     parts.append(table(
-        ["pair", "linked before", "linked after", "p-value before", "p-value after", "near in"],
+        ["pair", "linked before", "linked after", "p-value before", "p-value after", "near in",
+         "change p", "change q"],
         [[td(f"{n['pair'][0]} -- {n['pair'][1]}"), td("yes" if n["linked_a"] else "no"),
           td("yes" if n["linked_b"] else "no"), tn(n["pvalue_a"]), tn(n["pvalue_b"]),
-          td(", ".join("before" if k == "a" else "after" for k in n["near_in"]))]
+          td(", ".join("before" if k == "a" else "after" for k in n["near_in"])),
+          tn(n.get("change_pvalue")), tn(n.get("change_qvalue"))]
          for n in cmp.near_alpha],
     ))
     parts.append("</body></html>\n")

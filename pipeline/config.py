@@ -200,6 +200,7 @@ class CompareSettings(_Section):
     """How two runs are compared."""
 
     category_mismatch: Literal["warn", "refuse"] = "warn"
+    alpha: float = Field(default=0.05, gt=0.0, lt=1.0)  # false discovery rate of the change tests
 
 
 class Config(_Section):

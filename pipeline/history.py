@@ -81,18 +81,42 @@ def run(cfg: Config, config_path: Optional[Path] = None, last: Optional[int] = N
         raise DataError(
             f"No successful run under `{root}` yet; run `edgeproof nightly --config FILE` first."
         )
-    evidence = []
+    evidence, tested = [], {}
     for name in names:
+        tested[name] = _tested_flips(root / name / "changes.json")
         path = root / name / "evidence.parquet"
         try:
             evidence.append((name, pd.read_parquet(path, columns=["var_a", "var_b", "linked", "pvalue"])))
         except Exception as err:  # noqa: BLE001 - pyarrow raises several types
             raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
-    return edge_history(evidence)
+    return edge_history(evidence, {k: v for k, v in tested.items() if v is not None})
 
 
-def edge_history(runs: Sequence[tuple[str, pd.DataFrame]]) -> History:
+def _tested_flips(path: Path) -> Optional[dict[tuple[str, str], bool]]:
+    """Pair -> supported? for the flips of a night's ``changes.json`` (written by nightly); None if absent."""
+    import json
+
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    out = {}
+    for key, supported in (("added", True), ("removed", True), ("unconfirmed", False)):
+        for item in data.get(key, []) or []:
+            a, b = (str(v) for v in item["pair"])
+            out[(a, b) if a <= b else (b, a)] = supported
+    return out
+
+
+def edge_history(
+    runs: Sequence[tuple[str, pd.DataFrame]],
+    tested: Optional[dict[str, dict[tuple[str, str], bool]]] = None,
+) -> History:
     """History of the links in `runs`, a sequence of (night name, evidence table) in time order.
+
+    `tested` maps a night to its change test's verdict per flipped pair (True: supported). A flip
+    the test did not support is written ``?+night`` / ``?-night`` in ``changes``; a flip of a night
+    without a change test is written plainly.
 
     Examples
     --------
@@ -129,7 +153,8 @@ def edge_history(runs: Sequence[tuple[str, pd.DataFrame]]) -> History:
         for i in range(1, len(marks)):
             before, now = marks[i - 1], marks[i]
             if before != now and _UNTESTED not in (before, now):
-                changes.append(("+" if now == _LINKED else "-") + nights[i])
+                doubt = "?" if (tested or {}).get(nights[i], {}).get(pair) is False else ""
+                changes.append(doubt + ("+" if now == _LINKED else "-") + nights[i])
         row = {
             "var_a": pair[0], "var_b": pair[1], "nights_present": len(present),
             "nights": len(nights), "first_seen": present[0], "last_seen": present[-1],
@@ -206,7 +231,7 @@ body{font-family:Helvetica,Arial,sans-serif;margin:1.5em;color:#111}
 table{border-collapse:collapse;margin:.5em 0 1.5em}th,td{border:1px solid #888;padding:.2em .45em}
 th{background:#ddd;font-weight:600}td.cell{text-align:center;min-width:4.5em;line-height:1.15}
 td.linked{background:#d0d0d0}td.unlinked{background:#fff}td.untested{background:#f3f3f3;color:#555}
-td.flip{border:3px solid #000}.sym{font-size:1.25em}.p{font-size:.78em;display:block}
+td.flip{border:3px solid #000}td.doubt{border:2px dotted #000}.sym{font-size:1.25em}.p{font-size:.78em;display:block}
 td.num{text-align:right}
 """
 
@@ -225,11 +250,12 @@ def _html(hist: History) -> str:
             sym, cls = symbols[mark]
             prev = r["pattern"][i - 1] if i else mark
             flip = prev != mark and _UNTESTED not in (prev, mark)
-            sign = ("+" if mark == _LINKED else "\u2212") if flip else ""
+            doubtful = flip and f"?{'+' if mark == _LINKED else '-'}{night}" in r["changes"].split("; ")
+            sign = ("?" if doubtful else "") + ("+" if mark == _LINKED else "\u2212") if flip else ""
             p = _fmt(r[f"pvalue_{night}"])
             title = f"{r['var_a']} -- {r['var_b']} on {night}: {cls}" + (f", p = {p}" if p else "")
             cells.append(
-                f"<td class='cell {cls}{' flip' if flip else ''}' title='{e(title)}'>"
+                f"<td class='cell {cls}{(' doubt' if doubtful else ' flip') if flip else ''}' title='{e(title)}'>"
                 f"<span class='sym'>{e(sign)}{sym}</span><span class='p'>{e(p)}</span></td>"
             )
         rows.append(
@@ -243,7 +269,9 @@ def _html(hist: History) -> str:
         f"<title>{e(title)}</title><style>{_CSS}</style></head><body><h1>{e(title)}</h1>",
         "<p>Key: \u25cf linked (shaded) &nbsp; \u25cb not linked &nbsp; \u2013 not tested "
         "(a column was not kept). The small number is the p-value the night's verdict rests on. "
-        "A thick border with + or \u2212 marks the night the link appeared or disappeared.</p>",
+        "A thick border with + or \u2212 marks the night the link appeared or disappeared and the change "
+        "test supports it; a dotted border with ? marks a flip the change test does not support "
+        "(most likely chance).</p>",
         f"<table><thead><tr><th>edge</th>{head}<th>nights</th><th>first seen</th><th>last seen</th>"
         f"<th>changes</th></tr></thead><tbody>{''.join(rows)}</tbody></table>",
         "" if rows else "<p>No links in these runs.</p>",

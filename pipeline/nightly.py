@@ -332,6 +332,7 @@ def _process(
         outcomes.append(outcome)
         _write_state(root, state)
         if outcome.status == "ok":
+            _changes_since_previous(cfg, root, name, emit)
             deleted.extend(_prune(root, cfg.output.keep_runs, snapshots))
             _write_state(root, state)
             _update_pointers(root)
@@ -383,6 +384,38 @@ def _run_one(
     }
     emit(name, "ok", seconds, out=str(out_dir))
     return SnapshotOutcome(name, str(entry.path), "ok", EXIT_OK, seconds, attempts)
+
+
+def _changes_since_previous(cfg: Config, root: Path, name: str, emit: Callable[..., None]) -> None:
+    """Compare the new run with the successful run before it and hand the summary to the report.
+
+    Writes the comparison folder ``compare-<previous>-<name>`` under the root and the summary
+    (`Comparison.summary` plus links to the comparison and history pages) as ``changes.json`` in
+    the run folder. A failure here is logged and never fails the night's run.
+    """
+    from .compare import compare_main_quiet
+
+    earlier = [n for n in successful_runs(root) if n < name]
+    if not earlier:
+        return
+    previous = earlier[-1]
+    try:
+        changes = compare_main_quiet(root / previous, root / name, cfg, root / f"compare-{previous}-{name}")
+        changes["diff_href"] = f"../compare-{previous}-{name}/diff.html"
+        changes["history_href"] = "../history.html"
+        report_changes(root / name, changes)
+    except Exception as err:  # noqa: BLE001 - the night's run has succeeded already
+        emit(name, "changes-not-computed", 0.0, f"{type(err).__name__}: {_one_line(str(err))}")
+
+
+def report_changes(run_dir: Path, changes: dict[str, Any]) -> None:
+    """The hook that shows "what changed since the previous night" in a run's report.
+
+    Today it writes ``changes.json`` (keys ``previous_run``, ``added``, ``removed``,
+    ``unconfirmed``, ``mechanism_changes``, ``diff_href``, ``history_href``) into the run folder;
+    the report stage's ``render_report_html(run_dir, changes)`` is to be called here once it exists.
+    """
+    _write_text_atomic(run_dir / "changes.json", json.dumps(changes, indent=2, allow_nan=False) + "\n")
 
 
 def _record_failure(

@@ -34,6 +34,9 @@ __all__ = [
     "run_lock",
     "safe_name",
     "StageCache",
+    "CacheDamaged",
+    "CACHE_FOLDER",
+    "checksum",
     "publish_run",
 ]
 
@@ -98,11 +101,16 @@ def stable_hash(obj: Any) -> str:
     return hashlib.blake2b(text.encode("utf-8"), digest_size=12).hexdigest()
 
 
-def fingerprint_paths(paths: list[Path]) -> str:
-    """Content hash of input files (names relative to their common folder, then bytes)."""
+def fingerprint_paths(paths: list[Path], root: Path | None = None) -> str:
+    """Content hash of input files: each file's path relative to `root` (so partition folder names
+    such as ``region=eu/`` count), then its bytes."""
     h = hashlib.blake2b(digest_size=16)
     for p in sorted(paths):
-        h.update(p.name.encode("utf-8") + b"\0")
+        try:
+            label = p.relative_to(root).as_posix() if root is not None else p.name
+        except ValueError:
+            label = p.name
+        h.update(label.encode("utf-8") + b"\0")
         with open(p, "rb") as fh:
             for block in iter(lambda: fh.read(1 << 22), b""):
                 h.update(block)
@@ -150,68 +158,213 @@ def run_lock(folder: str | os.PathLike[str], wait_seconds: float = 0.0) -> Itera
         lock.release()
 
 
+CACHE_FOLDER = ".edgeproof-cache"
+_CACHE_MARKER = "EDGEPROOF-STAGE-CACHE"
+_ENTRY_FILE = "entry.json"
+_ENTRY_KIND = "edgeproof stage cache entry"
+_WORK_SUFFIX = ".work"
+
+
+class CacheDamaged(Exception):
+    """A cache entry that is missing files or whose bytes do not match the checksums written with it."""
+
+
+def checksum(data: bytes) -> str:
+    """The checksum a cache entry keeps for each of its files."""
+    return hashlib.blake2b(data, digest_size=16).hexdigest()
+
+
 class StageCache:
     """Artifacts of a stage keyed by its inputs, its slice of the configuration and the version.
 
-    A cached stage is a folder ``<root>/<stage>-<key>/`` holding its files and a ``done`` marker
-    written last; a folder without the marker is an interrupted attempt and is ignored.
+    The cache is one folder, ``<parent>/.edgeproof-cache/``, carrying a marker file, so it can never
+    be mistaken for a user's folder. A finished entry is ``<stage>-<key>/`` holding its files and
+    ``entry.json`` (what it is, and the size and checksum of every file). An entry is written in the
+    work folder ``<stage>-<key>.work/`` under the entry's lock and renamed into place in one step, so
+    readers only ever see complete entries and two runs sharing the cache never touch each other's
+    unfinished work; an interrupted attempt leaves the work folder for the next attempt (a stage that
+    resumes keeps its parts there). Pruning removes only folders holding an entry file this class
+    wrote, never anything matched by name alone.
     """
 
     def __init__(self, root: str | os.PathLike[str]) -> None:
         self.root = Path(root)
 
-    def folder(self, stage: str, key: str) -> Path:
-        """Where a stage's artifacts for this key live."""
+    @classmethod
+    def beside(cls, folder: str | os.PathLike[str]) -> "StageCache":
+        """The cache shared by every run folder written under `folder`."""
+        return cls(Path(folder) / CACHE_FOLDER)
+
+    def open(self) -> "StageCache":
+        """Create the cache folder (with its marker), or check that an existing one is edgeproof's."""
+        marker = self.root / _CACHE_MARKER
+        if not marker.is_file():
+            if self.root.exists() and any(p.name != ".locks" for p in self.root.iterdir()):
+                raise ConfigError(
+                    f"`{self.root}` exists but is not an edgeproof stage cache (no {_CACHE_MARKER} file); "
+                    "move it away or write the run elsewhere."
+                )
+            self.root.mkdir(parents=True, exist_ok=True)
+            atomic_write_text(marker, "The stage cache of edgeproof runs written beside this folder. "
+                              "Safe to delete as a whole; runs recompute what is missing.\n")
+        return self
+
+    def entry(self, stage: str, key: str) -> Path:
+        """Where a finished entry lives."""
         return self.root / f"{stage}-{key}"
 
-    def hit(self, stage: str, key: str) -> Path | None:
-        """The folder of a finished cached stage, or None."""
-        f = self.folder(stage, key)
-        return f if (f / "done").is_file() else None
+    def lookup(self, stage: str, key: str) -> dict[str, Any] | None:
+        """The entry file of a finished entry, or None; raises `CacheDamaged` for a damaged one.
 
-    def begin(self, stage: str, key: str) -> Path:
-        """A fresh folder to write a stage's artifacts into (an interrupted attempt is cleared)."""
-        f = self.folder(stage, key)
-        if f.exists() and not (f / "done").is_file():
-            shutil.rmtree(f, ignore_errors=True)
-        f.mkdir(parents=True, exist_ok=True)
-        return f
+        Cheap: it checks that every listed file is there with its size; `read` checks the bytes.
+        """
+        folder = self.entry(stage, key)
+        if not folder.is_dir():
+            return None
+        try:
+            doc = json.loads((folder / _ENTRY_FILE).read_text(encoding="utf-8"))
+        except (OSError, ValueError) as err:
+            raise CacheDamaged(f"{_ENTRY_FILE} unreadable ({type(err).__name__})") from err
+        if not isinstance(doc, dict) or doc.get("kind") != _ENTRY_KIND or doc.get("stage") != stage or doc.get("key") != key:
+            raise CacheDamaged(f"{_ENTRY_FILE} does not describe this entry")
+        for name, info in doc["files"].items():
+            try:
+                size = (folder / name).stat().st_size
+            except OSError as err:
+                raise CacheDamaged(f"{name} is missing") from err
+            if size != info["size"]:
+                raise CacheDamaged(f"{name} has {size} bytes, {info['size']} were written")
+        with contextlib.suppress(OSError):  # pruning keeps the most recently used
+            os.utime(folder / _ENTRY_FILE)
+        return doc
 
-    def finish(self, stage: str, key: str) -> None:
-        """Mark a stage's artifacts complete."""
-        atomic_write_text(self.folder(stage, key) / "done", key + "\n")
+    def read(self, stage: str, key: str, name: str) -> bytes:
+        """The bytes of one file of a finished entry, checked against its checksum."""
+        folder = self.entry(stage, key)
+        try:
+            doc = json.loads((folder / _ENTRY_FILE).read_text(encoding="utf-8"))
+            data = (folder / name).read_bytes()
+        except (OSError, ValueError) as err:
+            raise CacheDamaged(f"{name} unreadable ({type(err).__name__})") from err
+        info = doc.get("files", {}).get(name)
+        if info is None:
+            raise CacheDamaged(f"{name} is not listed in {_ENTRY_FILE}")
+        if len(data) != info["size"] or checksum(data) != info["checksum"]:
+            raise CacheDamaged(f"{name} does not match its checksum")
+        return data
 
-    def touch(self, stage: str, key: str) -> None:
-        """Record that a cached stage was used (pruning keeps the most recently used)."""
-        with contextlib.suppress(OSError):
-            os.utime(self.folder(stage, key) / "done")
+    def listed(self, stage: str, key: str, name: str) -> dict[str, Any]:
+        """Size and checksum of one file of a finished entry, as written."""
+        doc = json.loads((self.entry(stage, key) / _ENTRY_FILE).read_text(encoding="utf-8"))
+        return dict(doc["files"][name])
+
+    @contextlib.contextmanager
+    def writing(self, stage: str, key: str, *, resume: bool = False) -> Iterator[Path | None]:
+        """Hold the entry's lock and give its work folder, or None when another run finished the entry
+        while this one waited for the lock. Without `resume` the work folder starts empty."""
+        from filelock import FileLock
+
+        locks = self.root / ".locks"
+        locks.mkdir(parents=True, exist_ok=True)
+        with FileLock(str(locks / f"{stage}-{key}.lock")):
+            try:
+                finished = self.lookup(stage, key) is not None
+            except CacheDamaged:
+                finished = False  # the caller replaces it
+            if finished:
+                yield None
+                return
+            work = self.root / f"{stage}-{key}{_WORK_SUFFIX}"
+            if work.exists() and not resume:
+                shutil.rmtree(work)
+            work.mkdir(parents=True, exist_ok=True)
+            yield work
+
+    def commit(self, stage: str, key: str, work: Path, files: dict[str, dict[str, Any]]) -> Path:
+        """Write the entry file (sizes and checksums of `files`) and rename the work folder into place.
+
+        Call inside `writing`; files in the work folder that are not listed are removed first.
+        """
+        listed = set(files)
+        for p in work.iterdir():
+            if p.name not in listed:
+                shutil.rmtree(p) if p.is_dir() else p.unlink()
+        atomic_write_json(work / _ENTRY_FILE, {"kind": _ENTRY_KIND, "stage": stage, "key": key, "files": files})
+        final = self.entry(stage, key)
+        if final.exists():
+            self._remove(final)  # a damaged entry (the lock is held: nobody else replaces it)
+        os.replace(work, final)
+        _fsync_dir(self.root)
+        return final
+
+    def discard(self, stage: str, key: str) -> None:
+        """Remove a damaged entry (under its lock, so a run writing it is not disturbed)."""
+        from filelock import FileLock
+
+        locks = self.root / ".locks"
+        locks.mkdir(parents=True, exist_ok=True)
+        with FileLock(str(locks / f"{stage}-{key}.lock")):
+            final = self.entry(stage, key)
+            if final.exists():
+                self._remove(final)
+
+    def _remove(self, folder: Path) -> None:
+        """Move a folder out of the way in one step, then delete it (readers never see half of it)."""
+        trash = self.root / f".trash-{folder.name}-{os.getpid()}-{time.monotonic_ns()}"
+        os.replace(folder, trash)
+        shutil.rmtree(trash, ignore_errors=True)
+
+    def _entries(self) -> Iterator[tuple[str, float, Path]]:
+        """(stage, last use, folder) of every finished entry this cache wrote."""
+        for f in self.root.iterdir():
+            doc_path = f / _ENTRY_FILE
+            if not f.is_dir() or f.name.startswith(".") or not doc_path.is_file():
+                continue
+            try:
+                doc = json.loads(doc_path.read_text(encoding="utf-8"))
+                stamp = doc_path.stat().st_mtime
+            except (OSError, ValueError):
+                continue
+            if isinstance(doc, dict) and doc.get("kind") == _ENTRY_KIND and f.name == f"{doc.get('stage')}-{doc.get('key')}":
+                yield str(doc["stage"]), stamp, f
+
+    def _prune_work(self, age: float = 86400.0) -> int:
+        """Remove work folders left by attempts that died over `age` seconds ago (their lock is free)."""
+        from filelock import FileLock, Timeout
+
+        removed = 0
+        for f in self.root.glob(f"*{_WORK_SUFFIX}"):
+            name = f.name[: -len(_WORK_SUFFIX)]
+            lock_path = self.root / ".locks" / f"{name}.lock"
+            try:
+                if not lock_path.is_file() or f.stat().st_mtime > time.time() - age:
+                    continue
+                with FileLock(str(lock_path), timeout=0):
+                    shutil.rmtree(f)
+                    removed += 1
+            except (OSError, Timeout):
+                continue
+        return removed
 
     def prune(self, keep: int, protect: set[str] | frozenset[str] = frozenset()) -> int:
         """Delete all but the `keep` most recently used entries of each stage; returns how many went.
 
-        Entries named in `protect` (``<stage>-<key>``) and unfinished entries younger than a day
-        (another run may be writing them) are kept.
+        Only entries this cache wrote count (their entry file says so); entries named in `protect`
+        (``<stage>-<key>``) are kept, and so is every work folder (a run may be writing it).
         """
-        if not self.root.is_dir():
+        if not (self.root / _CACHE_MARKER).is_file():
             return 0
         by_stage: dict[str, list[tuple[float, Path]]] = {}
-        for f in self.root.iterdir():
-            if not f.is_dir() or "-" not in f.name or f.name in protect:
-                continue
-            done = f / "done"
-            try:
-                stamp = done.stat().st_mtime if done.is_file() else f.stat().st_mtime
-            except OSError:
-                continue
-            if not done.is_file() and stamp > time.time() - 86400:
-                continue
-            by_stage.setdefault(f.name.rsplit("-", 1)[0], []).append((stamp, f))
-        removed = 0
+        for stage, stamp, f in self._entries():
+            if f.name not in protect:
+                by_stage.setdefault(stage, []).append((stamp, f))
+        removed = self._prune_work()
         for entries in by_stage.values():
             entries.sort(reverse=True)
             for _, f in entries[keep:]:
-                shutil.rmtree(f, ignore_errors=True)
-                removed += 1
+                with contextlib.suppress(OSError):
+                    self._remove(f)
+                    removed += 1
         return removed
 
 

@@ -49,7 +49,9 @@ def test_demo_change_is_reported_and_nothing_spurious(demo_runs):
     cmp = compare.run(root / before, root / after)
     assert set(cmp.added) == truth_after - truth_before
     assert set(cmp.removed) == truth_before - truth_after
-    assert cmp.changed == 1
+    # the planted link is the one supported link change; the demo generator redraws each node's
+    # region every night, a real shift of region's distribution that the mechanism test may report
+    assert len(cmp.added) + len(cmp.removed) == 1
 
 
 def test_run_against_itself_reports_no_change(demo_runs, capsys):
@@ -94,7 +96,7 @@ def test_json_output_artifacts_and_fail_on_change(demo_runs, tmp_path, capsys):
         assert "+ added" in svg
     page = (out / "diff.html").read_text()
     assert "<script" not in page and "src=" not in page and "<svg" in page
-    big = len(data["added"]) + len(data["removed"])
+    big = len(data["added"]) + len(data["removed"]) + len(data["mechanism_changes"])  # supported changes
     assert compare.compare_main(root / first, root / last, fail_on_change=big, out_dir=out) == 0
 
 

@@ -3,14 +3,19 @@
 from __future__ import annotations
 
 import json
+import shutil
 
 import numpy as np
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 from _shared import benchmark_path
 
 from pipeline.independence import EngineSettings
 from pipeline.search import Knowledge
 from pipeline.stages import battery, skeleton
-from pipeline.stages.skeleton import state_from_json, state_to_json
+from pipeline.stages._evidence import records_from_part
+from pipeline.stages._evidence import tests_part as columns_of  # (not collected as a test)
+from pipeline.stages.skeleton import state_doc, state_from
 
 
 def _child():
@@ -28,38 +33,43 @@ def test_resume_from_each_level_checkpoint_matches_uninterrupted(tmp_path):
     settings = EngineSettings(method="g")
     know = Knowledge()
     marginal = battery.run(codes, names, cards, settings, know)
-    saved: list[str] = []
-    full = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None,
-                        checkpoint=tmp_path / "full.json")
-    # capture the state after every level by replaying with a checkpoint per level
+    full = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=tmp_path / "full")
+    saved = []
+    # the checkpoint after every level: a search stopped there (max_order) leaves exactly that checkpoint
     for level in range(2, full.skeleton.levels):  # the marginal state itself is the level-1 start
-        part = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=level - 1,
-                            checkpoint=tmp_path / f"cp{level}.json")
+        folder = tmp_path / f"cp{level}"
+        part = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=level - 1, checkpoint=folder)
         assert part.skeleton.levels <= level
-        saved.append((tmp_path / f"cp{level}.json").read_text())  # a level that ran wrote its checkpoint
+        doc = json.loads((folder / "state.json").read_text())
+        assert doc["level"] == level and len(doc["parts"]) == level - 1  # one Parquet part per level run
+        saved.append(folder)
     assert len(saved) >= 3
-    for i, text in enumerate(saved):
-        assert state_from_json(text).level == i + 2
-        cp = tmp_path / f"resume{i}.json"
-        cp.write_text(text)
-        resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=cp)
+    for i, folder in enumerate(saved):
+        copy = tmp_path / f"resume{i}"
+        shutil.copytree(folder, copy)
+        resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=copy)
         assert resumed.tests.equals(full.tests)
         assert resumed.evidence.equals(full.evidence)
-    # the checkpoint is really what the resumed search starts from: a mark put into the first
-    # recorded test comes back in the tests table (a recomputed search would not have it)
-    marked = json.loads(saved[-1])
-    marked["tests"][0][1]["permutations"] = 12345
-    cp = tmp_path / "marked.json"
-    cp.write_text(json.dumps(marked))
-    resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=cp)
-    assert resumed.tests["permutations"].iloc[0] == 12345
+    # the checkpoint is really what the resumed search starts from: a mark put into the first test of
+    # the level-1 part comes back in the tests table (a recomputed search would not have it)
+    copy = tmp_path / "marked"
+    shutil.copytree(saved[-1], copy)
+    table = pq.read_table(copy / "level-0001.parquet")
+    perms = table.column("permutations").to_pylist()
+    perms[0] = 12345
+    pq.write_table(table.set_column(table.schema.get_field_index("permutations"), "permutations",
+                                    pc.cast(np.array(perms), "int64")), copy / "level-0001.parquet")
+    resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=copy)
+    assert resumed.tests["permutations"].iloc[len(marginal.tests)] == 12345
     assert len(resumed.tests) == len(full.tests)
 
 
-def test_state_round_trips_through_json():
-    """A search state written to JSON reads back equal (the checkpoint holds nothing executable)."""
+def test_state_round_trips_through_its_document_and_part():
+    """A search state written as plain data plus a Parquet part of its tests reads back equal (the
+    checkpoint holds nothing executable)."""
     codes, names, cards = _child()
     marginal = battery.run(codes, names, cards, EngineSettings(), Knowledge())
-    back = state_from_json(state_to_json(marginal.state))
+    doc = json.loads(json.dumps(state_doc(marginal.state)))
+    back = state_from(doc, records_from_part(columns_of(marginal.state.tests)))
     assert back.edges == marginal.state.edges and back.level == marginal.state.level
     assert [t.result for t in back.tests] == [t.result for t in marginal.state.tests]

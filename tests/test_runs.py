@@ -8,7 +8,15 @@ import pandas as pd
 import pytest
 
 from pipeline.errors import LockHeldError
-from pipeline.runs import StageCache, atomic_write_parquet, atomic_write_text, publish_run, run_lock, safe_name
+from pipeline.runs import (
+    StageCache,
+    atomic_write_parquet,
+    atomic_write_text,
+    checksum,
+    publish_run,
+    run_lock,
+    safe_name,
+)
 
 
 def test_atomic_write_leaves_no_temporary_files(tmp_path):
@@ -49,15 +57,23 @@ def test_lock_refuses_a_second_holder(tmp_path):
 
 
 def test_stage_cache_ignores_an_interrupted_attempt(tmp_path):
-    """A cache folder without its done marker is not a hit, and is cleared by the next attempt."""
-    cache = StageCache(tmp_path)
-    d = cache.begin("clean", "k1")
-    (d / "half.parquet").write_bytes(b"partial")
-    assert cache.hit("clean", "k1") is None
-    d = cache.begin("clean", "k1")
-    assert not (d / "half.parquet").exists()
-    cache.finish("clean", "k1")
-    assert cache.hit("clean", "k1") == d
+    """An entry being written is not a hit; a new attempt starts from an empty work folder (unless the
+    stage resumes), and only a committed entry with its checksums is a hit."""
+    cache = StageCache.beside(tmp_path).open()
+    with cache.writing("clean", "k1") as work:
+        (work / "half.parquet").write_bytes(b"partial")
+        assert cache.lookup("clean", "k1") is None
+    assert cache.lookup("clean", "k1") is None  # left without a commit (as a killed run would)
+    with cache.writing("clean", "k1", resume=True) as work:
+        assert (work / "half.parquet").exists()  # kept for a stage that resumes
+    with cache.writing("clean", "k1") as work:
+        assert not (work / "half.parquet").exists()
+        (work / "a.txt").write_bytes(b"abc")
+        cache.commit("clean", "k1", work, {"a.txt": {"size": 3, "checksum": checksum(b"abc")}})
+    assert cache.lookup("clean", "k1") is not None
+    assert cache.read("clean", "k1", "a.txt") == b"abc"
+    with cache.writing("clean", "k1") as work:
+        assert work is None  # finished meanwhile: nothing to write
 
 
 def test_publish_replaces_only_when_complete(tmp_path):

@@ -2,23 +2,90 @@
 
 from __future__ import annotations
 
+import dataclasses
 from itertools import combinations
+from operator import attrgetter
 from typing import Sequence
 
 import numpy as np
 import pandas as pd
 
+from ..independence.result import CITestResult
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
 from ..search.skeleton import SkeletonResult, TestRecord
 
-__all__ = ["tests_frame", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS", "TEST_COLUMNS"]
+__all__ = ["tests_frame", "tests_part", "records_from_part", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS", "TEST_COLUMNS"]
 
-TEST_COLUMNS = [
-    "test_id", "phase", "level", "var_a", "var_b", "given", "given_size", "statistic", "dof",
-    "pvalue", "n", "method", "cmi_bits", "sparse", "degenerate", "independent", "policy",
-    "policy_applied", "permutations",
+# Fields of a test result kept out of tests.parquet: the pair and set have their own columns, and the
+# marginal effect size is an evidence column. Every other field (new ones too) becomes a column.
+_NOT_IN_TESTS = ("x", "y", "given", "cramers_v")
+_ARROW_TYPES = {"float": "float64", "int": "int64", "bool": "bool_", "str": "string"}
+
+
+def _result_fields() -> list[tuple[str, str]]:
+    """(name, arrow type name) of every `CITestResult` field, in declaration order."""
+    out = []
+    for f in dataclasses.fields(CITestResult):
+        kind = f.type if isinstance(f.type, str) else getattr(f.type, "__name__", str(f.type))
+        out.append((f.name, "list" if kind.startswith("tuple") else _ARROW_TYPES[kind]))
+    return out
+
+
+TEST_COLUMNS = ["test_id", "phase", "level", "var_a", "var_b", "given", "given_size"] + [
+    name for name, _ in _result_fields() if name not in _NOT_IN_TESTS
 ]
+
+
+def tests_part(records: Sequence[TestRecord]):
+    """The tests as an Arrow table: ``level`` and every result field (the set as a list), one column
+    per field built in one pass over the records (the checkpoint part of a search level)."""
+    import pyarrow as pa
+
+    results = [rec.result for rec in records]
+    cols = {"level": pa.array([rec.level for rec in records], type=pa.int64())}
+    for name, kind in _result_fields():
+        values = list(map(attrgetter(name), results))
+        cols[name] = pa.array(values, type=pa.list_(pa.string()) if kind == "list" else getattr(pa, kind)())
+    return pa.table(cols)
+
+
+def records_from_part(table) -> list[TestRecord]:
+    """The test records of a table written by `tests_part` (a resumed search goes on from them)."""
+    import pyarrow as pa
+
+    if isinstance(table, pd.DataFrame):  # as the stage cache hands a Parquet artifact back
+        table = pa.Table.from_pandas(table, preserve_index=False)
+    names = [name for name, _ in _result_fields()]
+    cols = {name: table.column(name).to_pylist() for name in names}
+    cols["given"] = [tuple(g) for g in cols["given"]]
+    levels = table.column("level").to_pylist()
+    return [
+        TestRecord(level=lv, result=CITestResult(**dict(zip(names, values))))
+        for lv, values in zip(levels, zip(*(cols[n] for n in names)))
+    ]
+
+
+def tests_frame(records: Sequence[TestRecord], phases: Sequence[str] | None = None) -> pd.DataFrame:
+    """One row per test, in the order the tests were decided (built column by column)."""
+    import pyarrow.compute as pc
+
+    part = tests_part(records)
+    level = part.column("level").to_numpy()
+    given = part.column("given")
+    cols: dict[str, object] = {
+        "test_id": np.arange(len(records), dtype=np.int64),
+        "phase": list(phases) if phases is not None else np.where(level == 0, "battery", "skeleton").astype(object),
+        "level": level,
+        "var_a": part.column("x").to_numpy(zero_copy_only=False),
+        "var_b": part.column("y").to_numpy(zero_copy_only=False),
+        "given": pc.binary_join(given, ";").to_numpy(zero_copy_only=False),
+        "given_size": pc.list_value_length(given).to_numpy().astype(np.int64),
+    }
+    for name in TEST_COLUMNS[7:]:
+        cols[name] = part.column(name).to_numpy(zero_copy_only=False)
+    return pd.DataFrame(cols, columns=TEST_COLUMNS)
+
 
 EVIDENCE_COLUMNS = [
     "var_a", "var_b", "linked", "pvalue", "statistic", "dof", "given", "n", "level", "method",
@@ -40,44 +107,6 @@ def benjamini_hochberg(pvalues: Sequence[float]) -> np.ndarray:
     out = np.empty(m)
     out[order] = np.minimum(q, 1.0)
     return out
-
-
-def tests_frame(records: Sequence[TestRecord], phases: Sequence[str] | None = None) -> pd.DataFrame:
-    """One row per test, in the order the tests were decided."""
-    rows = []
-    for i, rec in enumerate(records):
-        r = rec.result
-        rows.append(
-            {
-                "test_id": i,
-                "phase": phases[i] if phases is not None else ("battery" if rec.level == 0 else "skeleton"),
-                "level": rec.level,
-                "var_a": r.x,
-                "var_b": r.y,
-                "given": ";".join(r.given),
-                "given_size": len(r.given),
-                "statistic": r.statistic,
-                "dof": r.dof,
-                "pvalue": r.pvalue,
-                "n": r.n,
-                "method": r.method,
-                "cmi_bits": r.cmi_bits,
-                "sparse": r.sparse,
-                "degenerate": r.degenerate,
-                "independent": r.independent,
-                "policy": r.policy,
-                "policy_applied": r.policy_applied,
-                "permutations": r.permutations,
-            }
-        )
-    frame = pd.DataFrame(rows, columns=TEST_COLUMNS)
-    return frame.astype(
-        {
-            "test_id": "int64", "level": "int64", "given_size": "int64", "dof": "int64", "n": "int64",
-            "permutations": "int64", "sparse": "bool", "degenerate": "bool", "independent": "bool",
-            "policy_applied": "bool", "statistic": "float64", "pvalue": "float64", "cmi_bits": "float64",
-        }
-    )
 
 
 def _fmt_p(p: float) -> str:

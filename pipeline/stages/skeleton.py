@@ -3,25 +3,23 @@ then optional orientation, then the evidence table."""
 
 from __future__ import annotations
 
-import copy
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
 
 from ..independence.engine import CIEngine, EngineSettings
-from ..independence.result import CITestResult
 from ..parallel import ParallelContext
-from ..runs import atomic_write_text
+from ..runs import atomic_write_json
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation, orient
 from ..search.skeleton import SearchState, SkeletonResult, TestRecord, pc_stable_skeleton
-from ._evidence import evidence_frame, tests_frame
+from ._evidence import evidence_frame, records_from_part, tests_frame, tests_part
 
-__all__ = ["SearchOutcome", "run", "state_to_json", "state_from_json"]
+__all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
 
 
 @dataclass(frozen=True)
@@ -34,36 +32,70 @@ class SearchOutcome:
     evidence: pd.DataFrame
 
 
-def state_to_json(state: SearchState) -> str:
-    """Serialise a search state (plain JSON, nothing executable)."""
-    return json.dumps(
-        {
-            "level": state.level,
-            "edges": sorted(state.edges),
-            "separating_sets": [[list(k), list(v)] for k, v in sorted(state.separating_sets.items())],
-            "removed_by": [[list(k), v] for k, v in sorted(state.removed_by.items())],
-            "disagreements": sorted(state.disagreements),
-            "tests": [[t.level, t.result.to_dict()] for t in state.tests],
-        }
-    )
+def state_doc(state: SearchState) -> dict[str, Any]:
+    """A search state without its tests, as plain data (the tests go in column parts)."""
+    return {
+        "level": state.level,
+        "edges": sorted(state.edges),
+        "separating_sets": [[list(k), list(v)] for k, v in sorted(state.separating_sets.items())],
+        "removed_by": [[list(k), v] for k, v in sorted(state.removed_by.items())],
+        "disagreements": sorted(state.disagreements),
+        "n_tests": len(state.tests),
+    }
 
 
-def state_from_json(text: str) -> SearchState:
-    """Read back a state written by `state_to_json`."""
-    d = json.loads(text)
-    tests = []
-    for level, r in d["tests"]:
-        r = dict(r)
-        r["given"] = tuple(r["given"])
-        tests.append(TestRecord(level=level, result=CITestResult(**r)))
+def state_from(doc: dict[str, Any], records: list[TestRecord]) -> SearchState:
+    """A search state back from `state_doc` and its tests."""
+    if int(doc["n_tests"]) != len(records):
+        raise ValueError(f"the state counts {doc['n_tests']} tests, its parts hold {len(records)}")
     return SearchState(
-        level=d["level"],
-        edges={tuple(e) for e in d["edges"]},  # type: ignore[misc]
-        separating_sets={tuple(k): tuple(v) for k, v in d["separating_sets"]},  # type: ignore[misc]
-        removed_by={tuple(k): v for k, v in d["removed_by"]},  # type: ignore[misc]
-        tests=tests,
-        disagreements={tuple(e) for e in d["disagreements"]},  # type: ignore[misc]
+        level=int(doc["level"]),
+        edges={tuple(e) for e in doc["edges"]},  # type: ignore[misc]
+        separating_sets={tuple(k): tuple(v) for k, v in doc["separating_sets"]},  # type: ignore[misc]
+        removed_by={tuple(k): int(v) for k, v in doc["removed_by"]},  # type: ignore[misc]
+        tests=list(records),
+        disagreements={tuple(e) for e in doc["disagreements"]},  # type: ignore[misc]
     )
+
+
+_STATE = "state.json"
+
+
+def _save_level(folder: Path, state: SearchState, first_new: int) -> None:
+    """Checkpoint after a level: the level's tests as one Parquet part, then the state naming every
+    part so far (written last: a state file only ever names parts that are complete)."""
+    import pyarrow.parquet as pq
+
+    part = f"level-{state.level - 1:04d}.parquet"
+    tmp = folder / f".{part}.tmp"
+    pq.write_table(tests_part(state.tests[first_new:]), tmp, compression="zstd")
+    tmp.replace(folder / part)
+    previous = _read_doc(folder)
+    parts = [*(previous or {}).get("parts", []), part] if previous else [part]
+    atomic_write_json(folder / _STATE, {**state_doc(state), "parts": parts})
+
+
+def _read_doc(folder: Path) -> dict[str, Any] | None:
+    try:
+        return json.loads((folder / _STATE).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def _resume(folder: Path, start: SearchState) -> SearchState:
+    """The state of the last checkpointed level, or `start` when there is none (or it does not fit)."""
+    import pyarrow.parquet as pq
+
+    doc = _read_doc(folder)
+    if doc is None:
+        return start
+    try:
+        records = list(start.tests)
+        for part in doc["parts"]:
+            records.extend(records_from_part(pq.read_table(folder / part)))
+        return state_from(doc, records)
+    except (OSError, ValueError, KeyError, TypeError):
+        return start  # a checkpoint that does not fit this search: start over
 
 
 def run(
@@ -82,14 +114,23 @@ def run(
     stability: dict[tuple[str, str], float] | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> SearchOutcome:
-    """Go on from the marginal battery to the full skeleton; resume from `checkpoint` if present."""
-    state = copy.deepcopy(marginal_state)
-    if checkpoint is not None and checkpoint.is_file():
-        state = state_from_json(checkpoint.read_text(encoding="utf-8"))
+    """Go on from the marginal battery to the full skeleton.
 
-    def save(s: SearchState) -> None:
-        if checkpoint is not None:
-            atomic_write_text(checkpoint, state_to_json(s))
+    `checkpoint` is a folder: after every level its tests are appended there as one Parquet part
+    and the state is saved; a search given a folder holding a checkpoint resumes after its last level.
+    """
+    m = marginal_state  # its test records are frozen: shared, not copied
+    state = SearchState(level=m.level, edges=set(m.edges), separating_sets=dict(m.separating_sets),
+                        removed_by=dict(m.removed_by), tests=list(m.tests), disagreements=set(m.disagreements))
+    save = None
+    if checkpoint is not None:
+        checkpoint.mkdir(parents=True, exist_ok=True)
+        state = _resume(checkpoint, state)
+        written = [len(state.tests)]
+
+        def save(s: SearchState) -> None:
+            _save_level(checkpoint, s, written[0])
+            written[0] = len(s.tests)
 
     skeleton = pc_stable_skeleton(
         data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,

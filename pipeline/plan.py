@@ -1,0 +1,155 @@
+"""The plan of a run: every cached stage, what it reads and writes, and the configuration it depends on.
+
+This is the one place to read the stage order, the cache keys and the artifacts. The runner
+(`pipeline.runner`) computes each stage's key as hash(version, stage name, the settings listed here,
+keys of what it reads). Values the plan provides itself (not made by a stage):
+
+``input``         the input path (key: content fingerprint with partition folder names)
+``reuse_levels``  the levels of an earlier run named by ``discretise.reuse_from``, or None
+``signals``       ``{"names", "cards"}`` of the kept signals, in the order of ``codes.npy``
+``knowledge``     the `Knowledge` (required / forbidden pairs, tiers) after the review file
+
+Each stage function takes a `StageCall` and returns ``{artifact: value}``; the work itself is in
+``pipeline/stages/<name>.py``.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .independence.engine import EngineSettings
+from .runner import Stage, StageCall
+from .stages import battery, clean, discretise, ingest, skeleton, stability
+from .stages._evidence import records_from_part, tests_part
+from .stages.skeleton import state_doc, state_from
+
+__all__ = ["STAGES", "coded_matrix"]
+
+
+def coded_matrix(codes: pd.DataFrame) -> np.ndarray:
+    """The coded table as one row per signal (the layout every search kernel reads)."""
+    dtype = np.result_type(*[codes[c].dtype for c in codes.columns]) if len(codes.columns) else np.int8
+    out = np.empty((codes.shape[1], codes.shape[0]), dtype=dtype)
+    for i, c in enumerate(codes.columns):
+        out[i] = codes[c].to_numpy()
+    return out
+
+
+def _ingest(call: StageCall) -> dict[str, Any]:
+    res = ingest.run(call["input"], call.cfg.input, call.cfg.limits)
+    return {
+        "ingest.parquet": res.table,
+        "ingest-rejected.parquet": res.rejected,
+        "ingest.json": {"rows_read": res.rows_read, "sources": res.sources, "summary": res.summary},
+    }
+
+
+def _clean(call: StageCall) -> dict[str, Any]:
+    meta = call["ingest.json"]
+    ingested = ingest.Ingested(
+        table=call["ingest.parquet"], rejected=call["ingest-rejected.parquet"],
+        rows_read=meta["rows_read"], sources=meta["sources"], summary=meta["summary"],
+    )
+    call.inputs.clear()  # the stage holds the only reference: the raw table goes with `ingested`
+    cleaned = clean.run(ingested, call.cfg)
+    return {
+        "clean.parquet": cleaned.table,
+        "quarantined.parquet": cleaned.quarantined,
+        "rejected.parquet": pd.concat([ingested.rejected, cleaned.quarantined], ignore_index=True),
+        "cleaning.json": cleaned.summary,
+        "clean-meta.json": {
+            "kinds": cleaned.kinds, "columns": cleaned.columns, "rows_read": ingested.rows_read,
+            "rejected": len(ingested.rejected), "quarantined": len(cleaned.quarantined), "sources": ingested.sources,
+        },
+    }
+
+
+def _discretise(call: StageCall) -> dict[str, Any]:
+    meta = call["clean-meta.json"]
+    cleaned = clean.Cleaned(
+        table=call["clean.parquet"], kinds=meta["kinds"], columns=meta["columns"],
+        quarantined=call["quarantined.parquet"], summary=call["cleaning.json"],
+    )
+    reuse_levels = call["reuse_levels"]
+    call.inputs.clear()
+    disc = discretise.run(cleaned, call.cfg, reuse_levels)
+    return {
+        "discretised.parquet": disc.codes,
+        "codes.npy": coded_matrix(disc.codes),
+        "levels.json": {"levels": disc.levels, "edges": disc.edges, "kinds": disc.kinds},
+        "discretise.json": disc.summary,
+    }
+
+
+def _settings(call: StageCall) -> EngineSettings:
+    return EngineSettings.from_config(call.cfg)
+
+
+def _battery(call: StageCall) -> dict[str, Any]:
+    sig = call["signals"]
+    marginal = battery.run(call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], call.env["workers"])
+    return {"marginal.parquet": marginal.tests, "state.json": state_doc(marginal.state),
+            "marginal-part.parquet": tests_part(marginal.state.tests)}
+
+
+def _skeleton(call: StageCall) -> dict[str, Any]:
+    sig, cfg, rep = call["signals"], call.cfg, call.env["reporter"]
+    state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
+    call.inputs.pop("marginal-part.parquet")
+    outcome = skeleton.run(
+        call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,
+        max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
+        context=call.env["workers"], checkpoint=call.work, progress=rep.level,
+    )
+    rep.close()
+    return {"evidence.parquet": outcome.evidence, "tests.parquet": outcome.tests}
+
+
+def _stability(call: StageCall) -> dict[str, Any]:
+    sig, cfg, evidence = call["signals"], call.cfg, call["evidence.parquet"]
+    res = stability.run(
+        call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
+        resamples=cfg.search.resamples, fraction=cfg.search.resample_fraction, method=cfg.search.resample_method,
+        max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
+        seed=cfg.test.seed, context=call.env["workers"], threshold=cfg.search.stable_threshold,
+    )
+    rows = []
+    for a, b in evidence[["var_a", "var_b"]].itertuples(index=False):
+        rows.append({
+            "var_a": a, "var_b": b,
+            "stability": float(res.linked.get((a, b), 0.0)),
+            "stability_a_to_b": float(res.directed.get((a, b), np.nan)) if res.directed else np.nan,
+            "stability_b_to_a": float(res.directed.get((b, a), np.nan)) if res.directed else np.nan,
+            "stable": (a, b) in res.stable_edges,
+        })
+    info = {"resamples": res.resamples, "method": res.method, "fraction": res.fraction, "threshold": res.threshold,
+            "rows_per_resample": res.rows_per_resample, "caveat": res.caveat}
+    return {"stability.parquet": pd.DataFrame(rows), "stability.json": info}
+
+
+_SEARCH = ("test", "search.max_order", "search.orient", "search.collider_rule")
+
+# The stages in order. A new stage is one entry here plus its function above (see DEVELOPERS.md).
+STAGES: tuple[Stage, ...] = (
+    Stage("ingest", _ingest, reads=("input",), settings=("input", "limits"),
+          writes=("ingest.parquet", "ingest-rejected.parquet", "ingest.json")),
+    Stage("clean", _clean, reads=("ingest.parquet", "ingest-rejected.parquet", "ingest.json"),
+          settings=("clean", "columns"),
+          writes=("clean.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
+    Stage("discretise", _discretise,
+          reads=("clean.parquet", "quarantined.parquet", "clean-meta.json", "cleaning.json", "reuse_levels"),
+          settings=("discretise", "test.missing"),
+          writes=("discretised.parquet", "codes.npy", "levels.json", "discretise.json"),
+          carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
+    Stage("battery", _battery, reads=("codes.npy", "signals", "knowledge"), settings=("test",),
+          writes=("marginal.parquet", "marginal-part.parquet", "state.json")),
+    Stage("skeleton", _skeleton, reads=("codes.npy", "signals", "knowledge", "marginal-part.parquet", "state.json"),
+          settings=_SEARCH, writes=("evidence.parquet", "tests.parquet"), resumable=True),
+    Stage("stability", _stability, reads=("codes.npy", "signals", "knowledge", "evidence.parquet"),
+          settings=(*_SEARCH, "search.resamples", "search.resample_fraction", "search.resample_method",
+                    "search.stable_threshold", "test.seed"),
+          writes=("stability.parquet", "stability.json")),
+)

@@ -1,0 +1,289 @@
+"""The stage runner: declared stages, one cache rule, one timing record.
+
+A stage declares the artifacts it reads, the artifacts it writes and the configuration it depends
+on. Its cache key is the hash of the version, its name, its slice of the configuration and the
+keys of the artifacts it reads, nothing else. The runner pulls what is asked for: a stage whose
+entry is in the cache is not run (and the stages before it are not even looked at); otherwise its
+inputs are pulled, it runs, and its artifacts are written to the cache with their checksums. A
+damaged entry is discarded and recomputed with one warning.
+
+Artifacts are typed by their file name: ``.parquet`` a DataFrame, ``.json`` plain data, ``.npy`` a
+numpy array (read back as a read-only memory map, so local workers share it). Values that the plan
+makes itself (the input files, the knowledge) are `provide`d with a key of their own.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterator, Mapping
+
+from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, stable_hash
+
+__all__ = ["Stage", "StageCall", "Runner", "encode", "decode"]
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One step of the plan.
+
+    Attributes
+    ----------
+    name : the stage's name (in the manifest's ``stages`` and ``cache_keys``, and in cache folders).
+    run : ``run(call) -> {artifact name: value}`` for every name in `writes`.
+    reads : artifacts (or provided values) the stage needs; their keys enter its cache key.
+    writes : artifacts it makes.
+    settings : configuration it depends on: a section (``"test"``) or one key (``"test.missing"``).
+    carries : artifacts of an earlier stage copied into this stage's entry unchanged, so a hit here
+        needs no earlier entry at all.
+    resumable : the stage keeps per-level parts in ``call.work``; an interrupted attempt leaves them
+        for the next attempt with the same key.
+    """
+
+    name: str
+    run: Callable[["StageCall"], dict[str, Any]]
+    reads: tuple[str, ...] = ()
+    writes: tuple[str, ...] = ()
+    settings: tuple[str, ...] = ()
+    carries: tuple[str, ...] = ()
+    resumable: bool = False
+
+
+@dataclass
+class StageCall:
+    """What a stage's `run` gets: its inputs, the configuration, a work folder and the plan's tools."""
+
+    inputs: dict[str, Any]
+    cfg: Any
+    work: Path
+    env: Mapping[str, Any]
+
+    def __getitem__(self, name: str) -> Any:
+        return self.inputs[name]
+
+
+def encode(name: str, value: Any) -> bytes:
+    """The bytes of an artifact, by its file type (Parquet without timestamps, sorted JSON, .npy)."""
+    if name.endswith(".parquet"):
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        table = value if isinstance(value, pa.Table) else pa.Table.from_pandas(value, preserve_index=False)
+        buf = io.BytesIO()
+        pq.write_table(table, buf, compression="zstd")
+        return buf.getvalue()
+    if name.endswith(".json"):
+        return (json.dumps(value, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n").encode("utf-8")
+    if name.endswith(".npy"):
+        import numpy as np
+
+        buf = io.BytesIO()
+        np.save(buf, np.ascontiguousarray(value))
+        return buf.getvalue()
+    if isinstance(value, bytes):
+        return value
+    raise TypeError(f"no file type for artifact `{name}`")
+
+
+def decode(name: str, data: bytes, path: Path | None = None) -> Any:
+    """An artifact back from its bytes (a .npy at `path` is memory-mapped, after its bytes were checked)."""
+    if name.endswith(".parquet"):
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        return pq.read_table(pa.BufferReader(data)).to_pandas()
+    if name.endswith(".json"):
+        return json.loads(data.decode("utf-8"))
+    if name.endswith(".npy"):
+        import numpy as np
+
+        return np.load(path, mmap_mode="r") if path is not None else np.load(io.BytesIO(data))
+    return data
+
+
+@dataclass
+class Runner:
+    """Runs a plan of stages against one stage cache and records what it did."""
+
+    stages: list[Stage]
+    cache: StageCache
+    cfg: Any
+    version: str
+    env: dict[str, Any] = field(default_factory=dict)
+    on_event: Callable[..., None] = lambda *a, **k: None
+    timings: dict[str, dict[str, Any]] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+    _provided: dict[str, tuple[Any, str]] = field(default_factory=dict, init=False)
+    _keys: dict[str, str] = field(default_factory=dict, init=False)
+    _ready: set[str] = field(default_factory=set, init=False)
+    _fresh: dict[tuple[str, str], Any] = field(default_factory=dict, init=False)  # outputs of the stage run last
+    _mapped: dict[tuple[str, str], Any] = field(default_factory=dict, init=False)  # .npy memory maps
+
+    def __post_init__(self) -> None:
+        names = [st.name for st in self.stages]
+        if len(set(names)) != len(names):
+            raise ValueError(f"stage names repeat: {names}")
+
+    # -- what the plan gives -------------------------------------------------------------------
+    def provide(self, name: str, value: Any, key: Any) -> None:
+        """A value made by the plan itself, with what identifies it (hashed into its readers' keys)."""
+        self._provided[name] = (value, stable_hash(key))
+
+
+    # -- keys ---------------------------------------------------------------------------------
+    def _setting(self, path: str) -> Any:
+        section, _, key = path.partition(".")
+        doc = self.cfg.section(section)
+        return doc[key] if key else doc
+
+    def key(self, stage: Stage) -> str:
+        """hash(version, name, settings slice, keys of what the stage reads)."""
+        if stage.name not in self._keys:
+            read_keys = {}
+            for name in (*stage.reads, *stage.carries):
+                if name in self._provided:
+                    read_keys[name] = self._provided[name][1]
+                else:
+                    read_keys[name] = self.key(self._producer_of(name, before=stage))
+            self._keys[stage.name] = stable_hash(
+                [self.version, stage.name, {s: self._setting(s) for s in stage.settings}, read_keys]
+            )
+        return self._keys[stage.name]
+
+    def cache_keys(self) -> dict[str, str]:
+        """The key of every stage this run needed, by stage name (in plan order)."""
+        return {st.name: self._keys[st.name] for st in self.stages if st.name in self._keys}
+
+    def stage_record(self) -> dict[str, dict[str, Any]]:
+        """Seconds and reuse of every stage this run needed; a stage made unnecessary by a later
+        stage's cache hit counts as reused in 0 s."""
+        out = {name: {"seconds": 0.0, "reused": True} for name in self.cache_keys()}
+        out.update(self.timings)
+        return out
+
+    def entries(self) -> set[str]:
+        """Cache folder names of this run's entries (pruning keeps them)."""
+        return {f"{name}-{key}" for name, key in self.cache_keys().items()}
+
+    def _producer_of(self, name: str, before: Stage | None = None) -> Stage:
+        """The stage an artifact is read from: the last one before `before` that writes or carries it
+        (a stage that carries an artifact is where later stages read it)."""
+        found = None
+        for st in self.stages:
+            if st is before:
+                break
+            if name in st.writes or name in st.carries:
+                found = st
+        if found is None:
+            raise KeyError(f"no stage writes `{name}` and the plan did not provide it")
+        return found
+
+    # -- pulling artifacts --------------------------------------------------------------------
+    def get(self, name: str, *, before: Stage | None = None) -> Any:
+        """The value of an artifact: provided, just computed, or read (and checked) from the cache.
+
+        `before`: read it as that stage sees it (from the last stage before it that makes it).
+        """
+        if name in self._provided:
+            return self._provided[name][0]
+        stage = self._producer_of(name, before)
+        self.ensure(stage)
+        if (stage.name, name) in self._fresh:
+            return self._fresh[(stage.name, name)]
+        where = (stage.name, name)
+        if where in self._mapped:
+            return self._mapped[where]
+        value = decode(name, self._bytes(name, before), self.cache.entry(stage.name, self.key(stage)) / name)
+        if name.endswith(".npy"):  # one memory map per run: every stage and worker shares it
+            self._mapped[where] = value
+        return value
+
+    def _bytes(self, name: str, before: Stage | None = None) -> bytes:
+        """The checked bytes of an artifact in the cache (a damaged entry is recomputed first)."""
+        stage = self._producer_of(name, before)
+        self.ensure(stage)
+        try:
+            return self.cache.read(stage.name, self.key(stage), name)
+        except CacheDamaged as why:
+            self._damaged(stage, why)
+            self.ensure(stage)
+            return self._bytes(name, before)
+
+    def path(self, name: str) -> Path:
+        """Where an artifact's file is in the cache, checked (for publishing it into a run folder)."""
+        self._bytes(name)
+        stage = self._producer_of(name)
+        return self.cache.entry(stage.name, self.key(stage)) / name
+
+    def ensure(self, stage: Stage) -> None:
+        """Make sure the stage's entry exists: a checked hit, or a run."""
+        if stage.name in self._ready:
+            return
+        key = self.key(stage)
+        try:
+            hit = self.cache.lookup(stage.name, key) is not None
+        except CacheDamaged as why:
+            self._damaged(stage, why)
+            hit = False
+        if hit:
+            with self._timed(stage.name) as rec:
+                rec["reused"] = True
+        else:
+            self._run(stage, key)
+        self._ready.add(stage.name)
+
+    def _run(self, stage: Stage, key: str) -> None:
+        """Pull the stage's inputs, run it under its entry's lock and write its entry."""
+        inputs = {name: self.get(name, before=stage) for name in stage.reads}
+        carried = {name: self._bytes(name, before=stage) for name in stage.carries}
+        self._fresh = {}
+        with self._timed(stage.name) as rec, self.cache.writing(stage.name, key, resume=stage.resumable) as work:
+            if work is None:  # another run finished this entry while this one waited for its lock
+                rec["reused"] = True
+                return
+            outputs = stage.run(StageCall(inputs=inputs, cfg=self.cfg, work=work, env=self.env))
+            del inputs
+            missing = set(stage.writes) - set(outputs)
+            if missing:
+                raise RuntimeError(f"stage `{stage.name}` did not write {sorted(missing)}")
+            files: dict[str, dict[str, Any]] = {}
+            encoded = [(name, encode(name, outputs[name])) for name in stage.writes] + list(carried.items())
+            for name, data in encoded:
+                if name.endswith(".json"):  # what a later hit would read (e.g. keys sorted)
+                    outputs[name] = decode(name, data)
+                atomic_write_bytes(work / name, data)
+                files[name] = {"size": len(data), "checksum": checksum(data)}
+            del encoded
+            self.cache.commit(stage.name, key, work, files)
+        self._fresh = {(stage.name, name): outputs[name] for name in stage.writes if not name.endswith(".npy")}
+
+    def _damaged(self, stage: Stage, why: CacheDamaged) -> None:
+        key = self.key(stage)
+        line = f"Stage cache entry `{stage.name}-{key}` was damaged ({why}); discarded it and recomputed the stage."
+        self.warnings.append(line)
+        self.on_event("warning", message=line)
+        self.cache.discard(stage.name, key)
+        self._ready.discard(stage.name)
+        self._fresh = {}
+        self._mapped = {k: v for k, v in self._mapped.items() if k[0] != stage.name}
+
+    # -- timing -------------------------------------------------------------------------------
+    @contextlib.contextmanager
+    def _timed(self, name: str) -> Iterator[dict[str, Any]]:
+        rec: dict[str, Any] = {"reused": False}
+        t0 = time.perf_counter()
+        self.on_event("stage", name=name, status="start")
+        yield rec
+        sec = round(time.perf_counter() - t0 + self.timings.get(name, {}).get("seconds", 0.0), 3)
+        self.timings[name] = {"seconds": sec, "reused": rec["reused"]}
+        self.on_event("stage", name=name, status="reused" if rec["reused"] else "done", seconds=sec)
+
+    @contextlib.contextmanager
+    def timed(self, name: str) -> Iterator[None]:
+        """Time a step that is not cached (the report), recorded beside the stages."""
+        with self._timed(name):
+            yield
