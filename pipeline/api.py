@@ -281,6 +281,17 @@ def _reuse_levels(cfg: Config, out: Path) -> Any:
     return json.loads(ref.read_text(encoding="utf-8"))
 
 
+def _lag_pairs(time_doc: dict[str, Any]) -> list[tuple[str, str]]:
+    """Pairs the search never tests: two earlier-window copies, or a signal and its own earlier copy."""
+    names, source, lags = time_doc["names"], time_doc["source"], time_doc["lag"]
+    out = []
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            if (lags[i] > 0 and lags[j] > 0) or source[i] == source[j]:
+                out.append((names[i], names[j]))
+    return out
+
+
 def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: Reporter) -> dict[str, Any]:
     """Pull the plan's artifacts through the runner and assemble the run folder and its manifest."""
     cfg = runner.cfg
@@ -301,16 +312,30 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             f"Only {len(names)} usable column(s) left after cleaning ({', '.join(names) or 'none'}); "
             "see cleaning.json for why the others were dropped."
         )
-    cards = [max(1, len(levels_doc["levels"][n])) for n in names]
-    cfg, auto_settings = resolve_auto(cfg, n_kept, cards)
+    # the variables the search tests: the signals in time order (series columns left out unless
+    # `time.test_series`), and their copies from earlier windows when `time.lags` asks for them
+    kept = names
+    time_doc = runner.get("timeline.json")
+    _link_or_copy(runner.path("timeline.parquet"), out / "timeline.parquet")
+    names, cards = list(time_doc["names"]), [int(c) for c in time_doc["cards"]]
+    if len(names) < 2:
+        raise DataError(
+            f"Only {len(names)} signal(s) left to test ({', '.join(names) or 'none'}) once the series columns "
+            f"({', '.join(time_doc.get('series') or []) or 'none'}) are set aside; see cleaning.json, or set `time.test_series: true`."
+        )
+    # `auto` rules count the rows a test can use: on time-ordered rows the tests condition on the previous
+    # window, so a row counts once it has one (its news since that window is what the tests see)
+    n_info = n_kept - int(time_doc.get("rows_without_previous", 0)) if time_doc["timed"] else n_kept
+    cfg, auto_settings = resolve_auto(cfg, n_info, cards[: len(time_doc["signals"])])
     runner.cfg = cfg  # the stages from here on see the resolved settings (and are keyed by them)
 
-    # knowledge: configuration + reviewed evidence file
-    confirm, reject, comments, review_warnings = _review_knowledge(cfg, names)
+    # knowledge: configuration + reviewed evidence file + the order of time (a copy from an earlier window
+    # is tested only against signals of the present window, never against its own signal)
+    confirm, reject, comments, review_warnings = _review_knowledge(cfg, [n for n, lag in zip(names, time_doc["lag"]) if lag == 0])
     knowledge = Knowledge.build(
         names,
         required=[*cfg.knowledge.required, *confirm],
-        forbidden=[*cfg.knowledge.forbidden, *reject],
+        forbidden=[*cfg.knowledge.forbidden, *reject, *_lag_pairs(time_doc)],
         tiers=cfg.knowledge.tiers,
     )
     runner.provide("signals", {"names": names, "cards": cards}, key=[names, cards])
@@ -335,7 +360,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "quarantined": int(clean_meta["quarantined"]),
         "kept": int(n_kept),
     }
-    warnings = [*runner.warnings, *review_warnings]
+    warnings = [*runner.warnings, *review_warnings, *time_doc.get("warnings", [])]
     if rows["read"] != rows["kept"] + rows["rejected"] + rows["quarantined"]:
         warnings.append(
             f"Row counts do not reconcile: read {rows['read']} != kept {rows['kept']} + rejected "
@@ -347,7 +372,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "config": cfg.model_dump(mode="json"),
         "input": {"path": str(source), "files": [str(f) for f in files], "fingerprint": fp},
         "rows": rows,
-        "columns": {"kept": names, "dropped": dropped},
+        "columns": {"kept": kept, "dropped": dropped, "tested": names},
         "stages": timings,
         "packages": _versions(),
         "platform": {"machine": platform.machine(), "cpus": os.cpu_count()},
@@ -355,6 +380,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "edges": int(evidence["linked"].sum()),
         "tests": int(len(tests)),
         "auto_settings": auto_settings,
+        "time": {k: v for k, v in time_doc.items() if k not in ("names", "cards", "source", "lag", "numeric")},
         "review": comments,
         "warnings": warnings,
         "status": "ok",
@@ -367,7 +393,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         ctx_report = report.ReportContext(
             title=cfg.report.title or f"edgeproof run on {source.name}",
             summary={
-                "input": str(source), "rows": rows, "columns_kept": names, "columns_dropped": dropped,
+                "input": str(source), "rows": rows, "columns_kept": kept, "columns_dropped": dropped,
                 "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},
                 "timings": timings,
             },

@@ -22,7 +22,8 @@ import pandas as pd
 
 from .independence.engine import EngineSettings
 from .runner import Stage, StageCall
-from .stages import battery, clean, discretise, ingest, skeleton, stability
+from .search.skeleton import SignalExtras
+from .stages import battery, clean, discretise, ingest, skeleton, stability, timeline
 from .stages._evidence import records_from_part, tests_part
 from .stages.skeleton import state_doc, state_from
 
@@ -57,6 +58,7 @@ def _clean(call: StageCall) -> dict[str, Any]:
     cleaned = clean.run(ingested, call.cfg)
     return {
         "clean.parquet": cleaned.table,
+        "clean-times.parquet": cleaned.times,
         "quarantined.parquet": cleaned.quarantined,
         "rejected.parquet": pd.concat([ingested.rejected, cleaned.quarantined], ignore_index=True),
         "cleaning.json": cleaned.summary,
@@ -84,13 +86,48 @@ def _discretise(call: StageCall) -> dict[str, Any]:
     }
 
 
+def _timeline(call: StageCall) -> dict[str, Any]:
+    levels = call["levels.json"]
+    codes = call["discretised.parquet"]
+    cards = {c: max(1, len(levels["levels"][c])) for c in codes.columns}
+    timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg)
+    n = timed.codes.shape[1]
+    scores = np.full(timed.codes.shape, np.nan)
+    for i, s in enumerate(timed.scores):
+        if s is not None:
+            scores[i] = s
+    prev = timed.timeline.prev if timed.timeline is not None else np.full(n, -1, dtype=np.int64)
+    return {
+        "timeline.parquet": timed.aligned_frame(),
+        "search-codes.npy": timed.codes,
+        "search-scores.npy": scores,
+        "search-prev.npy": prev,
+        "timeline.json": {**timed.summary, "names": timed.names, "cards": timed.cards, "source": timed.source,
+                          "lag": timed.lag, "numeric": [s is not None for s in timed.scores],
+                          "timed": timed.timeline is not None,
+                          "series_length": timed.timeline.series_length if timed.timeline is not None else 0.0},
+    }
+
+
+def search_extras(call: StageCall) -> SignalExtras | None:
+    """Numeric scores and previous windows for the search, or None when codes on independent rows suffice."""
+    doc = call["timeline.json"]
+    numeric = tuple(bool(v) for v in doc["numeric"])
+    if not doc["timed"] and not any(numeric):
+        return None
+    return SignalExtras(scores=call["search-scores.npy"], numeric=numeric,
+                        prev=call["search-prev.npy"] if doc["timed"] else None,
+                        series_length=float(doc["series_length"]), own_past=tuple(lag == 0 for lag in doc["lag"]))
+
+
 def _settings(call: StageCall) -> EngineSettings:
     return EngineSettings.from_config(call.cfg)
 
 
 def _battery(call: StageCall) -> dict[str, Any]:
     sig = call["signals"]
-    marginal = battery.run(call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], call.env["workers"])
+    marginal = battery.run(call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
+                           call.env["workers"], extras=search_extras(call))
     return {"marginal.parquet": marginal.tests, "state.json": state_doc(marginal.state),
             "marginal-part.parquet": tests_part(marginal.state.tests)}
 
@@ -100,7 +137,8 @@ def _skeleton(call: StageCall) -> dict[str, Any]:
     state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
     call.inputs.pop("marginal-part.parquet")
     outcome = skeleton.run(
-        call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,
+        call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,
+        extras=search_extras(call),
         max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
         context=call.env["workers"], checkpoint=call.work, progress=rep.level,
     )
@@ -111,7 +149,7 @@ def _skeleton(call: StageCall) -> dict[str, Any]:
 def _stability(call: StageCall) -> dict[str, Any]:
     sig, cfg, evidence = call["signals"], call.cfg, call["evidence.parquet"]
     res = stability.run(
-        call["codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
+        call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
         resamples=cfg.search.resamples, fraction=cfg.search.resample_fraction, method=cfg.search.resample_method,
         max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
         seed=cfg.test.seed, context=call.env["workers"], threshold=cfg.search.stable_threshold,
@@ -131,6 +169,8 @@ def _stability(call: StageCall) -> dict[str, Any]:
 
 
 _SEARCH = ("test", "search.max_order", "search.orient", "search.collider_rule")
+# what every search stage reads: the variables in time order (with lag copies), their scores and previous windows
+_SEARCH_DATA = ("search-codes.npy", "search-scores.npy", "search-prev.npy", "timeline.json", "signals", "knowledge")
 
 # The stages in order. A new stage is one entry here plus its function above (see DEVELOPERS.md).
 STAGES: tuple[Stage, ...] = (
@@ -138,17 +178,20 @@ STAGES: tuple[Stage, ...] = (
           writes=("ingest.parquet", "ingest-rejected.parquet", "ingest.json")),
     Stage("clean", _clean, reads=("ingest.parquet", "ingest-rejected.parquet", "ingest.json"),
           settings=("clean", "columns"),
-          writes=("clean.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
+          writes=("clean.parquet", "clean-times.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("discretise", _discretise,
           reads=("clean.parquet", "quarantined.parquet", "clean-meta.json", "cleaning.json", "reuse_levels"),
           settings=("discretise", "test.missing"),
           writes=("discretised.parquet", "codes.npy", "levels.json", "discretise.json"),
           carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
-    Stage("battery", _battery, reads=("codes.npy", "signals", "knowledge"), settings=("test",),
+    Stage("timeline", _timeline,
+          reads=("clean.parquet", "clean-times.parquet", "discretised.parquet", "levels.json"), settings=("time", "discretise.default", "columns"),
+          writes=("timeline.parquet", "search-codes.npy", "search-scores.npy", "search-prev.npy", "timeline.json")),
+    Stage("battery", _battery, reads=_SEARCH_DATA, settings=("test",),
           writes=("marginal.parquet", "marginal-part.parquet", "state.json")),
-    Stage("skeleton", _skeleton, reads=("codes.npy", "signals", "knowledge", "marginal-part.parquet", "state.json"),
+    Stage("skeleton", _skeleton, reads=(*_SEARCH_DATA, "marginal-part.parquet", "state.json"),
           settings=_SEARCH, writes=("evidence.parquet", "tests.parquet"), resumable=True),
-    Stage("stability", _stability, reads=("codes.npy", "signals", "knowledge", "evidence.parquet"),
+    Stage("stability", _stability, reads=(*_SEARCH_DATA, "evidence.parquet"),
           settings=(*_SEARCH, "search.resamples", "search.resample_fraction", "search.resample_method",
                     "search.stable_threshold", "test.seed"),
           writes=("stability.parquet", "stability.json")),

@@ -11,7 +11,7 @@ from pipeline.errors import ConfigError
 def test_defaults_validate():
     """The empty configuration is valid and has the documented defaults."""
     cfg = load_config(None)
-    assert cfg.test.method == "g"
+    assert cfg.test.method == "auto"
     assert cfg.test.alpha == "auto" and cfg.search.max_order == "auto"
     assert cfg.parallel.jobs == 1
     assert cfg.discretise.default == "auto"
@@ -39,7 +39,7 @@ def test_out_of_range_value_names_key_and_value():
 
 def test_wrong_choice_names_allowed_values():
     """A method that does not exist is refused, naming the allowed ones."""
-    with pytest.raises(ConfigError, match=r"`test.method` = 'fisher'.*'g', 'chi2' or 'permutation'"):
+    with pytest.raises(ConfigError, match=r"`test.method` = 'fisher'.*'auto', 'g', 'chi2', 'permutation' or 'gcm'"):
         load_config(None, ["test.method=fisher"])
 
 

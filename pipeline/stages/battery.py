@@ -10,7 +10,7 @@ import pandas as pd
 from ..independence.engine import EngineSettings
 from ..parallel import ParallelContext
 from ..search.knowledge import Knowledge
-from ..search.skeleton import SearchState, pc_stable_skeleton
+from ..search.skeleton import SearchState, SignalExtras, pc_stable_skeleton
 from ._evidence import tests_frame
 
 __all__ = ["Marginal", "run"]
@@ -31,12 +31,13 @@ def run(
     settings: EngineSettings,
     knowledge: Knowledge,
     context: ParallelContext | None = None,
+    extras: SignalExtras | None = None,
 ) -> Marginal:
     """Test every pair that is not forbidden with the empty conditioning set."""
     captured: list[SearchState] = []
     pc_stable_skeleton(
         data, names, cards, settings, max_order=0, knowledge=knowledge, context=context,
-        on_level=captured.append,
+        on_level=captured.append, extras=extras,
     )
     if captured:
         state = captured[-1]

@@ -16,7 +16,7 @@ from ..parallel import ParallelContext
 from ..runs import atomic_write_json
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation, orient
-from ..search.skeleton import SearchState, SkeletonResult, TestRecord, pc_stable_skeleton
+from ..search.skeleton import SearchState, SignalExtras, SkeletonResult, TestRecord, pc_stable_skeleton
 from ._evidence import evidence_frame, records_from_part, tests_frame, tests_part
 
 __all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
@@ -113,6 +113,7 @@ def run(
     checkpoint: Path | None = None,
     stability: dict[tuple[str, str], float] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    extras: SignalExtras | None = None,
 ) -> SearchOutcome:
     """Go on from the marginal battery to the full skeleton.
 
@@ -134,13 +135,13 @@ def run(
 
     skeleton = pc_stable_skeleton(
         data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
-        resume=state, on_level=save, progress=progress,
+        resume=state, on_level=save, progress=progress, extras=extras,
     )
     orientation = None
     records = list(skeleton.tests)
     phases = ["battery" if r.level == 0 else "skeleton" for r in records]
     if orient_graph:
-        engine = CIEngine(data, names, cards, settings)
+        engine = extras.engine(data, names, cards, settings, None) if extras is not None else CIEngine(data, names, cards, settings)
         asked: dict[tuple[str, str, tuple[str, ...]], bool] = {}
 
         def independent(a: str, c: str, s: tuple[str, ...]) -> bool:

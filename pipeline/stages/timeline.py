@@ -64,6 +64,20 @@ class Timed:
     frame: pd.DataFrame
     summary: dict[str, Any] = field(default_factory=dict)
 
+    def aligned_frame(self) -> pd.DataFrame:
+        """``timeline.parquet``: one row per coded row in file order (as ``discretised.parquet``) with
+        ``series`` and ``order`` (window number within the series; consecutive windows differ by 1) when
+        a time column is known, and the raw values of the numeric signals."""
+        back = np.empty_like(self.order)
+        back[self.order] = np.arange(self.order.size)
+        out = self.frame.iloc[back].reset_index(drop=True)
+        if self.timeline is None:
+            return out.drop(columns=["row", "series", "time", "previous"])
+        window_ns = max(float(self.summary.get("window_seconds") or 0.0), 1e-9) * 1e9
+        first = out.groupby("series")["time"].transform("min")
+        out.insert(1, "order", np.round((out["time"] - first) / window_ns).astype(np.int64))
+        return out.drop(columns=["row", "previous"])
+
     @property
     def own_past(self) -> list[bool]:
         """Whether each variable's own previous window enters its tests (not for lag copies)."""
@@ -210,8 +224,11 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
         timeline = None
     signals = [c for c in codes.columns if cfg.time.test_series or c not in series]
     base_codes = [codes[c].to_numpy()[order] for c in signals]
-    base_scores = [normal_scores(table[c].to_numpy(dtype=np.float64)[order]) if kinds.get(c) == "numeric" else None
-                   for c in signals]
+    # a numeric signal is tested on its values unless the configuration asks for bins (then its codes)
+    binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
+    as_numbers = cfg.discretise.default == "auto"
+    base_scores = [normal_scores(table[c].to_numpy(dtype=np.float64)[order])
+                   if kinds.get(c) == "numeric" and as_numbers and c not in binned else None for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
         rho = persistence(c, s, prev)
