@@ -196,17 +196,29 @@ class StageCache:
         return cls(Path(folder) / CACHE_FOLDER)
 
     def open(self) -> "StageCache":
-        """Create the cache folder (with its marker), or check that an existing one is edgeproof's."""
+        """Create the cache folder (with its marker), or check that an existing one is edgeproof's.
+
+        The folder is made complete under a temporary name and renamed into place, so a run starting
+        at the same moment never sees a cache folder without its marker.
+        """
         marker = self.root / _CACHE_MARKER
+        note = "The stage cache of edgeproof runs written beside this folder. Safe to delete as a whole; runs recompute what is missing.\n"
+        if not marker.is_file() and not self.root.exists():
+            self.root.parent.mkdir(parents=True, exist_ok=True)
+            tmp = Path(tempfile.mkdtemp(prefix=f"{self.root.name}.", suffix=".tmp", dir=self.root.parent))
+            os.chmod(tmp, 0o777 & ~_UMASK)  # as an ordinary mkdir would make it
+            atomic_write_text(tmp / _CACHE_MARKER, note)
+            try:
+                os.rename(tmp, self.root)
+            except OSError:  # another run made it first
+                shutil.rmtree(tmp, ignore_errors=True)
         if not marker.is_file():
-            if self.root.exists() and any(p.name != ".locks" for p in self.root.iterdir()):
+            if not self.root.is_dir() or any(self.root.iterdir()):
                 raise ConfigError(
                     f"`{self.root}` exists but is not an edgeproof stage cache (no {_CACHE_MARKER} file); "
                     "move it away or write the run elsewhere."
                 )
-            self.root.mkdir(parents=True, exist_ok=True)
-            atomic_write_text(marker, "The stage cache of edgeproof runs written beside this folder. "
-                              "Safe to delete as a whole; runs recompute what is missing.\n")
+            atomic_write_text(marker, note)  # an empty folder of that name
         return self
 
     def entry(self, stage: str, key: str) -> Path:
