@@ -118,7 +118,9 @@ def test_html_escapes_hostile_names(report_dir):
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
     assert "<img" not in text
     assert "&lt;img src=x onerror=alert(1)&gt;" in text  # server-side html.escape and SVG text
-    assert "\\u003cimg src=x onerror=alert(1)\\u003e" in text  # inside the JSON block
+    assert 'data-a="&lt;img src=x onerror=alert(1)&gt;"' in text  # in the row's filter attribute
+    block = re.search(r'id="edgeproof-data">(.*?)</script>', text, re.DOTALL).group(1)
+    assert "<" not in block and ">" not in block and "&" not in block  # JSON escapes them
     assert "=1+2" in text and "Synthetic &lt;run&gt; &amp; co" in text
 
 
@@ -131,18 +133,49 @@ def test_html_has_no_external_references(report_dir):
     assert "<svg" in text and "<?xml" not in text and "<!DOCTYPE svg" not in text
 
 
-def test_embedded_data_one_row_per_pair_and_all_tests(report_dir):
-    """The JSON block has one record per evidence pair and every test, matched in either order."""
+def _rows(html_text: str) -> list[str]:
+    return re.findall(r'<tr class="pair[^"]*"[^>]*>.*?</tr>', html_text, re.DOTALL)
+
+
+def test_rows_are_in_the_page_linked_first_and_tests_embedded(report_dir):
+    """The table rows are real HTML (one per pair, linked pairs first by p-value); every test is in the JSON block."""
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
-    data = _embedded(text)
+    rows = _rows(text)
     ev = _evidence()
-    assert len(data["pairs"]) == len(ev)
-    assert [(p["a"], p["b"]) for p in data["pairs"]] == list(zip(ev["var_a"], ev["var_b"]))
+    assert len(rows) == len(ev)
+    ids = [int(re.search(r'data-pair="(\d+)"', r).group(1)) for r in rows]
+    assert sorted(ids) == list(range(len(ev)))
+    outcomes = ["linked" if 'class="pair linked' in r else "separated" for r in rows]
+    assert outcomes == ["linked"] * 4 + ["separated"] * 2
+    assert ids[:4] == [3, 0, 5, 2]  # linked, by p-value: 1e-12, 0.003, 0.01, 0.2
+    data = _embedded(text)
     assert sum(len(v) for v in data["tests"].values()) == len(_tests())
     assert len(data["tests"]["0"]) == 3  # EVIL-alpha tests, one written as (alpha, EVIL)
     assert data["tests"]["0"][2]["given_text"] == "{beta, " + QUOTY + "}"
-    reading = data["pairs"][1]["reading"]
-    assert reading.startswith("separated: independent given {alpha} (p = 0.410")
+    separated = rows[ids.index(1)]
+    assert "separated: no evidence of dependence given {alpha} (p = 0.410" in separated
+    assert "independent" not in re.sub(r"<[^>]+>", "", separated)
+
+
+def test_honest_numbers_floor_near_alpha_and_labels(tmp_path):
+    """p-values below 1e-12 read "< 1e-12"; a pair decided near alpha carries a visible mark; V is labelled unconditioned."""
+    if shutil.which("dot") is None:
+        pytest.skip("Graphviz `dot` is not installed")
+    ev = _evidence()
+    ev.loc[3, "pvalue"] = 1e-30  # alpha-beta
+    ev.loc[1, "pvalue"] = 0.06  # EVIL-beta separated at 0.06: within a factor 2 of alpha 0.05
+    files = run(ev, _tests(), _context(), tmp_path)
+    text = files["report.html"].read_text(encoding="utf-8")
+    rows = {int(re.search(r'data-pair="(\d+)"', r).group(1)): r for r in _rows(text)}
+    shown = re.sub(r' data-v="[^"]*"', "", rows[3])  # the sort key keeps the value itself
+    assert ">&lt; 1e-12<" in shown and "p &lt; 1e-12" in shown and "e-30" not in shown
+    assert 'class="near"' in rows[1] and "near alpha" in rows[1]
+    assert 'class="near"' not in rows[0]
+    assert "Cram\u00e9r&#x27;s V, unconditioned" in text or "Cramér&#x27;s V, unconditioned" in text
+    csv_rows = list(csv.reader(io.StringIO(files["evidence.csv"].read_text(encoding="utf-8"))))
+    col = {h: i for i, h in enumerate(csv_rows[0])}
+    near = {(r[col["signal A"]], r[col["signal B"]]): r[col["near alpha"]] for r in csv_rows[1:]}
+    assert near[(EVIL, "beta")] == "yes" and near[("alpha", "beta")] == "no"
 
 
 def test_dot_escapes_labels_and_renders(report_dir):
@@ -157,19 +190,28 @@ def test_dot_escapes_labels_and_renders(report_dir):
     assert "<img" not in svg and "&lt;img src=x onerror=alert(1)&gt;" in svg
 
 
-def test_edge_styles_distinguish_weak_sparse_and_required(report_dir):
-    """Sparse edges are dotted, weak ones dashed, required ones bold double, oriented ones have arrows."""
+def test_edge_styles_show_strength_and_sparse_is_a_marker(report_dir):
+    """Line style shows strength (weak dashed, required double); a sparse pair keeps its style and gets a marker."""
     dot = (report_dir[0] / "graph.dot").read_text(encoding="utf-8")
-    edges = [line for line in dot.splitlines() if " -> " in line and "[" in line and "label=<<TABLE" not in line]
+    edges = [line for line in dot.splitlines() if " -> " in line and "[" in line]
     assert len(edges) == 4  # the four linked pairs
-    by_tip = {re.search(r"tooltip=\"(.*?) \u2014", e).group(1): e for e in edges}
-    assert "style=dotted" in by_tip["&lt;img src=x onerror=alert(1)&gt;"] or any(
-        "style=dotted" in e and "sparse" in e for e in edges)
+    sparse = next(e for e in edges if "flags: sparse" in e)
+    assert "style=dotted" not in dot
+    assert "style=dashed" in sparse  # its q-value 0.2 is above alpha: weak
+    assert "\u25c7" in sparse  # the sparse marker on the line
     required = next(e for e in edges if "required" in e)
     assert "style=bold" in required and ":invis:" in required and "dir=none" in required
+    assert "\u25c7" not in required
     oriented = [e for e in edges if "dir=forward" in e]
     assert len(oriented) == 2
-    assert "Legend" in dot
+
+
+def test_page_key_draws_line_samples(report_dir):
+    """The graph's key on the page is drawn with SVG lines (dashed, double), not with characters."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    key = re.search(r'<div class="key">.*?</div>', text, re.DOTALL).group(0)
+    assert key.count("<line ") >= 6 and 'stroke-dasharray="7 4"' in key
+    assert "\u2501" not in text and "\u254d" not in text  # no box-drawing pseudo-lines
 
 
 def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
@@ -177,9 +219,9 @@ def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
     raw = (report_dir[0] / "evidence.csv").read_text(encoding="utf-8")
     rows = list(csv.reader(io.StringIO(raw)))
     header = rows[0]
-    assert header[:3] == ["signal A", "signal B", "linked"]
-    assert header[-2:] == ["verdict", "comment"]
-    assert all(r[-1] == "" and r[-2] == "" for r in rows[1:])
+    assert header[:5] == ["signal A", "signal B", "outcome", "verdict", "comment"]
+    assert all(r[3] == "" and r[4] == "" for r in rows[1:])
+    assert {r[2] for r in rows[1:]} == {"linked", "separated"}
     col = {h: i for i, h in enumerate(header)}
     first = rows[1]
     assert first[col["levels of A"]] == "'=1+2 | plain"
@@ -190,7 +232,7 @@ def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
             assert not cell or cell[0] not in "=+-@\t\r" or re.fullmatch(r"-?[\d.]+(e-?\d+)?", cell)
     assert len(rows) == 1 + len(_evidence())
     # a reviewer fills in two cells, one of them formula-like
-    rows[1][-2], rows[1][-1] = "confirm", neutralise("=SUM(A1) is what I think")
+    rows[1][3], rows[1][4] = "confirm", neutralise("=SUM(A1) is what I think")
     buf = io.StringIO()
     csv.writer(buf).writerows(rows)
     path = tmp_path / "reviewed.csv"
@@ -231,7 +273,7 @@ def test_truth_comparison_counts(report_dir):
     """With a known graph the page shows recovered, missed and extra counts (1 and 2 of 3; 2 extra)."""
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
     assert "<b>2</b> of 3 true links recovered, <b>1</b> missed, <b>2</b> extra" in text
-    assert text.count("<svg") == 2
+    assert text.count('<svg class="sample"') == 9 and text.count("<svg") == 11  # two graphs, two keys
 
 
 def test_missing_dot_is_a_clear_error(tmp_path, monkeypatch):
@@ -276,9 +318,9 @@ def test_review_verdicts_show_in_table_and_csv(tmp_path):
     """A review passed in the context is carried into the page and the CSV verdict/comment cells."""
     review = {("alpha", "beta"): {"verdict": "confirm", "comment": "=known from incident drills"}}
     files = run(_evidence(), _tests(), _context(review=review), tmp_path)
-    data = _embedded(files["report.html"].read_text(encoding="utf-8"))
-    row = next(p for p in data["pairs"] if (p["a"], p["b"]) == ("alpha", "beta"))
-    assert "Reviewer: confirm (=known from incident drills)" in row["reading"]
+    text = files["report.html"].read_text(encoding="utf-8")
+    row = next(r for r in _rows(text) if 'data-pair="3"' in r)  # alpha - beta
+    assert "Reviewer: confirm (=known from incident drills)" in row
     back = read_review_file(files["evidence.csv"])
     hit = back[(back.var_a == "alpha") & (back.var_b == "beta")].iloc[0]
     assert (hit.verdict, hit.comment) == ("confirm", "=known from incident drills")
