@@ -14,13 +14,11 @@ import json
 import math
 import re
 from collections.abc import Mapping, Sequence
-from pathlib import Path
 from typing import Any
 
 import networkx as nx
 import pandas as pd
 
-from ..errors import DataError
 from ._common import direction, plain
 
 __all__ = [
