@@ -464,3 +464,41 @@ def test_page_in_headless_chromium(report_dir):
             browser.close()
     assert dialogs == []
     assert all(u.startswith(("file:", "data:", "about:")) for u in requests)
+
+
+@needs_dot
+def test_render_report_html_adds_what_changed(tmp_path):
+    """render_report_html re-renders a finished run folder's page with the changes since the previous night."""
+    from pipeline.stages.report import render_report_html
+
+    ctx = _context(truth_edges=None)
+    run(_evidence(), _tests(), ctx, tmp_path)
+    _evidence().to_parquet(tmp_path / "evidence.parquet")
+    _tests().to_parquet(tmp_path / "tests.parquet")
+    (tmp_path / "levels.json").write_text(json.dumps({"levels": ctx.levels}))
+    (tmp_path / "manifest.json").write_text(json.dumps({
+        "config": {"name": "checkout-api", "report": {}, "test": {"alpha": 0.05}, "search": {"orient": True}},
+        "night": "2026-11-04", "rows": {"read": 410, "kept": 400}, "stages": {"report": {"seconds": 0.5}},
+        "warnings": [], "review": [],
+    }))
+    assert "What changed since the previous night" not in (tmp_path / "report.html").read_text()  # ad hoc run
+    page = render_report_html(tmp_path, None)
+    text = page.read_text(encoding="utf-8")
+    assert "<title>checkout-api \u2014 night of 2026-11-04</title>" in text
+    assert "No previous night to compare with." in text
+    changes = {
+        "previous_run": "2026-11-03",
+        "added": [{"var_a": "alpha", "var_b": "beta", "pvalue": 1e-9, "qvalue": 1e-8}],
+        "removed": [],
+        "unconfirmed": [{"var_a": "beta", "var_b": QUOTY, "pvalue": 0.3, "qvalue": 0.6}],
+        "mechanism_changes": [{"signal": EVIL, "pvalue": 0.001, "qvalue": 0.004}],
+        "diff_href": "../compare-2026-11-03-2026-11-04/diff.html",
+        "history_href": "../history.html",
+    }
+    text = render_report_html(tmp_path, changes).read_text(encoding="utf-8")
+    section = text[text.index('<section id="changes">'):text.index("</section>", text.index('<section id="changes">'))]
+    assert "Compared with <b>2026-11-03</b>: <b>1</b> links added, <b>0</b> removed and <b>1</b> signals" in section
+    assert "alpha \u2014 beta" in section and "&lt;img src=x onerror=alert(1)&gt;" in section and "<img" not in text
+    assert 'href="../compare-2026-11-03-2026-11-04/diff.html"' in section and 'href="../history.html"' in section
+    assert text.index('id="changes"') < text.index('id="graph"') < text.index('id="details"')  # timings last
+    assert len(_rows(text)) == len(_evidence())
