@@ -121,40 +121,26 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def _review_knowledge(cfg: Config, names: list[str]) -> tuple[list[tuple[str, str]], list[tuple[str, str]], list[dict[str, Any]], list[str]]:
-    """Pairs confirmed and rejected in a reviewed evidence file, their comments, and what no longer fits."""
+def _review_knowledge(cfg: Config, names: list[str]) -> tuple[list, list, list[dict[str, Any]], list[str]]:
+    """Pairs confirmed and rejected in `knowledge.review_file`, their comments, and warning lines."""
     path = cfg.knowledge.review_file
-    if not path:
-        return [], [], [], []
-    p = Path(path)
-    if not p.is_file():
-        raise ConfigError(f"`knowledge.review_file` = `{p}` does not exist; fix the path or remove the key.")
-    from .report._exports import read_review_file
+    if path and not Path(path).is_file():
+        raise ConfigError(f"`knowledge.review_file` = `{path}` does not exist; fix the path or remove the key.")
+    from .report import review_knowledge
 
-    review = read_review_file(p)
-    known = set(names)
-    confirm, reject, comments, warnings = [], [], [], []
-    for row in review.to_dict("records"):
-        verdict = str(row.get("verdict") or "").strip().lower()
-        a, b = str(row.get("var_a")), str(row.get("var_b"))
-        if not verdict:
-            continue
-        missing = [n for n in (a, b) if n not in known]
-        if missing:
-            warnings.append(
-                f"Review verdict `{verdict}` on `{a}` - `{b}` was not applied: "
-                f"{', '.join(f'`{m}`' for m in missing)} is not among this run's signals."
-            )
-            continue
-        if verdict == "confirm":
-            confirm.append((a, b))
-        elif verdict == "reject":
-            reject.append((a, b))
-        else:
-            warnings.append(f"Review verdict `{verdict}` on `{a}` - `{b}` is not `confirm` or `reject`; ignored.")
-            continue
-        comments.append({"var_a": min(a, b), "var_b": max(a, b), "verdict": verdict, "comment": str(row.get("comment") or "")})
-    return confirm, reject, comments, warnings
+    return review_knowledge(path, names)
+
+
+def _night_name(source: Path, run_name: str | None) -> str:
+    """The night a run stands for: the nightly run name, else the snapshot's name without suffixes."""
+    from .nightly import snapshot_run_name
+
+    if run_name:
+        return run_name
+    try:
+        return snapshot_run_name(source.name)
+    except DataError:  # a reserved or odd name: still a fine title
+        return source.stem
 
 
 def _truth_edges(cfg: Config, input_path: Path) -> list[tuple[str, str]] | None:
@@ -252,7 +238,7 @@ def run_pipeline(
         # the workers start in the background while the data stages run
         with parallel_context(par.jobs, par.backend, par.scheduler) as workers:
             runner = Runner(list(STAGES), cache, cfg, __version__, env={"workers": workers, "reporter": rep}, on_event=rep.event)
-            manifest = _run_plan(runner, source, files, partial, rep)
+            manifest = _run_plan(runner, source, files, partial, rep, run_name)
         manifest.update(started=started, finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                         seconds=round(time.perf_counter() - t_start, 3), out_dir=str(final.resolve()))
         atomic_write_json(partial / "manifest.json", manifest)
@@ -292,7 +278,8 @@ def _lag_pairs(time_doc: dict[str, Any]) -> list[tuple[str, str]]:
     return out
 
 
-def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: Reporter) -> dict[str, Any]:
+def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: Reporter,
+              run_name: str | None = None) -> dict[str, Any]:
     """Pull the plan's artifacts through the runner and assemble the run folder and its manifest."""
     cfg = runner.cfg
     fp = fingerprint_paths(files, _input_root(source))
@@ -335,12 +322,13 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     knowledge = Knowledge.build(
         names,
         required=[*cfg.knowledge.required, *confirm],
-        forbidden=[*cfg.knowledge.forbidden, *reject, *_lag_pairs(time_doc)],
+        forbidden=[*cfg.knowledge.forbidden, *_lag_pairs(time_doc)],
+        rejected=reject,  # tested as usual, removed at the end (the report says when data disagree)
         tiers=cfg.knowledge.tiers,
     )
     runner.provide("signals", {"names": names, "cards": cards}, key=[names, cards])
     runner.provide("knowledge", knowledge, key=[sorted(knowledge.required), sorted(knowledge.forbidden),
-                                                 [list(t) for t in knowledge.tiers]])
+                                                 [list(t) for t in knowledge.tiers], sorted(knowledge.rejected)])
     atomic_write_parquet(out / "marginal.parquet", runner.get("marginal.parquet"))
     evidence = runner.get("evidence.parquet")
     tests = runner.get("tests.parquet")
@@ -382,6 +370,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "auto_settings": auto_settings,
         "time": {k: v for k, v in time_doc.items() if k not in ("names", "cards", "source", "lag", "numeric")},
         "review": comments,
+        "night": _night_name(source, run_name),
         "warnings": warnings,
         "status": "ok",
     }
@@ -391,7 +380,10 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             warnings.append(str(stability_info["caveat"]))
     with runner.timed("report"):
         ctx_report = report.ReportContext(
-            title=cfg.report.title or f"edgeproof run on {source.name}",
+            title=cfg.report.title or cfg.name or "edgeproof run",
+            night=manifest["night"],
+            show_changes=bool(run_name),
+            near_alpha_factor=float(cfg.search.near_alpha_factor),
             summary={
                 "input": str(source), "rows": rows, "columns_kept": kept, "columns_dropped": dropped,
                 "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},

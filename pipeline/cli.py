@@ -37,40 +37,54 @@ def _common(p: argparse.ArgumentParser, config_required: bool = False) -> None:
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every subcommand."""
     parser = _Parser(prog="edgeproof", description="Which operational signals are directly linked, night after night.")
-    parser.add_argument("--version", action="version", version=f"edgeproof {__version__}")
-    sub = parser.add_subparsers(dest="command", parser_class=_Parser)
+    parser.add_argument("--version", action="version", version=f"edgeproof {__version__}",
+                        help="print the version and exit")
+    sub = parser.add_subparsers(dest="command", parser_class=_Parser, title="commands", metavar="COMMAND")
 
-    p = sub.add_parser("run", help="run every stage on one extract")
+    p = sub.add_parser("run", help="run every stage on one extract",
+                       description="Run every stage on one extract: one row per time window and node, one column "
+                                   "per signal. Writes a run folder with report.html and evidence.csv.")
     _common(p)
-    p.add_argument("--input", required=True, help="a file, a glob or a folder of partitions")
+    p.add_argument("--input", required=True, help="a file (CSV, Parquet, JSON lines), a glob or a folder of partitions")
     p.add_argument("--out", help="run folder to write (default: a new folder under the output root)")
 
-    p = sub.add_parser("probe", help="one test on demand: is X independent of Y given the set?")
+    p = sub.add_parser("probe", help="one test on demand: are X and Y dependent given a set of signals?",
+                       description="One test on demand through the same data stages as a run; prints the "
+                                   "outcome in plain words with the alpha it used.")
     _common(p)
-    p.add_argument("--input", required=True)
-    p.add_argument("x")
-    p.add_argument("y")
-    p.add_argument("--given", default="", help="comma-separated conditioning set")
-    p.add_argument("--method", choices=["g", "chi2", "permutation"])
-    p.add_argument("--json", action="store_true", help="print JSON")
+    p.add_argument("--input", required=True, help="the extract to test on (as for `run`)")
+    p.add_argument("x", help="the first signal (a column name)")
+    p.add_argument("y", help="the second signal (a column name)")
+    p.add_argument("--given", default="", help="comma-separated conditioning set (signals held fixed)")
+    p.add_argument("--method", choices=["g", "chi2", "permutation"],
+                   help="g: G-test; chi2: Pearson chi-square; permutation: G with permuted rows (default: test.method)")
+    p.add_argument("--json", action="store_true", help="print the result as JSON instead of sentences")
 
-    p = sub.add_parser("nightly", help="process every snapshot in the inbox that has no successful run yet")
+    p = sub.add_parser("nightly", help="process every snapshot in the inbox that has no successful run yet",
+                       description="Process every snapshot in nightly.inbox that has no successful run yet, "
+                                   "then move the `latest` and `previous` pointers. Safe to start every hour.")
     _common(p, config_required=True)
 
-    p = sub.add_parser("compare", help="what changed between two runs")
+    p = sub.add_parser("compare", help="what changed between two runs",
+                       description="What changed between two runs: links added, removed, kept and turned, "
+                                   "with the evidence before and after.")
     _common(p)
-    p.add_argument("run_a", help="run folder, or `previous` with --config")
-    p.add_argument("run_b", help="run folder, or `latest` with --config")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("run_a", help="the earlier run: a run folder, or `previous` with --config")
+    p.add_argument("run_b", help="the later run: a run folder, or `latest` with --config")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
     p.add_argument("--fail-on-change", type=int, default=None, metavar="N", help="exit 6 when more than N edges changed")
     p.add_argument("--out", help="folder for diff.parquet, diff.csv, diff.svg, diff.html")
 
-    p = sub.add_parser("history", help="every edge over the last nights")
+    p = sub.add_parser("history", help="every link over the last nights",
+                       description="Every link over the last nights: on which nights it was linked, its p-value "
+                                   "and effect per night. Writes history.csv and history.html.")
     _common(p, config_required=True)
-    p.add_argument("--last", type=int, default=None, metavar="N")
+    p.add_argument("--last", type=int, default=None, metavar="N", help="show only the N most recent runs")
     p.add_argument("--out", help="folder for history.html and history.csv")
 
-    p = sub.add_parser("demo", help="generate the invented demo scenario and run the nightly pipeline on it")
+    p = sub.add_parser("demo", help="generate the invented demo scenario and run the nightly pipeline on it",
+                       description="Generate the invented demo scenario (four nights of an online service with a "
+                                   "known graph), run the nightly pipeline on it, and compare two nights.")
     _common(p)
     p.add_argument("--data", default="outputs/demo", help="where the demo snapshots are written")
     return parser
@@ -109,8 +123,9 @@ def _cmd_probe(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(result, sort_keys=True, default=str))
     else:
-        for k in ("x", "y", "given", "method", "statistic", "dof", "pvalue", "n", "cmi_bits", "cramers_v", "independent", "flags"):
-            print(f"{k:>12}: {result[k]}")
+        from .probe import plain_words
+
+        print(plain_words(result))
     return 0
 
 

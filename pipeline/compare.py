@@ -710,9 +710,9 @@ def _dot(cmp: Comparison) -> str:
 
     g = graphviz.Digraph("diff", graph_attr={
         "label": f"Links: {cmp.run_a} (before) -> {cmp.run_b} (after)", "labelloc": "t",
-        "fontname": "Helvetica", "rankdir": "LR", "fontsize": "12",
-    }, node_attr={"shape": "box", "fontname": "Helvetica", "fontsize": "11"},
-        edge_attr={"fontname": "Helvetica", "fontsize": "10"})
+        "fontname": "Helvetica", "fontsize": "14", "nodesep": "0.3", "ranksep": "0.45", "pad": "0.2",
+    }, node_attr={"shape": "box", "style": "rounded", "fontname": "Helvetica", "fontsize": "14"},
+        edge_attr={"fontname": "Helvetica", "fontsize": "12"})
     nodes = sorted(set(cmp.table["var_a"].astype(str)) | set(cmp.table["var_b"].astype(str)))
     ids = {n: f"n{i}" for i, n in enumerate(nodes)}  # plain ids; names only ever appear as labels
     for n in nodes:
@@ -736,16 +736,7 @@ def _dot(cmp: Comparison) -> str:
             label = graphviz.escape(f"kept, turned (was {r.orientation_a})") if r.orientation_changed else ""
             g.edge(tail, head, label=label, style="solid", penwidth="1", color="#333333",
                    dir=direction)
-    with g.subgraph(name="cluster_legend") as key:
-        key.attr(label="Key", fontsize="10", style="rounded")
-        key.node("_k1", "solid line: kept", shape="plaintext")
-        key.node("_k2", "thick line, '+ added': new in after (supported change)", shape="plaintext")
-        key.node("_k3", "dashed line, '- removed': gone in after (supported change)", shape="plaintext")
-        key.edge("_k1", "_k2", style="invis")
-        key.node("_k4", "dotted line, '?': a flip the change test does not support", shape="plaintext")
-        key.edge("_k2", "_k3", style="invis")
-        key.edge("_k3", "_k4", style="invis")
-    return g.source
+    return g.source  # the key, drawn with line samples, is on diff.html (`_KEY`)
 
 
 def _direction(
@@ -806,18 +797,34 @@ def _text_summary(cmp: Comparison) -> str:
     return "\n".join(lines)
 
 
-_CSS = """
-body{font-family:Helvetica,Arial,sans-serif;margin:1.5em;color:#111;max-width:70em}
-table{border-collapse:collapse;margin:.5em 0 1.5em}th,td{border:1px solid #777;padding:.2em .5em;
-text-align:left}th{background:#ddd}td.num{text-align:right;font-variant-numeric:tabular-nums}
-.figure svg{max-width:100%;height:auto}.warn{border:2px dashed #444;padding:.4em .8em}
-"""
+_TERMS = (
+    ("added", "linked after, not linked before."),
+    ("removed", "linked before, separated after."),
+    ("kept", "linked on both nights."),
+    ("turned", "a kept link whose arrow changed (reversed, or became directed or undirected)."),
+    ("structural Hamming distance", "added + removed + turned: how many pairs' lines differ between the two "
+                                    "graphs."),
+    ("p-value", "the p-value each night's outcome rests on (the test that separated the pair, or a linked "
+                "pair's weakest test)."),
+    ("effect (CMI bits)", "conditional mutual information given the conditioning set: how strongly the pair "
+                          "is linked."),
+    ("conditioning set", "the signals held fixed in the deciding test."),
+    ("near alpha", "the deciding p-value lies within a factor of alpha on either side: the outcome could "
+                   "flip by chance on another night."),
+)
 
 
 def _html(cmp: Comparison, svg: Optional[str]) -> str:
     """A self-contained page: summary, picture, and the tables; every string escaped."""
+    from .report._page import LineSample, line_key, page_css, terms_list
+
     e = html.escape
     fmt = lambda v: "" if not math.isfinite(_float(v)) else f"{_float(v):.3g}"  # noqa: E731
+    key = line_key([
+        LineSample("kept", color="#333333", width=1.5),
+        LineSample("+ added: new in after", color="#1f4e9c", width=4),
+        LineSample("\u2212 removed: gone in after", color="#9c1f1f", width=2, dash="7 4"),
+    ])
 
     def table(headers: list[str], rows: list[list[str]]) -> str:
         if not rows:
@@ -831,17 +838,18 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
     t = cmp.table
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        f"<title>{e(f'Compare {cmp.run_a} with {cmp.run_b}')}</title><style>{_CSS}</style></head><body>",
-        f"<h1>{e(cmp.run_a)} (before) &rarr; {e(cmp.run_b)} (after)</h1>",
-        f"<p>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.mechanism_changes)} "
+        f"<title>{e(f'Compare {cmp.run_a} with {cmp.run_b}')}</title><style>{page_css()}</style></head><body>",
+        f"<header class='page'><h1>{e(cmp.run_a)} (before) &rarr; {e(cmp.run_b)} (after)</h1>",
+        f"<p class='sub'>{len(cmp.added)} added, {len(cmp.removed)} removed, {len(cmp.mechanism_changes)} "
         f"mechanism changes (supported); {len(cmp.unconfirmed)} unconfirmed flips; {len(cmp.kept)} "
-        f"kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p>",
+        f"kept, {len(cmp.orientation_changes)} turned; structural Hamming distance {cmp.shd}.</p></header><main>",
     ]
     for w in cmp.warnings:
         parts.append(f"<p class='warn'>Warning: {e(w)}.</p>")
     if svg is not None:
         start = svg.find("<svg")
-        parts.append(f"<div class='figure'>{svg[start:] if start >= 0 else ''}</div>")
+        parts.append(f"<figure class='figure'>{svg[start:] if start >= 0 else ''}{key}</figure>")
+    parts.append("<h2>Words on this page</h2>" + terms_list(_TERMS))
     heads = ["", "pair", "change p", "change q", "effect before", "effect after", "measure",
              "tested given", "p-value before", "p-value after"]
 
@@ -870,30 +878,30 @@ def _html(cmp: Comparison, svg: Optional[str]) -> str:
     parts.append("<h2>Unconfirmed flips</h2><p>Linked on one night only, but the change test does not "
                  "support a change: most likely chance near alpha.</p>")
     parts.append(table(heads, flip_rows(["unconfirmed"])))
-    parts.append("<h2>Orientation changes among kept links</h2>")
+    parts.append("<h2>Links turned (arrow changed)</h2>")
     parts.append(table(["before", "after"], [[td(o["before"]), td(o["after"])]
                                              for o in cmp.orientation_changes]))
     kept = t[t["change"] == "kept"]
     parts.append("<h2>Evidence for kept links</h2>")
     parts.append(table(
-        ["pair", "p-value before", "p-value after", "cmi bits before", "cmi bits after"],
+        ["pair", "p-value before", "p-value after", "effect before (bits)", "effect after (bits)"],
         [[td(f"{r.var_a} -- {r.var_b}"), tn(r.pvalue_a), tn(r.pvalue_b), tn(r.cmi_bits_a),
           tn(r.cmi_bits_b)] for r in kept.itertuples(index=False)],
     ))
     f_a, f_b = cmp.near_alpha_factor
     parts.append(
-        f"<h2>Verdicts resting on a test near alpha</h2><p>p within a factor {e(f'{f_a:g}')} of "
+        f"<h2>Outcomes resting on a test near alpha</h2><p>p within a factor {e(f'{f_a:g}')} of "
         f"alpha = {e(f'{cmp.alpha[0]:g}')} (before) / {e(f'{f_b:g}')} of "
         f"{e(f'{cmp.alpha[1]:g}')} (after), on either side.</p>"
     )
     parts.append(table(
-        ["pair", "linked before", "linked after", "p-value before", "p-value after", "near in",
+        ["pair", "outcome before", "outcome after", "p-value before", "p-value after", "near in",
          "change p", "change q"],
-        [[td(f"{n['pair'][0]} -- {n['pair'][1]}"), td("yes" if n["linked_a"] else "no"),
-          td("yes" if n["linked_b"] else "no"), tn(n["pvalue_a"]), tn(n["pvalue_b"]),
+        [[td(f"{n['pair'][0]} -- {n['pair'][1]}"), td("linked" if n["linked_a"] else "separated"),
+          td("linked" if n["linked_b"] else "separated"), tn(n["pvalue_a"]), tn(n["pvalue_b"]),
           td(", ".join("before" if k == "a" else "after" for k in n["near_in"])),
           tn(n.get("change_pvalue")), tn(n.get("change_qvalue"))]
          for n in cmp.near_alpha],
     ))
-    parts.append("</body></html>\n")
+    parts.append("</main></body></html>\n")
     return "".join(parts)

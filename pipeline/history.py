@@ -5,17 +5,18 @@ in name order, which for date-named snapshots is time order. An *edge* is a pair
 one of the runs shown. Per night, a pair is *linked*, *not linked* (with the p-value of the test that
 removed it), or *not tested* (a column of the pair was not kept that night).
 
-``history.csv`` has one row per edge: ``var_a, var_b, nights_present, nights, first_seen,
-last_seen, pattern, changes`` and one ``pvalue_<night>`` column per night. ``pattern`` spells the
-nights with ``#`` linked, ``.`` not linked, ``?`` not tested. ``history.html`` shows the same as an
-edge-by-night grid whose cells carry a symbol (filled disc linked, open circle not linked, dash not
-tested) and the p-value, so it reads in grey-scale print; a night where the edge appeared or
-disappeared has a thick border and a ``+`` or ``-``.
+``history.csv`` has one row per link: ``var_a, var_b, nights_present, nights, first_seen,
+last_seen, pattern, changes``, then one ``pvalue_<night>`` and one ``cmi_bits_<night>`` (effect size,
+so a link that weakens shows) column per night. ``pattern`` spells the nights with ``L`` linked,
+``s`` separated, ``?`` not tested (letters, so a spreadsheet shows them as they are).
+``history.html`` shows the same as a link-by-night grid whose cells carry a symbol (filled disc
+linked, open circle separated, dash not tested), the p-value and the effect, so it reads in
+grey-scale print; a night where the link appeared or disappeared has a thick border and a ``+`` or
+``-``.
 """
 
 from __future__ import annotations
 
-import html
 import math
 import os
 import sys
@@ -30,7 +31,7 @@ from .errors import EXIT_OK, ConfigError, DataError
 
 __all__ = ["History", "run", "edge_history", "history_main"]
 
-_LINKED, _UNLINKED, _UNTESTED = "#", ".", "?"
+_LINKED, _UNLINKED, _UNTESTED = "L", "s", "?"
 
 
 @dataclass(frozen=True)
@@ -86,7 +87,7 @@ def run(cfg: Config, config_path: Optional[Path] = None, last: Optional[int] = N
         tested[name] = _tested_flips(root / name / "changes.json")
         path = root / name / "evidence.parquet"
         try:
-            evidence.append((name, pd.read_parquet(path, columns=["var_a", "var_b", "linked", "pvalue"])))
+            evidence.append((name, pd.read_parquet(path, columns=["var_a", "var_b", "linked", "pvalue", "cmi_bits"])))
         except Exception as err:  # noqa: BLE001 - pyarrow raises several types
             raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
     return edge_history(evidence, {k: v for k, v in tested.items() if v is not None})
@@ -125,29 +126,32 @@ def edge_history(
     >>> h = edge_history([("d1", ev(True, 1e-5)), ("d2", ev(False, 0.3)), ("d3", ev(True, 1e-4))])
     >>> r = h.row("x", "y")
     >>> r["pattern"], r["nights_present"], r["first_seen"], r["last_seen"], r["changes"]
-    ('#.#', 2, 'd1', 'd3', '-d2; +d3')
+    ('LsL', 2, 'd1', 'd3', '-d2; +d3')
     """
     nights = tuple(name for name, _ in runs)
     if len(set(nights)) != len(nights):
         raise DataError(f"Night names repeat in {list(nights)}; every run needs its own name.")
-    per_night: list[dict[tuple[str, str], tuple[bool, float]]] = []
+    per_night: list[dict[tuple[str, str], tuple[bool, float, float]]] = []
     for _name, ev in runs:
         cells = {}
-        for a, b, linked, p in zip(ev["var_a"], ev["var_b"], ev["linked"], ev["pvalue"]):
+        effect = ev["cmi_bits"] if "cmi_bits" in ev.columns else [float("nan")] * len(ev)
+        for a, b, linked, p, c in zip(ev["var_a"], ev["var_b"], ev["linked"], ev["pvalue"], effect):
             a, b = str(a), str(b)
-            cells[(a, b) if a <= b else (b, a)] = (bool(linked), _float(p))
+            cells[(a, b) if a <= b else (b, a)] = (bool(linked), _float(p), _float(c))
         per_night.append(cells)
-    edges = sorted({pair for cells in per_night for pair, (linked, _) in cells.items() if linked})
+    edges = sorted({pair for cells in per_night for pair, (linked, _, _) in cells.items() if linked})
     rows = []
     for pair in edges:
-        marks, pvalues = [], []
+        marks, pvalues, effects = [], [], []
         for cells in per_night:
             if pair in cells:
                 marks.append(_LINKED if cells[pair][0] else _UNLINKED)
                 pvalues.append(cells[pair][1])
+                effects.append(cells[pair][2])
             else:
                 marks.append(_UNTESTED)
                 pvalues.append(float("nan"))
+                effects.append(float("nan"))
         present = [n for n, m in zip(nights, marks) if m == _LINKED]
         changes = []
         for i in range(1, len(marks)):
@@ -161,9 +165,10 @@ def edge_history(
             "pattern": "".join(marks), "changes": "; ".join(changes),
         }
         row.update({f"pvalue_{n}": p for n, p in zip(nights, pvalues)})
+        row.update({f"cmi_bits_{n}": c for n, c in zip(nights, effects)})
         rows.append(row)
     columns = ["var_a", "var_b", "nights_present", "nights", "first_seen", "last_seen", "pattern",
-               "changes"] + [f"pvalue_{n}" for n in nights]
+               "changes"] + [f"pvalue_{n}" for n in nights] + [f"cmi_bits_{n}" for n in nights]
     return History(nights, pd.DataFrame(rows, columns=columns))
 
 
@@ -196,8 +201,15 @@ def _float(value: object) -> float:
 
 
 def _fmt(p: float) -> str:
-    """A p-value in three significant digits ('' for NaN)."""
+    """A number in three significant digits ('' for NaN)."""
     return "" if not math.isfinite(p) else f"{p:.3g}"
+
+
+def _fmt_p(p: float) -> str:
+    """``= 0.003`` or ``< 1e-12`` ('' for NaN)."""
+    from .report._common import p_is
+
+    return "" if not math.isfinite(p) else p_is(p)[2:]
 
 
 def _atomic_text(path: Path, text: str) -> None:
@@ -215,8 +227,8 @@ def _text(hist: History) -> str:
     width = max(len(f"{a} -- {b}") for a, b in zip(t["var_a"], t["var_b"]))
     lines = [
         f"Links over {len(hist.nights)} nights ({hist.nights[0]} .. {hist.nights[-1]}); "
-        f"pattern: # linked, . not linked, ? not tested",
-        f"{'edge':<{width}}  {'pattern':<{max(7, len(hist.nights))}}  nights  first       last        changes",
+        f"pattern: L linked, s separated, ? not tested",
+        f"{'link':<{width}}  {'pattern':<{max(7, len(hist.nights))}}  nights  first       last        changes",
     ]
     for r in t.itertuples(index=False):
         lines.append(
@@ -226,21 +238,12 @@ def _text(hist: History) -> str:
     return "\n".join(lines)
 
 
-_CSS = """
-body{font-family:Helvetica,Arial,sans-serif;margin:1.5em;color:#111}
-table{border-collapse:collapse;margin:.5em 0 1.5em}th,td{border:1px solid #888;padding:.2em .45em}
-th{background:#ddd;font-weight:600}td.cell{text-align:center;min-width:4.5em;line-height:1.15}
-td.linked{background:#d0d0d0}td.unlinked{background:#fff}td.untested{background:#f3f3f3;color:#555}
-td.flip{border:3px solid #000}td.doubt{border:2px dotted #000}.sym{font-size:1.25em}.p{font-size:.78em;display:block}
-td.num{text-align:right}
-"""
-
-
 def _html(hist: History) -> str:
-    """Self-contained page: the edge-by-night grid and the summary table, every string escaped."""
-    e = html.escape
+    """Self-contained page: the link-by-night grid and the summary table, every string escaped."""
+    from .report._page import e, page_css, terms_list
+
     t = hist.table
-    symbols = {_LINKED: ("\u25cf", "linked"), _UNLINKED: ("\u25cb", "unlinked"),
+    symbols = {_LINKED: ("\u25cf", "linked"), _UNLINKED: ("\u25cb", "separated"),
                _UNTESTED: ("\u2013", "untested")}
     head = "".join(f"<th>{e(n)}</th>" for n in hist.nights)
     rows = []
@@ -252,28 +255,39 @@ def _html(hist: History) -> str:
             flip = prev != mark and _UNTESTED not in (prev, mark)
             doubtful = flip and f"?{'+' if mark == _LINKED else '-'}{night}" in r["changes"].split("; ")
             sign = ("?" if doubtful else "") + ("+" if mark == _LINKED else "\u2212") if flip else ""
-            p = _fmt(r[f"pvalue_{night}"])
-            title = f"{r['var_a']} -- {r['var_b']} on {night}: {cls}" + (f", p = {p}" if p else "")
+            p, c = _fmt_p(r[f"pvalue_{night}"]), _fmt(r.get(f"cmi_bits_{night}", float("nan")))
+            title = (f"{r['var_a']} \u2014 {r['var_b']} on {night}: {cls}" + (f", p {p}" if p else "")
+                     + (f", effect {c} bits" if c else ""))
             cells.append(
                 f"<td class='cell {cls}{(' doubt' if doubtful else ' flip') if flip else ''}' title='{e(title)}'>"
-                f"<span class='sym'>{e(sign)}{sym}</span><span class='p'>{e(p)}</span></td>"
+                f"<span class='sym'>{e(sign)}{sym}</span><span class='p'>{e(f'p {p}' if p else '')}</span>"
+                f"<span class='p'>{e(f'{c} bits' if c else '')}</span></td>"
             )
         rows.append(
-            f"<tr><th scope='row'>{e(r['var_a'])} &ndash; {e(r['var_b'])}</th>{''.join(cells)}"
+            f"<tr><th scope='row'>{e(r['var_a'])} &mdash; {e(r['var_b'])}</th>{''.join(cells)}"
             f"<td class='num'>{r['nights_present']}/{r['nights']}</td><td>{e(r['first_seen'])}</td>"
             f"<td>{e(r['last_seen'])}</td><td>{e(r['changes'])}</td></tr>"
         )
     title = f"Link history, {hist.nights[0]} to {hist.nights[-1]}" if hist.nights else "Link history"
+    terms = terms_list([
+        ("\u25cf linked", "the pair was linked that night (shaded cell)."),
+        ("\u25cb separated", "a test found no evidence of dependence given a conditioning set that night."),
+        ("\u2013 not tested", "a signal of the pair was not kept that night (see that run's cleaning.json)."),
+        ("p", "the p-value the night's outcome rests on (< 1e-12 below that)."),
+        ("bits", "the effect size: conditional mutual information given the conditioning set, in bits; a "
+                 "link whose bits fall night after night is weakening even while it stays linked."),
+        ("+ / \u2212, thick border", "the night the link appeared or disappeared and the change test supports it."),
+        ("? dotted border", "a flip the change test does not support (most likely chance near alpha)."),
+        ("nights", "on how many of the nights shown the pair was linked."),
+    ])
     return "".join([
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        f"<title>{e(title)}</title><style>{_CSS}</style></head><body><h1>{e(title)}</h1>",
-        "<p>Key: \u25cf linked (shaded) &nbsp; \u25cb not linked &nbsp; \u2013 not tested "
-        "(a column was not kept). The small number is the p-value the night's verdict rests on. "
-        "A thick border with + or \u2212 marks the night the link appeared or disappeared and the change "
-        "test supports it; a dotted border with ? marks a flip the change test does not support "
-        "(most likely chance).</p>",
-        f"<table><thead><tr><th>edge</th>{head}<th>nights</th><th>first seen</th><th>last seen</th>"
+        f"<title>{e(title)}</title><style>{page_css()}</style></head><body>",
+        f"<header class='page'><h1>{e(title)}</h1><p class='sub'>Every pair linked on at least one of "
+        f"{len(hist.nights)} nights.</p></header><main>",
+        "<h2>What the cells say</h2>", terms,
+        f"<table class='grid'><thead><tr><th>link</th>{head}<th>nights</th><th>first seen</th><th>last seen</th>"
         f"<th>changes</th></tr></thead><tbody>{''.join(rows)}</tbody></table>",
         "" if rows else "<p>No links in these runs.</p>",
-        "</body></html>\n",
+        "</main></body></html>\n",
     ])

@@ -12,7 +12,7 @@ from .errors import ConfigError
 from .independence.engine import CIEngine, EngineSettings
 from .stages import clean, discretise, ingest
 
-__all__ = ["probe"]
+__all__ = ["plain_words", "probe"]
 
 
 def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given: Sequence[str] = ()) -> dict[str, Any]:
@@ -33,8 +33,34 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
         raise ConfigError("x, y and the --given signals must all be different.")
     cards = [max(1, len(disc.levels[n])) for n in names]
     cfg, _ = resolve_auto(cfg, len(disc.codes), cards)
-    engine = CIEngine(_coded_matrix(disc.codes), names, cards, EngineSettings.from_config(cfg))
+    settings = EngineSettings.from_config(cfg)
+    engine = CIEngine(_coded_matrix(disc.codes), names, cards, settings)
     r = engine.test(x, y, list(given))
     out = r.to_dict()
     out["flags"] = list(r.flags)
+    out["alpha"] = float(settings.alpha)
     return out
+
+
+def plain_words(result: dict[str, Any]) -> str:
+    """The probe's result as a sentence, with the alpha it used."""
+    from .report._common import fmt_num, p_is
+
+    given = "{" + ", ".join(result["given"]) + "}" if result["given"] else "no conditioning set"
+    alpha = float(result["alpha"])
+    if result["independent"]:
+        outcome = f"no evidence of dependence given {given} ({p_is(result['pvalue'])} > alpha = {alpha:g})"
+    else:
+        outcome = f"dependent given {given} ({p_is(result['pvalue'])} \u2264 alpha = {alpha:g})"
+    if result.get("policy_applied"):
+        outcome += f"; decided by the sparse-table policy `{result.get('policy')}`, not by the p-value"
+    lines = [
+        f"{result['x']} and {result['y']}: {outcome}.",
+        f"Test: {result['method']}, statistic {fmt_num(result['statistic'])} on {result['dof']} degrees of freedom, "
+        f"{result['n']} rows.",
+        f"Effect given the set: {fmt_num(result['cmi_bits'])} bits (conditional mutual information); "
+        f"association ignoring other signals: Cram\u00e9r's V {fmt_num(result['cramers_v'])}.",
+    ]
+    if result.get("flags"):
+        lines.append("Read with care: " + ", ".join(str(f) for f in result["flags"]) + ".")
+    return "\n".join(lines)

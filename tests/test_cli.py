@@ -141,3 +141,35 @@ def test_json_log_lines_when_not_a_terminal(tmp_path, capsys):
     done = {rec["name"] for rec in lines if rec["event"] == "stage" and rec.get("status") in ("done", "reused")}
     assert {"ingest", "clean", "discretise", "battery", "skeleton", "report"} <= done
     assert any(rec["event"] == "level" for rec in lines)
+
+
+def test_probe_prints_plain_words_with_alpha(capsys):
+    """`edgeproof probe` without --json prints a sentence with the outcome and the alpha it used (ASIA data)."""
+    data = benchmark_path("asia") / "data.txt"
+    names = data.read_text().splitlines()[0].split()
+    code = main(["probe", "--input", str(data), names[0], names[1], "--set", "discretise.default=categorical",
+                 "--set", "test.alpha=0.01"])
+    assert code == 0
+    out = capsys.readouterr().out
+    first = out.splitlines()[0]
+    assert first.startswith(f"{names[0]} and {names[1]}: ") and "alpha = 0.01" in first
+    assert ("dependent given no conditioning set" in first) or ("no evidence of dependence" in first)
+    assert "independent" not in out and "rows" in out
+
+
+def test_every_command_and_option_has_help():
+    """Every subcommand, option and argument of `edgeproof --help` carries a line of text."""
+    import argparse
+
+    from pipeline.cli import build_parser
+
+    parser = build_parser()
+    subs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    helps = {c.dest: c.help for c in subs._choices_actions}
+    assert set(helps) == set(subs.choices) and all(helps.values())
+    for name, sub in [("edgeproof", parser), *subs.choices.items()]:
+        for action in sub._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                continue
+            assert action.help and action.help != argparse.SUPPRESS, f"{name} {action.option_strings or action.dest}"
+        assert name == "edgeproof" or sub.description, name

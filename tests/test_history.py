@@ -42,12 +42,17 @@ def test_planted_change_shows_on_the_right_night(demo_root, capsys):
     k = nights.index(night)
     gained = tuple(scenario.changed_edge) in {tuple(e) for e in scenario.true_edges_by_snapshot[night]}
     assert row["changes"] == ("+" if gained else "-") + night
-    expected = "." * k + "#" * (4 - k) if gained else "#" * k + "." * (4 - k)
+    expected = "s" * k + "L" * (4 - k) if gained else "L" * k + "s" * (4 - k)
     assert row["pattern"] == expected
     assert f"{min(a, b)} -- {max(a, b)}" in printed
     page = (root / "history.html").read_text()
     assert "\u25cf" in page and "\u25cb" in page and "flip" in page
     assert [c for c in table.columns if c.startswith("pvalue_")] == [f"pvalue_{n}" for n in nights]
+    assert [c for c in table.columns if c.startswith("cmi_bits_")] == [f"cmi_bits_{n}" for n in nights]
+    assert row[f"cmi_bits_{nights[-1 if gained else 0]}"] > 0  # the effect size of the night it was linked
+    text = (root / "history.csv").read_text()
+    assert not any(set(cell) == {"#"} for line in text.splitlines() for cell in line.split(","))
+    assert "bits" in page and "structural" not in page
 
 
 def test_last_n_limits_the_nights(demo_root, tmp_path):
@@ -72,10 +77,10 @@ def test_history_rules_on_invented_nights():
     ]
     h = history.edge_history(nights)
     xy, xz = h.row("x", "y"), h.row("z", "x")
-    assert (xy["pattern"], xy["nights_present"], xy["first_seen"], xy["last_seen"]) == ("#.?#", 2, "d1", "d4")
+    assert (xy["pattern"], xy["nights_present"], xy["first_seen"], xy["last_seen"]) == ("Ls?L", 2, "d1", "d4")
     assert xy["changes"] == "-d2"  # the untested night d3 is not counted as a change
     assert pd.isna(xy["pvalue_d3"]) and xy["pvalue_d2"] == 0.2
-    assert (xz["pattern"], xz["changes"], xz["first_seen"]) == (".###", "+d2", "d2")
+    assert (xz["pattern"], xz["changes"], xz["first_seen"]) == ("sLLL", "+d2", "d2")
     with pytest.raises(DataError, match="repeat"):
         history.edge_history([("d1", nights[0][1]), ("d1", nights[1][1])])
 

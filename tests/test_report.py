@@ -118,7 +118,9 @@ def test_html_escapes_hostile_names(report_dir):
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
     assert "<img" not in text
     assert "&lt;img src=x onerror=alert(1)&gt;" in text  # server-side html.escape and SVG text
-    assert "\\u003cimg src=x onerror=alert(1)\\u003e" in text  # inside the JSON block
+    assert 'data-a="&lt;img src=x onerror=alert(1)&gt;"' in text  # in the row's filter attribute
+    block = re.search(r'id="edgeproof-data">(.*?)</script>', text, re.DOTALL).group(1)
+    assert "<" not in block and ">" not in block and "&" not in block  # JSON escapes them
     assert "=1+2" in text and "Synthetic &lt;run&gt; &amp; co" in text
 
 
@@ -131,18 +133,49 @@ def test_html_has_no_external_references(report_dir):
     assert "<svg" in text and "<?xml" not in text and "<!DOCTYPE svg" not in text
 
 
-def test_embedded_data_one_row_per_pair_and_all_tests(report_dir):
-    """The JSON block has one record per evidence pair and every test, matched in either order."""
+def _rows(html_text: str) -> list[str]:
+    return re.findall(r'<tr class="pair[^"]*"[^>]*>.*?</tr>', html_text, re.DOTALL)
+
+
+def test_rows_are_in_the_page_linked_first_and_tests_embedded(report_dir):
+    """The table rows are real HTML (one per pair, linked pairs first by p-value); every test is in the JSON block."""
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
-    data = _embedded(text)
+    rows = _rows(text)
     ev = _evidence()
-    assert len(data["pairs"]) == len(ev)
-    assert [(p["a"], p["b"]) for p in data["pairs"]] == list(zip(ev["var_a"], ev["var_b"]))
+    assert len(rows) == len(ev)
+    ids = [int(re.search(r'data-pair="(\d+)"', r).group(1)) for r in rows]
+    assert sorted(ids) == list(range(len(ev)))
+    outcomes = ["linked" if 'class="pair linked' in r else "separated" for r in rows]
+    assert outcomes == ["linked"] * 4 + ["separated"] * 2
+    assert ids[:4] == [3, 0, 5, 2]  # linked, by p-value: 1e-12, 0.003, 0.01, 0.2
+    data = _embedded(text)
     assert sum(len(v) for v in data["tests"].values()) == len(_tests())
     assert len(data["tests"]["0"]) == 3  # EVIL-alpha tests, one written as (alpha, EVIL)
     assert data["tests"]["0"][2]["given_text"] == "{beta, " + QUOTY + "}"
-    reading = data["pairs"][1]["reading"]
-    assert reading.startswith("separated: independent given {alpha} (p = 0.410")
+    separated = rows[ids.index(1)]
+    assert "separated: no evidence of dependence given {alpha} (p = 0.410" in separated
+    assert "independent" not in re.sub(r"<[^>]+>", "", separated)
+
+
+def test_honest_numbers_floor_near_alpha_and_labels(tmp_path):
+    """p-values below 1e-12 read "< 1e-12"; a pair decided near alpha carries a visible mark; V is labelled unconditioned."""
+    if shutil.which("dot") is None:
+        pytest.skip("Graphviz `dot` is not installed")
+    ev = _evidence()
+    ev.loc[3, "pvalue"] = 1e-30  # alpha-beta
+    ev.loc[1, "pvalue"] = 0.06  # EVIL-beta separated at 0.06: within a factor 2 of alpha 0.05
+    files = run(ev, _tests(), _context(), tmp_path)
+    text = files["report.html"].read_text(encoding="utf-8")
+    rows = {int(re.search(r'data-pair="(\d+)"', r).group(1)): r for r in _rows(text)}
+    shown = re.sub(r' data-v="[^"]*"', "", rows[3])  # the sort key keeps the value itself
+    assert ">&lt; 1e-12<" in shown and "p &lt; 1e-12" in shown and "e-30" not in shown
+    assert 'class="near"' in rows[1] and "near alpha" in rows[1]
+    assert 'class="near"' not in rows[0]
+    assert "Cram\u00e9r&#x27;s V, unconditioned" in text or "Cramér&#x27;s V, unconditioned" in text
+    csv_rows = list(csv.reader(io.StringIO(files["evidence.csv"].read_text(encoding="utf-8"))))
+    col = {h: i for i, h in enumerate(csv_rows[0])}
+    near = {(r[col["signal A"]], r[col["signal B"]]): r[col["near alpha"]] for r in csv_rows[1:]}
+    assert near[(EVIL, "beta")] == "yes" and near[("alpha", "beta")] == "no"
 
 
 def test_dot_escapes_labels_and_renders(report_dir):
@@ -157,19 +190,28 @@ def test_dot_escapes_labels_and_renders(report_dir):
     assert "<img" not in svg and "&lt;img src=x onerror=alert(1)&gt;" in svg
 
 
-def test_edge_styles_distinguish_weak_sparse_and_required(report_dir):
-    """Sparse edges are dotted, weak ones dashed, required ones bold double, oriented ones have arrows."""
+def test_edge_styles_show_strength_and_sparse_is_a_marker(report_dir):
+    """Line style shows strength (weak dashed, required double); a sparse pair keeps its style and gets a marker."""
     dot = (report_dir[0] / "graph.dot").read_text(encoding="utf-8")
-    edges = [line for line in dot.splitlines() if " -> " in line and "[" in line and "label=<<TABLE" not in line]
+    edges = [line for line in dot.splitlines() if " -> " in line and "[" in line]
     assert len(edges) == 4  # the four linked pairs
-    by_tip = {re.search(r"tooltip=\"(.*?) \u2014", e).group(1): e for e in edges}
-    assert "style=dotted" in by_tip["&lt;img src=x onerror=alert(1)&gt;"] or any(
-        "style=dotted" in e and "sparse" in e for e in edges)
+    sparse = next(e for e in edges if "flags: sparse" in e)
+    assert "style=dotted" not in dot
+    assert "style=dashed" in sparse  # its q-value 0.2 is above alpha: weak
+    assert "\u25c7" in sparse  # the sparse marker on the line
     required = next(e for e in edges if "required" in e)
     assert "style=bold" in required and ":invis:" in required and "dir=none" in required
+    assert "\u25c7" not in required
     oriented = [e for e in edges if "dir=forward" in e]
     assert len(oriented) == 2
-    assert "Legend" in dot
+
+
+def test_page_key_draws_line_samples(report_dir):
+    """The graph's key on the page is drawn with SVG lines (dashed, double), not with characters."""
+    text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
+    key = re.search(r'<div class="key">.*?</div>', text, re.DOTALL).group(0)
+    assert key.count("<line ") >= 6 and 'stroke-dasharray="7 4"' in key
+    assert "\u2501" not in text and "\u254d" not in text  # no box-drawing pseudo-lines
 
 
 def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
@@ -177,9 +219,9 @@ def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
     raw = (report_dir[0] / "evidence.csv").read_text(encoding="utf-8")
     rows = list(csv.reader(io.StringIO(raw)))
     header = rows[0]
-    assert header[:3] == ["signal A", "signal B", "linked"]
-    assert header[-2:] == ["verdict", "comment"]
-    assert all(r[-1] == "" and r[-2] == "" for r in rows[1:])
+    assert header[:5] == ["signal A", "signal B", "outcome", "verdict", "comment"]
+    assert all(r[3] == "" and r[4] == "" for r in rows[1:])
+    assert {r[2] for r in rows[1:]} == {"linked", "separated"}
     col = {h: i for i, h in enumerate(header)}
     first = rows[1]
     assert first[col["levels of A"]] == "'=1+2 | plain"
@@ -190,7 +232,7 @@ def test_csv_neutralises_formulas_and_reads_back(report_dir, tmp_path):
             assert not cell or cell[0] not in "=+-@\t\r" or re.fullmatch(r"-?[\d.]+(e-?\d+)?", cell)
     assert len(rows) == 1 + len(_evidence())
     # a reviewer fills in two cells, one of them formula-like
-    rows[1][-2], rows[1][-1] = "confirm", neutralise("=SUM(A1) is what I think")
+    rows[1][3], rows[1][4] = "confirm", neutralise("=SUM(A1) is what I think")
     buf = io.StringIO()
     csv.writer(buf).writerows(rows)
     path = tmp_path / "reviewed.csv"
@@ -231,7 +273,7 @@ def test_truth_comparison_counts(report_dir):
     """With a known graph the page shows recovered, missed and extra counts (1 and 2 of 3; 2 extra)."""
     text = (report_dir[0] / "report.html").read_text(encoding="utf-8")
     assert "<b>2</b> of 3 true links recovered, <b>1</b> missed, <b>2</b> extra" in text
-    assert text.count("<svg") == 2
+    assert text.count('<svg class="sample"') == 9 and text.count("<svg") == 11  # two graphs, two keys
 
 
 def test_missing_dot_is_a_clear_error(tmp_path, monkeypatch):
@@ -276,9 +318,9 @@ def test_review_verdicts_show_in_table_and_csv(tmp_path):
     """A review passed in the context is carried into the page and the CSV verdict/comment cells."""
     review = {("alpha", "beta"): {"verdict": "confirm", "comment": "=known from incident drills"}}
     files = run(_evidence(), _tests(), _context(review=review), tmp_path)
-    data = _embedded(files["report.html"].read_text(encoding="utf-8"))
-    row = next(p for p in data["pairs"] if (p["a"], p["b"]) == ("alpha", "beta"))
-    assert "Reviewer: confirm (=known from incident drills)" in row["reading"]
+    text = files["report.html"].read_text(encoding="utf-8")
+    row = next(r for r in _rows(text) if 'data-pair="3"' in r)  # alpha - beta
+    assert "Reviewer: confirm (=known from incident drills)" in row
     back = read_review_file(files["evidence.csv"])
     hit = back[(back.var_a == "alpha") & (back.var_b == "beta")].iloc[0]
     assert (hit.verdict, hit.comment) == ("confirm", "=known from incident drills")
@@ -299,31 +341,104 @@ def _chromium() -> str:
     return path
 
 
+_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+         "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+
+
+@pytest.fixture(scope="module")
+def long_report(tmp_path_factory):
+    """A report of 16 signals (120 pairs): long enough to scroll, with a night and a service name."""
+    if shutil.which("dot") is None:
+        pytest.skip("Graphviz `dot` is not installed (make setup installs it)")
+    names = ["latency_ms", "error_burst", "cache_hit_rate", "queue_depth"] + [f"signal_{i:02d}" for i in range(12)]
+    rng = np.random.default_rng(3)
+    rows = []
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            linked = (a, b) in {("latency_ms", "error_burst"), ("cache_hit_rate", "latency_ms")} or rng.random() < 0.1
+            p = float(rng.random() * 1e-4) if linked else float(0.06 + rng.random() * 0.9)
+            rows.append({"var_a": min(a, b), "var_b": max(a, b), "linked": linked, "pvalue": p, "given": "",
+                         "n_tests": 2, "cmi_bits": 0.1, "qvalue": p, "sparse": False, "knowledge": "",
+                         "orientation": "", "flags": "", "explanation": ""})
+    out = tmp_path_factory.mktemp("long")
+    run(pd.DataFrame(rows), _tests().iloc[:0],
+        ReportContext(title="checkout-api", night="2026-11-04", levels={n: ["lo", "hi"] for n in names},
+                      show_changes=True, png=False), out)
+    return out / "report.html", len(rows), sum(r["linked"] for r in rows)
+
+
+@pytest.mark.browser
+def test_long_report_in_headless_chromium(long_report):
+    """With JS off the rows are there; with JS on the header row sticks, a pair filter finds one pair, the
+    night is in the title, and at 1,024 px the outcome, flags and plain-words columns are on screen."""
+    sync_api = pytest.importorskip("playwright.sync_api", reason="the `playwright` package is not installed")
+    exe = _chromium()
+    page_path, n_pairs, n_linked = long_report
+    with sync_api.sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=exe, headless=True, args=_ARGS)
+        try:
+            plain = browser.new_context(java_script_enabled=False, viewport={"width": 1024, "height": 800})
+            page = plain.new_page()
+            page.goto(page_path.as_uri())
+            assert page.locator("#pairs-body tr.pair").count() == n_pairs
+            first = page.locator("#pairs-body tr.pair").first
+            assert "linked" in first.get_attribute("class")  # linked pairs first, with no script
+            assert page.locator("#pairs-body button.expand").count() == 0  # the script adds those
+            plain.close()
+
+            page = browser.new_page(viewport={"width": 1024, "height": 800})
+            page.goto(page_path.as_uri())
+            assert page.title() == "checkout-api \u2014 night of 2026-11-04"
+            assert "night of 2026-11-04" in page.locator("h1").inner_text()
+            assert "No previous night to compare with" in page.locator("#changes").inner_text()
+            # the first screen: what changed, above the fold
+            assert page.locator("#changes").bounding_box()["y"] < 800
+            head = page.locator('#pairs thead th[data-key="outcome"]')
+            for key in ("outcome", "flags", "reading"):
+                box = page.locator(f'#pairs thead th[data-key="{key}"]').bounding_box()
+                assert box["x"] >= 0 and box["x"] + box["width"] <= 1024, key
+            # scroll deep into the table: the header row stays at the top of the window
+            page.locator("#pairs-body tr.pair").nth(n_pairs - 10).scroll_into_view_if_needed()
+            box = head.bounding_box()
+            assert abs(box["y"]) < 2, box
+            assert page.locator("#pairs-body tr.pair").nth(2).bounding_box()["y"] < 0  # rows did scroll under it
+            # one name, then a pair in either order
+            page.fill("#pair-filter", "latency")
+            assert page.locator("#pairs-body tr.pair:visible").count() == 15
+            page.fill("#pair-filter", "error latency")
+            visible = page.locator("#pairs-body tr.pair:visible")
+            assert visible.count() == 1
+            assert "error_burst" in visible.first.inner_text() and "latency_ms" in visible.first.inner_text()
+            assert "showing 1 of" in page.locator("#pair-count").inner_text()
+            page.fill("#pair-filter", "")
+            page.click('.controls button[data-show="linked"]')
+            assert page.locator("#pairs-body tr.pair:visible").count() == n_linked
+        finally:
+            browser.close()
+
+
 @pytest.mark.browser
 def test_page_in_headless_chromium(report_dir):
     """In Chromium the table shows one row per pair, sorts, filters, expands a row and shows no alert."""
     sync_api = pytest.importorskip("playwright.sync_api", reason="the `playwright` package is not installed")
     exe = _chromium()
-    args = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-            "--disable-background-networking", "--disable-component-update", "--disable-sync"]
     page_url = (report_dir[0] / "report.html").as_uri()
     dialogs, requests = [], []
     with sync_api.sync_playwright() as pw:
-        browser = pw.chromium.launch(executable_path=exe, headless=True, args=args)
+        browser = pw.chromium.launch(executable_path=exe, headless=True, args=_ARGS)
         try:
             page = browser.new_page(viewport={"width": 1400, "height": 1000})
             page.on("dialog", lambda d: (dialogs.append(d.message), d.dismiss()))
             page.on("request", lambda r: requests.append(r.url))
             page.goto(page_url)
-            rows = page.locator("#pairs-body tr.pair")
+            rows = page.locator("#pairs-body tr.pair:visible")
             assert rows.count() == len(_evidence())
             assert "showing 6 of 6 pairs" in page.locator("#pair-count").inner_text()
 
             page.click('#pairs th[data-key="p"] button')
-            first_p = rows.nth(0).locator("td").nth(4).inner_text()
-            assert first_p == "1.0e-12"
+            assert rows.nth(0).locator("td.p").inner_text() == "1e-12"
             page.click('#pairs th[data-key="p"] button')
-            assert rows.nth(0).locator("td").nth(4).inner_text() == "0.700"
+            assert rows.nth(0).locator("td.p").inner_text() == "0.700"
             assert page.get_attribute('#pairs th[data-key="p"]', "aria-sort") == "descending"
 
             page.click('.controls button[data-show="separated"]')
@@ -335,7 +450,7 @@ def test_page_in_headless_chromium(report_dir):
             assert rows.count() == 3  # case-insensitive: the three pairs with beta
             page.fill("#pair-filter", "")
 
-            page.click('#pairs-body tr.pair:has(td:text-is("beta")) >> nth=0 >> button.expand')
+            page.click('#pairs-body tr.pair[data-pair="1"] button.expand')
             detail = page.locator("#pairs-body tr.detail")
             assert detail.count() == 1
             assert detail.locator("tbody tr").count() >= 1
@@ -344,12 +459,46 @@ def test_page_in_headless_chromium(report_dir):
             assert page.locator("#pairs-body tr.detail").count() == 2
             # the hostile name is shown as text, never turned into an element
             assert page.locator("#pairs-body img").count() == 0 and page.locator("img").count() == 0
-            assert page.locator(f'#pairs-body td:text-is("{EVIL}")').count() >= 1
-            shot = ROOT / "bench" / "report.png"
-            shot.parent.mkdir(exist_ok=True)
-            page.locator("#evidence").scroll_into_view_if_needed()
-            page.screenshot(path=str(shot), full_page=False)
+            assert page.locator("#pairs-body td.pair", has_text=EVIL).count() >= 1
         finally:
             browser.close()
     assert dialogs == []
     assert all(u.startswith(("file:", "data:", "about:")) for u in requests)
+
+
+@needs_dot
+def test_render_report_html_adds_what_changed(tmp_path):
+    """render_report_html re-renders a finished run folder's page with the changes since the previous night."""
+    from pipeline.stages.report import render_report_html
+
+    ctx = _context(truth_edges=None)
+    run(_evidence(), _tests(), ctx, tmp_path)
+    _evidence().to_parquet(tmp_path / "evidence.parquet")
+    _tests().to_parquet(tmp_path / "tests.parquet")
+    (tmp_path / "levels.json").write_text(json.dumps({"levels": ctx.levels}))
+    (tmp_path / "manifest.json").write_text(json.dumps({
+        "config": {"name": "checkout-api", "report": {}, "test": {"alpha": 0.05}, "search": {"orient": True}},
+        "night": "2026-11-04", "rows": {"read": 410, "kept": 400}, "stages": {"report": {"seconds": 0.5}},
+        "warnings": [], "review": [],
+    }))
+    assert "What changed since the previous night" not in (tmp_path / "report.html").read_text()  # ad hoc run
+    page = render_report_html(tmp_path, None)
+    text = page.read_text(encoding="utf-8")
+    assert "<title>checkout-api \u2014 night of 2026-11-04</title>" in text
+    assert "No previous night to compare with." in text
+    changes = {
+        "previous_run": "2026-11-03",
+        "added": [{"var_a": "alpha", "var_b": "beta", "pvalue": 1e-9, "qvalue": 1e-8}],
+        "removed": [],
+        "unconfirmed": [{"var_a": "beta", "var_b": QUOTY, "pvalue": 0.3, "qvalue": 0.6}],
+        "mechanism_changes": [{"signal": EVIL, "pvalue": 0.001, "qvalue": 0.004}],
+        "diff_href": "../compare-2026-11-03-2026-11-04/diff.html",
+        "history_href": "../history.html",
+    }
+    text = render_report_html(tmp_path, changes).read_text(encoding="utf-8")
+    section = text[text.index('<section id="changes">'):text.index("</section>", text.index('<section id="changes">'))]
+    assert "Compared with <b>2026-11-03</b>: <b>1</b> links added, <b>0</b> removed and <b>1</b> signals" in section
+    assert "alpha \u2014 beta" in section and "&lt;img src=x onerror=alert(1)&gt;" in section and "<img" not in text
+    assert 'href="../compare-2026-11-03-2026-11-04/diff.html"' in section and 'href="../history.html"' in section
+    assert text.index('id="changes"') < text.index('id="graph"') < text.index('id="details"')  # timings last
+    assert len(_rows(text)) == len(_evidence())

@@ -98,6 +98,19 @@ def test_forbidden_pair_is_never_tested():
     assert all(tuple(sorted((t.result.x, t.result.y))) != pair for t in res.tests)
 
 
+def test_rejected_pair_is_tested_then_removed():
+    """A reviewer-rejected pair (ASIA) is tested exactly as without the review, then removed; a rejected pair the
+    tests kept linked is a disagreement, one they separated is not."""
+    codes, names, cards, _ = _load("asia")
+    plain = _run("asia", "g")
+    kept, gone = sorted(plain.edges)[0], sorted(plain.separating_sets)[0]
+    know = Knowledge.build(names, rejected=[kept, gone])
+    res = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), knowledge=know)
+    assert [repr(t.result) for t in res.tests] == [repr(t.result) for t in plain.tests]  # the same tests
+    assert res.edges == plain.edges - {kept} and res.rejected == {kept, gone}
+    assert kept in res.disagreements and gone not in res.disagreements
+
+
 def test_max_order_caps_conditioning_sets():
     """max_order = 1 tries no conditioning set larger than one variable."""
     res = _run("child", "g", max_order=1)

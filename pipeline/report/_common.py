@@ -15,6 +15,8 @@ __all__ = [
     "fmt_num",
     "fmt_p",
     "given_text",
+    "near_alpha",
+    "p_is",
     "pair_key",
     "plain",
     "signal_names",
@@ -37,15 +39,30 @@ def plain(value: Any) -> Any:
     return value
 
 
+P_FLOOR = 1e-12  # smaller p-values are shown as "< 1e-12": the tests' approximations mean no more
+
+
 def fmt_p(p: Any) -> str:
-    """A p-value for reading: three decimals, or two significant digits below 0.001."""
+    """A p-value for reading: three decimals, two significant digits below 0.001, ``< 1e-12`` below that."""
     p = plain(p)
     if p is None:
         return "n/a"
     p = float(p)
-    if p == 0.0:
-        return "< 1e-300"  # below double precision
+    if p < P_FLOOR:
+        return f"< {P_FLOOR:.0e}"
     return f"{p:.2g}" if p < 0.001 else f"{p:.3f}"
+
+
+def p_is(p: Any) -> str:
+    """``p = 0.003`` or ``p < 1e-12``: a p-value inside a sentence."""
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
+def near_alpha(p: Any, alpha: float, factor: float) -> bool:
+    """True when ``alpha / factor < p < alpha * factor`` (a decision another night could flip)."""
+    p = plain(p)
+    return p is not None and factor > 1 and alpha / factor < float(p) < alpha * factor
 
 
 def fmt_num(x: Any, digits: int = 3) -> str:
@@ -72,11 +89,15 @@ def _truthy(value: Any) -> bool:
 
 
 def edge_classes(row: Any, alpha: float) -> list[str]:
-    """Drawing classes of a linked pair: any of ``required``, ``sparse``, ``weak`` (else ``strong``)."""
+    """Drawing classes of a linked pair: any of ``required``, ``sparse``, ``weak`` (else ``strong``).
+
+    The line style shows the strength (``weak`` dashed, ``strong`` solid, ``required`` double);
+    ``sparse`` adds a marker on the line and does not change its style.
+    """
     out = []
     if str(row.get("knowledge", "") or "") == "required":
         out.append("required")
-    if _truthy(row.get("sparse")) or _truthy(row.get("policy_applied")):
+    if _truthy(row.get("sparse")):
         out.append("sparse")
     q = plain(row.get("qvalue"))
     s = plain(row.get("stability"))

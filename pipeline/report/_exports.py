@@ -2,8 +2,8 @@
 
 The CSV is meant to be opened in a spreadsheet. A cell that a spreadsheet would run as a formula
 (text starting with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return) gets a leading apostrophe;
-a cell that is entirely a number stays as it is. `read_review_file` reads a reviewed copy back and
-removes those apostrophes.
+a cell that is entirely a number stays as it is. `pipeline.report._review.read_review_file` reads a
+reviewed copy back and removes those apostrophes.
 """
 
 from __future__ import annotations
@@ -14,13 +14,11 @@ import json
 import math
 import re
 from collections.abc import Mapping, Sequence
-from pathlib import Path
 from typing import Any
 
 import networkx as nx
 import pandas as pd
 
-from ..errors import DataError
 from ._common import direction, plain
 
 __all__ = [
@@ -30,18 +28,19 @@ __all__ = [
     "graphml_bytes",
     "neutralise",
     "node_link_json",
-    "read_review_file",
     "unneutralise",
 ]
 
-# evidence.parquet column -> readable header in evidence.csv (order of the CSV)
+# evidence.parquet column -> readable header in evidence.csv (order of the CSV); the reviewer's
+# `verdict` and `comment` columns come right after the pair and the outcome
 CSV_COLUMNS: dict[str, str] = {
     "var_a": "signal A",
     "var_b": "signal B",
-    "linked": "linked",
+    "linked": "outcome",
     "orientation": "direction",
     "pvalue": "p-value",
-    "qvalue": "q-value",
+    "near_alpha": "near alpha",
+    "qvalue": "q-value (all pairs tested)",
     "given": "conditioning set",
     "level": "conditioning set size",
     "statistic": "statistic",
@@ -50,8 +49,8 @@ CSV_COLUMNS: dict[str, str] = {
     "method": "test",
     "n_tests": "tests run",
     "max_given_size": "largest set tried",
-    "cmi_bits": "effect (CMI bits)",
-    "cramers_v": "Cramer's V",
+    "cmi_bits": "effect given the set (CMI bits)",
+    "cramers_v": "association ignoring other signals (Cramer's V)",
     "stability": "stability",
     "sparse": "sparse",
     "degenerate": "degenerate",
@@ -59,13 +58,14 @@ CSV_COLUMNS: dict[str, str] = {
     "knowledge": "knowledge",
     "data_disagrees": "data disagree",
     "flags": "flags",
-    "explanation": "explanation",
+    "explanation": "in plain words",
 }
+_OUTCOME = {True: "linked", False: "separated"}
 _LEVEL_HEADERS = ("levels of A", "levels of B")
 _REVIEW_HEADERS = ("verdict", "comment")
 _DANGEROUS = ("=", "+", "-", "@", "\t", "\r")
 _NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
-_BOOL_COLUMNS = {"linked", "sparse", "degenerate", "policy_applied", "data_disagrees"}
+_BOOL_COLUMNS = {"sparse", "degenerate", "policy_applied", "data_disagrees", "near_alpha"}
 
 
 def neutralise(cell: str) -> str:
@@ -90,6 +90,8 @@ def _cell(column: str, value: Any) -> str:
     value = plain(value)
     if value is None:
         return ""
+    if column == "linked":
+        return _OUTCOME[bool(value)]
     if column in _BOOL_COLUMNS or isinstance(value, bool):
         return "yes" if bool(value) else "no"
     if isinstance(value, float):
@@ -98,69 +100,26 @@ def _cell(column: str, value: Any) -> str:
 
 
 def evidence_csv(evidence: pd.DataFrame, levels: Mapping[str, Sequence[str]]) -> bytes:
-    """The evidence table for spreadsheet review, ending with `verdict` and `comment` columns.
+    """The evidence table for spreadsheet review: pair, outcome, then the reviewer's `verdict` and
+    `comment` columns, then the numbers.
 
-    Those two are empty unless an earlier review (columns ``review_verdict`` / ``review_comment``)
-    is carried over.
+    `verdict` and `comment` are empty unless an earlier review (columns ``review_verdict`` /
+    ``review_comment``) is carried over; the allowed verdict words are ``confirm`` and ``reject``.
     """
     present = [c for c in CSV_COLUMNS if c in evidence.columns]
-    header = [CSV_COLUMNS[c] for c in present] + list(_LEVEL_HEADERS) + list(_REVIEW_HEADERS)
+    head, rest = present[:3], present[3:]
+    header = ([CSV_COLUMNS[c] for c in head] + list(_REVIEW_HEADERS) + [CSV_COLUMNS[c] for c in rest]
+              + list(_LEVEL_HEADERS))
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
     writer.writerow([neutralise(h) for h in header])
-    for _, row in evidence.iterrows():
-        cells = [_cell(c, row[c]) for c in present]
+    for row in evidence.to_dict("records"):
+        cells = [_cell(c, row[c]) for c in head]
+        cells += [str(plain(row.get("review_verdict")) or ""), str(plain(row.get("review_comment")) or "")]
+        cells += [_cell(c, row[c]) for c in rest]
         cells += [" | ".join(map(str, levels.get(str(row[v]), []))) for v in ("var_a", "var_b")]
-        cells += [str(row.get("review_verdict", "") or ""), str(row.get("review_comment", "") or "")]
         writer.writerow([neutralise(c) for c in cells])
     return buf.getvalue().encode("utf-8")
-
-
-def read_review_file(path: str | Path) -> pd.DataFrame:
-    """Read a reviewed evidence.csv back: columns ``var_a, var_b, verdict, comment`` (strings).
-
-    Parameters
-    ----------
-    path : str or Path
-        A copy of ``evidence.csv`` with the ``verdict`` and ``comment`` columns filled in
-        (headers ``signal A`` / ``signal B``, or ``var_a`` / ``var_b``).
-
-    Returns
-    -------
-    pandas.DataFrame
-        One row per pair in the file, empty strings where the reviewer wrote nothing, with the
-        apostrophes added against formula injection removed.
-
-    Examples
-    --------
-    >>> import tempfile, pathlib
-    >>> p = pathlib.Path(tempfile.mkdtemp()) / "r.csv"
-    >>> _ = p.write_text("signal A,signal B,verdict,comment\\nx,y,keep,'=looks fine\\n")
-    >>> read_review_file(p).to_dict("records")
-    [{'var_a': 'x', 'var_b': 'y', 'verdict': 'keep', 'comment': '=looks fine'}]
-    """
-    p = Path(path)
-    if not p.is_file():
-        raise DataError(f"Review file `{p}` does not exist; check `knowledge.review_file`.")
-    try:
-        frame = pd.read_csv(p, dtype=str, keep_default_na=False, encoding="utf-8-sig")
-    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as err:
-        raise DataError(
-            f"Review file `{p}` is not a readable CSV ({type(err).__name__}); save it as CSV (UTF-8)."
-        ) from err
-    frame.columns = [unneutralise(str(c)).strip() for c in frame.columns]
-    rename = {"signal A": "var_a", "signal B": "var_b"}
-    frame = frame.rename(columns=rename)
-    missing = [c for c in ("var_a", "var_b", "verdict", "comment") if c not in frame.columns]
-    if missing:
-        raise DataError(
-            f"Review file `{p}` lacks column(s) {', '.join(missing)}; keep the `signal A`, "
-            "`signal B`, `verdict` and `comment` headers of evidence.csv."
-        )
-    out = frame[["var_a", "var_b", "verdict", "comment"]].copy()
-    for col in out.columns:
-        out[col] = out[col].map(lambda s: unneutralise(str(s))).astype(object)
-    return out.reset_index(drop=True)
 
 
 def _attr(value: Any) -> Any:

@@ -78,33 +78,6 @@ def _new_graph(name: str, n_nodes: int) -> graphviz.Digraph:
     return g
 
 
-def _legend(orient: bool, alpha: float, truth: bool = False) -> str:
-    rows = [("Legend", "")]
-    if truth:
-        rows += [
-            ("\u2501\u2501\u2501", "in the known graph and recovered"),
-            ("\u254d\u254d\u254d", "in the known graph, missed (dashed)"),
-            ("\u2508\u2508\u2508", "recovered but not in the known graph (dotted)"),
-        ]
-    else:
-        rows += [
-            ("\u2501\u2501\u2501", f"linked, q-value \u2264 {alpha:g} (solid)"),
-            ("\u254d\u254d\u254d", "weak: q-value above alpha, unstable or data disagree (dashed)"),
-            ("\u2508\u2508\u2508", "a test on the pair had a sparse table (dotted)"),
-            ("\u2550\u2550\u2550", "required by expert knowledge (bold double)"),
-            ("", "thicker line: larger effect (CMI, bits)"),
-        ]
-        if orient:
-            rows.append(("\u2192", "arrow: orientation found by the search"))
-    cells = "".join(
-        f'<TR><TD ALIGN="LEFT"><B>{_html_text(a)}</B></TD><TD ALIGN="LEFT">{_html_text(b)}</TD></TR>'
-        if i == 0
-        else f'<TR><TD ALIGN="LEFT">{_html_text(a)}</TD><TD ALIGN="LEFT">{_html_text(b)}</TD></TR>'
-        for i, (a, b) in enumerate(rows)
-    )
-    return f'<<TABLE BORDER="1" CELLBORDER="0" CELLSPACING="2" COLOR="#999999">{cells}</TABLE>>'
-
-
 def _node_tooltip(name: str, levels: Sequence[str]) -> graphviz.quoting.NoHtml:
     shown = list(levels)[:12]
     more = f" (+{len(levels) - 12} more)" if len(levels) > 12 else ""
@@ -139,8 +112,8 @@ def build_graph(
         classes = edge_classes(row, alpha)
         c = float(row["cmi_bits"]) if pd.notna(row.get("cmi_bits")) else 0.0
         width = 1.0 + 4.0 * math.sqrt(max(c, 0.0) / top)
-        style = "dotted" if "sparse" in classes else "dashed" if "weak" in classes else "solid"
-        color = "#5a5a5a" if ("weak" in classes or "sparse" in classes) else "#111111"
+        style = "dashed" if "weak" in classes else "solid"  # the style shows strength only
+        color = "#5a5a5a" if "weak" in classes else "#111111"
         attrs: dict[str, Any] = {"penwidth": f"{width:.2f}", "color": color}
         if "required" in classes:  # two parallel lines; thin enough that the gap shows
             attrs["color"] = f"{color}:invis:{color}"
@@ -160,11 +133,13 @@ def build_graph(
             + (f"; flags: {row.get('flags')}" if str(row.get("flags") or "") else "")
         )
         attrs["tooltip"] = _esc_string(tip_text)
+        marker = "\u25c7 " if "sparse" in classes else ""  # a sparse table decided it or could flip it
         if small and pd.notna(row.get("cmi_bits")):
-            attrs["label"] = _label(f"{c:.2f} bits")
+            attrs["label"] = _label(f"{marker}{c:.2f} bits")
+        elif marker:
+            attrs["label"] = _label(marker.strip())
         g.edge(ids[tail], ids[tip], **attrs)
-    g.attr(label=_legend(orient, alpha))
-    return g
+    return g  # the key, drawn with line samples, is on the page (`pipeline.report._html.graph_key`)
 
 
 def build_truth_graph(
@@ -192,7 +167,7 @@ def build_truth_graph(
     for a, b in split["extra"]:
         g.edge(ids[a], ids[b], style="dotted", dir="none", color="#777777", penwidth="1.5",
                tooltip=_esc_string(f"{a} \u2014 {b}: recovered but not in the known graph"))
-    g.attr(label=_legend(False, 0.0, truth=True))
+    # the key is on the page (`pipeline.report._html._truth_key`)
     return g
 
 

@@ -1,13 +1,13 @@
 """report.html: one self-contained page (inline CSS, JS and SVG) that opens offline.
 
-Server-side, every inserted string goes through `html.escape`. The evidence rows travel as JSON in a
-``<script type="application/json">`` block with ``<``, ``>`` and ``&`` written as ``\\u003c`` etc., and
-the page script builds the table with ``textContent`` only.
+Every inserted string goes through `html.escape`. The evidence rows are real table rows in the page,
+readable with JavaScript off; the page script only re-orders, hides and expands them. The tests of
+each pair travel as JSON in a ``<script type="application/json">`` block with ``<``, ``>`` and ``&``
+written as ``\\u003c`` etc., and the script places them with ``textContent`` only.
 """
 
 from __future__ import annotations
 
-import html
 import json
 import re
 from collections.abc import Mapping, Sequence
@@ -16,15 +16,14 @@ from typing import Any
 
 import pandas as pd
 
-from ._common import fmt_p, given_text, pair_key, plain
+from ._common import fmt_num, fmt_p, given_text, p_is, pair_key, plain
+from ._page import GLOSSARY, LineSample, e, line_key, page_css, terms_list
+from ._review import VERDICTS
 
-__all__ = ["build_html", "inline_svg", "json_for_script"]
+__all__ = ["build_html", "inline_svg", "json_for_script", "graph_key"]
 
 _PLACEHOLDER = re.compile(r"\{\{([A-Z_]+)\}\}")
-
-
-def _e(text: Any) -> str:
-    return html.escape("" if text is None else str(text), quote=True)
+_NEAR_MARK = ' <span class="near" title="near alpha: another night may decide the other way">\u2248\u03b1</span>'
 
 
 def _asset(name: str) -> str:
@@ -61,7 +60,73 @@ def inline_svg(svg: bytes, id_prefix: str = "") -> str:
     return text.strip()
 
 
-# --------------------------------------------------------------------------- summary
+# --------------------------------------------------------------------------- first screen
+def _changes_html(ctx: Any) -> str:
+    """"What changed since the previous night": the change test's supported changes, with links."""
+    if not getattr(ctx, "show_changes", False) and getattr(ctx, "changes", None) is None:
+        return ""
+    ch = ctx.changes
+    parts = ['<section id="changes"><h2>What changed since the previous night</h2>']
+    if not ch:
+        parts.append("<p>No previous night to compare with.</p></section>")
+        return "".join(parts)
+
+    def items(rows: Sequence[Mapping[str, Any]], sign: str) -> str:
+        out = []
+        for r in rows:
+            what = r.get("signal") or f"{r.get('var_a', '')} \u2014 {r.get('var_b', '')}"
+            nums = f"change p = {fmt_p(r.get('pvalue'))}, q = {fmt_p(r.get('qvalue'))}"
+            out.append(f"<li><b>{e(sign)}</b> {e(what)} <span class=\"muted\">({e(nums)})</span></li>")
+        return "".join(out)
+
+    added, removed = list(ch.get("added") or []), list(ch.get("removed") or [])
+    mech, unconf = list(ch.get("mechanism_changes") or []), list(ch.get("unconfirmed") or [])
+    prev = ch.get("previous_run") or "the previous night"
+    parts.append(
+        f"<p>Compared with <b>{e(prev)}</b>: <b>{len(added)}</b> links added, <b>{len(removed)}</b> "
+        f"removed and <b>{len(mech)}</b> signals whose behaviour changed, each supported by the change "
+        f"test; <b>{len(unconf)}</b> other differences the change test does not support (chance "
+        "flips).</p>"
+    )
+    if added or removed or mech:
+        parts.append('<ul class="changes">' + items(added, "+ added") + items(removed, "\u2212 removed")
+                     + items(mech, "~ behaviour changed") + "</ul>")
+    else:
+        parts.append("<p>Nothing changed that the change test supports.</p>")
+    if unconf:
+        parts.append('<details><summary>differences not supported by the change test</summary><ul>'
+                     + items(unconf, "?") + "</ul></details>")
+    links = [(ch.get("diff_href"), "the comparison page"), (ch.get("history_href"), "the history page")]
+    shown = [f'<a href="{e(h)}">{e(t)}</a>' for h, t in links if h]
+    if shown:
+        parts.append("<p>Details: " + " and ".join(shown) + ".</p>")
+    parts.append("</section>")
+    return "".join(parts)
+
+
+def _summary_html(ctx: Any, n_signals: int, n_links: int, n_pairs: int) -> str:
+    s: Mapping[str, Any] = ctx.summary or {}
+    rows = s.get("rows") or {}
+    facts = [
+        ("links", n_links),
+        ("pairs tested", n_pairs),
+        ("signals", n_signals),
+        ("rows used", rows.get("kept")),
+        ("rows read", rows.get("read")),
+    ]
+    parts = ['<ul class="facts">']
+    for label, value in facts:
+        shown = "n/a" if plain(value) is None else value
+        parts.append(f"<li><b>{e(shown)}</b>{e(label)}</li>")
+    parts.append("</ul>")
+    if ctx.warnings:
+        parts.append('<div class="warnings"><h3>Warnings</h3><ul>')
+        parts += [f"<li>{e(w)}</li>" for w in ctx.warnings]
+        parts.append("</ul></div>")
+    return "\n".join(parts)
+
+
+# --------------------------------------------------------------------------- end of the page
 def _flatten(prefix: str, value: Any, out: list[tuple[str, str]]) -> None:
     if isinstance(value, Mapping) and value:
         for k, v in value.items():
@@ -95,66 +160,76 @@ def _timings(summary: Mapping[str, Any]) -> list[tuple[str, str, str]]:
     return out
 
 
-def _summary_html(ctx: Any, n_signals: int, n_links: int) -> str:
+def _details_html(ctx: Any) -> str:
+    """Input, dropped columns, settings and timings: the end of the page."""
     s: Mapping[str, Any] = ctx.summary or {}
     source = s.get("input")
     if isinstance(source, Mapping):
         source = source.get("path", "")
     rows = s.get("rows") or {}
-    facts = [
-        ("rows read", rows.get("read")),
-        ("rows kept", rows.get("kept")),
-        ("malformed lines rejected", rows.get("rejected")),
-        ("rows quarantined", rows.get("quarantined")),
-        ("signals tested", n_signals),
-        ("links found", n_links),
-    ]
-    parts = [f"<p>Input: <code>{_e(source or 'not recorded')}</code></p>", '<ul class="facts">']
-    for label, value in facts:
-        shown = "n/a" if plain(value) is None else value
-        parts.append(f"<li><b>{_e(shown)}</b>{_e(label)}</li>")
-    parts.append("</ul>")
-    if ctx.warnings:
-        parts.append('<div class="warnings"><h3>Warnings</h3><ul>')
-        parts += [f"<li>{_e(w)}</li>" for w in ctx.warnings]
-        parts.append("</ul></div>")
+    parts = [f"<p>Input: <code>{e(source or 'not recorded')}</code>; rows read {e(rows.get('read', 'n/a'))}, "
+             f"kept {e(rows.get('kept', 'n/a'))}, malformed lines rejected {e(rows.get('rejected', 'n/a'))}, "
+             f"quarantined {e(rows.get('quarantined', 'n/a'))}.</p>"]
     dropped = _dropped(s)
     parts.append("<h3>Columns left out of the tests</h3>")
     if dropped:
         parts.append("<table><thead><tr><th>column</th><th>why</th></tr></thead><tbody>")
-        parts += [f"<tr><td>{_e(c)}</td><td>{_e(r)}</td></tr>" for c, r in dropped]
+        parts += [f"<tr><td>{e(c)}</td><td>{e(r)}</td></tr>" for c, r in dropped]
         parts.append("</tbody></table>")
     else:
         parts.append("<p>None: every input column was kept.</p>")
     settings: list[tuple[str, str]] = []
     _flatten("", s.get("settings") or {}, settings)
-    parts.append(f"<h3>Settings</h3><p>Test at alpha = {_e(f'{ctx.alpha:g}')}; orientation "
+    parts.append(f"<h3>Settings</h3><p>Tests at alpha = {e(f'{ctx.alpha:g}')}; orientation "
                  f"{'on' if ctx.orient else 'off'}.</p>")
     if settings:
         parts.append("<details><summary>every setting of this run</summary><table><tbody>")
-        parts += [f"<tr><td><code>{_e(k)}</code></td><td><code>{_e(v)}</code></td></tr>" for k, v in settings]
+        parts += [f"<tr><td><code>{e(k)}</code></td><td><code>{e(v)}</code></td></tr>" for k, v in settings]
         parts.append("</tbody></table></details>")
     timings = _timings(s)
     if timings:
-        parts.append('<h3>Timing</h3><table><thead><tr><th>stage</th><th class="num">seconds</th>'
+        parts.append('<h3>Timings</h3><table><thead><tr><th>stage</th><th class="num">seconds</th>'
                      "<th></th></tr></thead><tbody>")
-        parts += [f'<tr><td>{_e(n)}</td><td class="num">{_e(t)}</td><td>{_e(r)}</td></tr>'
-                  for n, t, r in timings]
+        parts += [f'<tr><td>{e(n)}</td><td class="num">{e(t)}</td><td>{e(r)}</td></tr>' for n, t, r in timings]
         parts.append("</tbody></table>")
     return "\n".join(parts)
 
 
 # --------------------------------------------------------------------------- graph
+def graph_key(alpha: float, orient: bool) -> str:
+    """The key of the recovered graph, drawn with real line samples."""
+    samples = [
+        LineSample(f"linked, q-value \u2264 {alpha:g}", width=2.5),
+        LineSample("linked but weak: q-value above alpha, unstable, or data disagree", color="#5a5a5a",
+                   width=2, dash="7 4"),
+        LineSample("linked by expert knowledge (required or confirmed)", width=1.6, double=True),
+        LineSample("\u25c7 on a line: a sparse table decided the outcome or could have flipped it", width=2,
+                   marker="\u25c7"),
+        LineSample("thicker line: larger effect (CMI bits)", width=5),
+    ]
+    if orient:
+        samples.append(LineSample("arrow: direction the search found", width=2, arrow=True))
+    return line_key(samples)
+
+
+def _truth_key() -> str:
+    return line_key([
+        LineSample("in the known graph and recovered", width=2.5),
+        LineSample("in the known graph, missed", color="#777777", width=1.5, dash="7 4"),
+        LineSample("recovered but not in the known graph", color="#777777", width=1.5, dash="2 3"),
+    ])
+
+
 def _pairs_text(pairs: Sequence[tuple[str, str]]) -> str:
     if not pairs:
         return "none"
-    return ", ".join(f"{_e(a)} \u2014 {_e(b)}" for a, b in pairs)
+    return ", ".join(f"{e(a)} \u2014 {e(b)}" for a, b in pairs)
 
 
-def _graph_html(svg: str, truth_svg: str | None, split: dict[str, list] | None) -> str:
+def _graph_html(svg: str, truth_svg: str | None, split: dict[str, list] | None, key: str) -> str:
     recovered = (
-        '<figure><div class="svg">' + svg + "</div><figcaption>Recovered graph. Hover an edge or a "
-        "signal for its numbers; line styles are explained in the legend.</figcaption></figure>"
+        '<figure><div class="svg">' + svg + "</div>" + key + "<figcaption>Recovered graph. Hover a line or "
+        "a signal for its numbers.</figcaption></figure>"
     )
     if truth_svg is None or split is None:
         return '<div class="figures">' + recovered + "</div>"
@@ -166,30 +241,28 @@ def _graph_html(svg: str, truth_svg: str | None, split: dict[str, list] | None) 
         f"<li>missed: {_pairs_text(split['missed'])}</li>"
         f"<li>extra: {_pairs_text(split['extra'])}</li></ul>"
     )
-    known = (
-        '<figure><div class="svg">' + truth_svg + "</div><figcaption>Known graph (how the data were "
-        "made). Solid: recovered; dashed: missed; dotted: found but not in the known graph."
-        "</figcaption></figure>"
-    )
+    known = ('<figure><div class="svg">' + truth_svg + "</div>" + _truth_key()
+             + "<figcaption>Known graph (how the data were made).</figcaption></figure>")
     return counts + '<div class="figures">' + recovered + known + "</div>"
 
 
 def _cautions(alpha: float) -> str:
     return (
         '<div class="caution"><p>A <b>link</b> means: the two signals were statistically dependent '
-        f"at alpha = {_e(f'{alpha:g}')}, and no conditioning set that was tried made them "
-        "independent. A <b>separation</b> means one test found them independent given the set "
-        "shown, so their association runs through those signals.</p>"
+        f"at alpha = {e(f'{alpha:g}')} under every conditioning set that was tried. A pair is "
+        "<b>separated</b> when one test found no evidence of dependence given the conditioning set "
+        "shown; their association may run through those signals. No evidence of dependence is not "
+        "proof of independence: with few rows a real but weak link can look like none.</p>"
         "<p>Both readings rest on assumptions: no hidden common cause outside the extract drives "
         "two of the signals, dependencies do not cancel out exactly (faithfulness), rows behave "
         "like independent draws, and there are enough rows for each table tested (pairs whose "
-        "tables were sparse are flagged). Discretising a numeric signal into bins can leave some "
-        "dependence that the bins do not capture.</p>"
+        "outcome rests on a sparse table are marked). Discretising a numeric signal into bins can "
+        "leave some dependence that the bins do not capture.</p>"
         "<p>A link is not proof that one signal causes the other, and an arrow shows only the "
         "direction the data and these assumptions allow. A missing link is not proof of no "
         "effect. Decisions about production systems follow the team's change and incident "
-        "practice; this report is evidence for that discussion, not a verdict. q-values adjust "
-        "the kept links' p-values for multiple testing (Benjamini-Hochberg).</p></div>"
+        "practice; this report is evidence for that discussion.</p></div>"
+        "<h3>Words used in this report</h3>" + terms_list(GLOSSARY)
     )
 
 
@@ -199,51 +272,115 @@ def _signals_html(names: Sequence[str], levels: Mapping[str, Sequence[str]]) -> 
     for name in names:
         labels = list(levels.get(name, []))
         parts.append(
-            f'<tr><td>{_e(name)}</td><td class="num">{len(labels)}</td>'
-            f"<td>{_e(' | '.join(map(str, labels)))}</td></tr>"
+            f'<tr><td>{e(name)}</td><td class="num">{len(labels)}</td>'
+            f"<td>{e(' | '.join(map(str, labels)))}</td></tr>"
         )
     parts.append("</tbody></table>")
     return "".join(parts)
 
 
-# --------------------------------------------------------------------------- evidence data
-def _columns(orient: bool, has_stability: bool) -> list[dict[str, str]]:
+# --------------------------------------------------------------------------- evidence table
+_MARKERS = {  # flag word -> (marker, what it says)
+    "near_alpha": ("\u2248\u03b1", "near alpha: the deciding p-value is close to alpha"),
+    "sparse": ("\u25c7", "sparse: a sparse table decided the outcome or could have flipped it"),
+    "data_disagrees": ("!", "the data disagree with the expert knowledge or the reviewer"),
+    "reviewer_rejected": ("\u2717", "rejected by the reviewer"),
+    "required": ("\u2713", "required by expert knowledge or confirmed by the reviewer"),
+    "degenerate": ("\u2205", "degenerate table: a signal was constant within the rows tested"),
+    "policy_applied": ("\u2691", "the sparse-table policy decided this test, not its p-value"),
+    "ambiguous_orientation": ("\u2194", "the direction is ambiguous"),
+    "forbidden": ("\u2298", "forbidden by the configuration: never tested"),
+}
+
+
+def _columns(orient: bool, has_stability: bool) -> list[tuple[str, str, str]]:
     cols = [
-        ("a", "signal A", "text"),
-        ("b", "signal B", "text"),
-        ("verdict", "verdict", "text"),
-        ("p", "p-value", "p"),
-        ("q", "q-value", "p"),
-        ("cmi", "effect (CMI bits)", "num"),
-        ("v", "Cram\u00e9r's V", "num"),
-        ("given", "deciding set", "text"),
+        ("pair", "pair", "text"),
+        ("outcome", "outcome", "text"),
+        ("flags", "flags", "text"),
+        ("reading", "in plain words", "text"),
+        ("p", "p-value", "num"),
+        ("q", "q-value (all pairs)", "num"),
+        ("cmi", "effect, CMI bits", "num"),
+        ("v", "Cram\u00e9r's V, unconditioned", "num"),
+        ("given", "conditioning set", "text"),
         ("n_tests", "tests", "num"),
     ]
     if orient:
         cols.append(("direction", "direction", "text"))
     if has_stability:
         cols.append(("stability", "stability", "num"))
-    cols += [("flags", "flags", "text"), ("reading", "in plain words", "text")]
-    return [{"key": k, "label": label, "type": t} for k, label, t in cols]
+    return cols
 
 
 def _reading(row: Mapping[str, Any], alpha: float) -> str:
     text = str(plain(row.get("explanation")) or "")
     if not text:
-        p, given = fmt_p(row.get("pvalue")), given_text(row.get("given"))
+        p, given = p_is(row.get("pvalue")), given_text(row.get("given"))
         if bool(row["linked"]):
-            text = (f"linked: no conditioning set among the {int(row.get('n_tests', 0))} tried made "
-                    f"them independent; weakest evidence p = {p} given {given}.")
+            text = (f"linked: dependent under each of the {int(row.get('n_tests', 0) or 0)} conditioning sets "
+                    f"tried; weakest evidence {p} given {given}.")
         else:
-            text = f"separated: independent given {given} (p = {p} > alpha = {alpha:g})."
-    flags = str(plain(row.get("flags")) or "")
-    if "sparse" in flags.split(";"):
-        text += " Some tables behind this pair were sparse: read it with care."
+            text = f"separated: no evidence of dependence given {given} ({p} > alpha = {alpha:g})."
+    if bool(plain(row.get("near_alpha"))):
+        text += " The deciding p-value is near alpha: another night may decide the other way."
     verdict = str(plain(row.get("review_verdict")) or "")
     comment = str(plain(row.get("review_comment")) or "")
     if verdict or comment:
         text += f" Reviewer: {verdict or 'no verdict'}" + (f" ({comment})" if comment else "") + "."
     return text
+
+
+def _flag_words(row: Mapping[str, Any]) -> list[str]:
+    words = [f for f in str(plain(row.get("flags")) or "").split(";") if f]
+    if bool(plain(row.get("near_alpha"))) and "near_alpha" not in words:
+        words.insert(0, "near_alpha")
+    return words
+
+
+def _flags_cell(words: Sequence[str]) -> str:
+    out = []
+    for w in words:
+        mark, title = _MARKERS.get(w, ("\u2022", w))
+        out.append(f'<span class="flag" title="{e(title)}"><span class="mark">{e(mark)}</span> '
+                   f'{e(w.replace("_", " "))}</span>')
+    return " ".join(out)
+
+
+def _sort_value(x: Any) -> str:
+    x = plain(x)
+    return "" if x is None else repr(float(x))
+
+
+def _row_html(i: int, row: Mapping[str, Any], cols: Sequence[tuple[str, str, str]], alpha: float) -> str:
+    a, b = str(row["var_a"]), str(row["var_b"])
+    linked = bool(row["linked"])
+    words = _flag_words(row)
+    outcome = "linked" if linked else "separated"
+    near = "near_alpha" in words
+    cells = {
+        "pair": (f"{e(a)} <span class=\"muted\">\u2014</span> {e(b)}", e(f"{a}\u0000{b}")),
+        "outcome": (outcome + (_NEAR_MARK if near else ""), "0" if linked else "1"),
+        "flags": (_flags_cell(words), e(";".join(words))),
+        "reading": (e(_reading(row, alpha)), ""),
+        "p": (e(fmt_p(row.get("pvalue"))), _sort_value(row.get("pvalue"))),
+        "q": (e(fmt_p(row.get("qvalue")) if plain(row.get("qvalue")) is not None else ""),
+              _sort_value(row.get("qvalue"))),
+        "cmi": (e(fmt_num(row.get("cmi_bits"))), _sort_value(row.get("cmi_bits"))),
+        "v": (e(fmt_num(row.get("cramers_v"))), _sort_value(row.get("cramers_v"))),
+        "given": (e(given_text(row.get("given"))), e(given_text(row.get("given")))),
+        "n_tests": (e(fmt_num(row.get("n_tests"))), _sort_value(row.get("n_tests"))),
+        "direction": (e(plain(row.get("orientation")) or ""), e(plain(row.get("orientation")) or "")),
+        "stability": (e(fmt_num(row.get("stability"))), _sort_value(row.get("stability"))),
+    }
+    tds = ['<td class="x"></td>']
+    for key, _label, kind in cols:
+        shown, sort = cells[key]
+        cls = f"{key}{' num' if kind == 'num' else ''}"
+        tds.append(f'<td class="{cls}" data-v="{sort}">{shown}</td>' if sort else f'<td class="{cls}">{shown}</td>')
+    classes = f"pair {outcome}" + (" flagged" if words else "")
+    return (f'<tr class="{classes}" data-pair="{i}" data-a="{e(a.lower())}" data-b="{e(b.lower())}">'
+            + "".join(tds) + "</tr>")
 
 
 def _test_notes(t: Mapping[str, Any]) -> str:
@@ -257,34 +394,11 @@ def _test_notes(t: Mapping[str, Any]) -> str:
     return "; ".join(notes)
 
 
-def evidence_data(evidence: pd.DataFrame, tests: pd.DataFrame, alpha: float, orient: bool) -> dict:
-    """The JSON payload of the page: columns, one record per pair, and each pair's tests."""
-    has_stability = "stability" in evidence.columns and evidence["stability"].notna().any()
-    index: dict[tuple[str, str], int] = {}
-    pairs = []
-    for i, (_, row) in enumerate(evidence.iterrows()):
-        a, b = str(row["var_a"]), str(row["var_b"])
-        index[pair_key(a, b)] = i
-        linked = bool(row["linked"])
-        pairs.append({
-            "id": i,
-            "a": a,
-            "b": b,
-            "linked": linked,
-            "verdict": "linked" if linked else "separated",
-            "p": plain(row.get("pvalue")),
-            "q": plain(row.get("qvalue")),
-            "cmi": plain(row.get("cmi_bits")),
-            "v": plain(row.get("cramers_v")),
-            "given": given_text(row.get("given")),
-            "n_tests": plain(row.get("n_tests")),
-            "direction": str(plain(row.get("orientation")) or ""),
-            "stability": plain(row.get("stability")),
-            "flags": ", ".join(f for f in str(plain(row.get("flags")) or "").split(";") if f),
-            "reading": _reading(row, alpha),
-        })
+def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, list[dict]]:
+    """Each pair's tests (keyed by the pair's row number in `evidence`), for the expand buttons."""
+    index = {pair_key(str(a), str(b)): i for i, (a, b) in enumerate(zip(evidence["var_a"], evidence["var_b"]))}
     by_pair: dict[str, list[dict]] = {}
-    for _, t in tests.iterrows():
+    for t in tests.to_dict("records"):
         key = pair_key(str(t["var_a"]), str(t["var_b"]))
         if key not in index:
             continue
@@ -300,8 +414,15 @@ def evidence_data(evidence: pd.DataFrame, tests: pd.DataFrame, alpha: float, ori
             "independent": bool(plain(t.get("independent"))),
             "notes": _test_notes(t),
         })
-    return {"alpha": alpha, "columns": _columns(orient, bool(has_stability)), "pairs": pairs,
-            "tests": by_pair}
+    return by_pair
+
+
+def default_order(evidence: pd.DataFrame) -> list[int]:
+    """Row numbers in the page's default order: linked pairs first, each group by p-value."""
+    p = pd.to_numeric(evidence.get("pvalue", pd.Series(index=evidence.index, dtype=float)), errors="coerce")
+    keys = pd.DataFrame({"sep": ~evidence["linked"].astype(bool).to_numpy(), "p": p.fillna(2.0).to_numpy(),
+                         "i": range(len(evidence))})
+    return keys.sort_values(["sep", "p", "i"], kind="stable")["i"].tolist()
 
 
 def build_html(
@@ -314,26 +435,38 @@ def build_html(
     split: dict[str, list] | None = None,
 ) -> str:
     """The whole page as a string."""
-    payload = evidence_data(evidence, tests, ctx.alpha, ctx.orient)
-    n_links = sum(1 for p in payload["pairs"] if p["linked"])
+    has_stability = "stability" in evidence.columns and evidence["stability"].notna().any()
+    cols = _columns(ctx.orient, bool(has_stability))
+    records = evidence.to_dict("records")
+    rows = "\n".join(_row_html(i, records[i], cols, ctx.alpha) for i in default_order(evidence))
+    n_links = int(evidence["linked"].astype(bool).sum()) if len(evidence) else 0
     head = "".join(
-        f'<th data-key="{_e(c["key"])}"{" class=num" if c["type"] != "text" else ""}>'
-        f'<button type="button">{_e(c["label"])}</button></th>'
-        for c in payload["columns"]
+        f'<th data-key="{e(k)}" scope="col"{" class=num" if t == "num" else ""}>'
+        f'<button type="button">{e(label)}</button></th>'
+        for k, label, t in cols
     )
-    subtitle = (f"{len(names)} signals, {len(payload['pairs'])} pairs, {n_links} links; "
+    service = ctx.title or "edgeproof"
+    night = getattr(ctx, "night", "") or ""
+    title = f"{service} \u2014 night of {night}" if night else service
+    subtitle = (f"{n_links} links among {len(names)} signals ({len(evidence)} pairs tested); "
                 f"alpha = {ctx.alpha:g}")
+    review_words = " or ".join(f"<code>{v}</code>" for v in VERDICTS)
     values = {
-        "VERSION": _e(_version()),
-        "TITLE": _e(ctx.title),
-        "SUBTITLE": _e(subtitle),
-        "CSS": _asset("report.css"),
-        "SUMMARY": _summary_html(ctx, len(names), n_links),
-        "GRAPH": _graph_html(svg, truth_svg, split),
+        "VERSION": e(_version()),
+        "TITLE": e(title),
+        "SUBTITLE": e(subtitle),
+        "CSS": page_css(),
+        "CHANGES": _changes_html(ctx),
+        "SUMMARY": _summary_html(ctx, len(names), n_links, len(evidence)),
+        "GRAPH": _graph_html(svg, truth_svg, split, graph_key(ctx.alpha, ctx.orient)),
         "CAUTIONS": _cautions(ctx.alpha),
         "SIGNALS": _signals_html(names, ctx.levels),
+        "DETAILS": _details_html(ctx),
+        "REVIEW_WORDS": review_words,
         "EVIDENCE_HEAD": head,
-        "DATA": json_for_script(payload),
+        "EVIDENCE_ROWS": rows,
+        "N_PAIRS": str(len(evidence)),
+        "DATA": json_for_script({"alpha": ctx.alpha, "tests": tests_data(evidence, tests)}),
         "JS": _asset("report.js"),
     }
     return _PLACEHOLDER.sub(lambda m: values[m.group(1)], _asset("template.html"))

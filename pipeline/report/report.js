@@ -1,14 +1,15 @@
-/* The evidence table of report.html: sort, filter and expand. Data comes from the JSON block and is
-   only ever placed with textContent. */
+/* The evidence table of report.html: the rows are in the page; this adds sorting, filtering and
+   expanding on top. Test lists come from the JSON block and are only ever placed with textContent. */
 (function () {
   "use strict";
   var data = JSON.parse(document.getElementById("edgeproof-data").textContent);
-  var pairs = data.pairs;
   var tests = data.tests;
-  var columns = data.columns;
-  var state = { key: null, dir: 1, text: "", show: "all", open: {} };
   var body = document.getElementById("pairs-body");
   var count = document.getElementById("pair-count");
+  var rows = Array.prototype.slice.call(body.querySelectorAll("tr.pair"));
+  var order = rows.slice();  /* the page's default order: linked first */
+  var state = { key: null, dir: 1, words: [], show: "all" };
+  var ncols = document.querySelectorAll("#pairs thead th").length;
 
   function el(tag, text, cls) {
     var node = document.createElement(tag);
@@ -19,7 +20,7 @@
 
   function fmtP(p) {
     if (p === null || p === undefined) { return "n/a"; }
-    if (p === 0) { return "< 1e-300"; } /* below double precision */
+    if (p < 1e-12) { return "< 1e-12"; }
     return p < 0.001 ? p.toPrecision(2) : p.toFixed(3);
   }
 
@@ -31,108 +32,117 @@
     return Number(x).toPrecision(3);
   }
 
-  function show(col, value) {
-    if (col.type === "p") { return value === null ? "" : fmtP(value); }
-    if (col.type === "num") { return fmtNum(value); }
-    return value === null || value === undefined ? "" : String(value);
+  function has(name, word) { return name.indexOf(word) >= 0; }
+
+  function visible(tr) {
+    var linked = tr.classList.contains("linked");
+    if (state.show === "linked" && !linked) { return false; }
+    if (state.show === "separated" && linked) { return false; }
+    if (state.show === "flagged" && !tr.classList.contains("flagged")) { return false; }
+    var w = state.words;
+    if (!w.length) { return true; }
+    var a = tr.getAttribute("data-a"), b = tr.getAttribute("data-b");
+    if (w.length === 1) { return has(a, w[0]) || has(b, w[0]); }
+    if (w.length === 2) { return (has(a, w[0]) && has(b, w[1])) || (has(a, w[1]) && has(b, w[0])); }
+    return w.every(function (x) { return has(a, x) || has(b, x); });
   }
 
-  function visible(pair) {
-    if (state.show === "linked" && !pair.linked) { return false; }
-    if (state.show === "separated" && pair.linked) { return false; }
-    if (state.show === "flagged" && !pair.flags) { return false; }
-    if (state.text) {
-      var t = state.text;
-      return pair.a.toLowerCase().indexOf(t) >= 0 || pair.b.toLowerCase().indexOf(t) >= 0;
-    }
-    return true;
+  function cellValue(tr, key) {
+    var td = tr.querySelector("td." + key);
+    if (!td) { return null; }
+    var v = td.getAttribute("data-v");
+    if (v === null || v === "") { return td.textContent === "" ? null : td.textContent; }
+    var n = Number(v);
+    return isNaN(n) ? v : n;
   }
 
   function compare(x, y) {
-    var col = state.key;
-    var a = x[col], b = y[col];
-    var aNull = a === null || a === undefined || a === "";
-    var bNull = b === null || b === undefined || b === "";
-    if (aNull || bNull) {
-      if (aNull && bNull) { return x.id - y.id; }
-      return aNull ? 1 : -1; /* missing values last in both directions */
+    var a = cellValue(x, state.key), b = cellValue(y, state.key);
+    if (a === null || b === null) {
+      if (a === null && b === null) { return order.indexOf(x) - order.indexOf(y); }
+      return a === null ? 1 : -1; /* missing values last in both directions */
     }
-    var c;
-    if (typeof a === "number" && typeof b === "number") { c = a - b; }
-    else if (typeof a === "boolean") { c = (a === b) ? 0 : (a ? -1 : 1); }
-    else { c = String(a).localeCompare(String(b)); }
-    return c !== 0 ? c * state.dir : x.id - y.id;
+    var c = (typeof a === "number" && typeof b === "number") ? a - b : String(a).localeCompare(String(b));
+    return c !== 0 ? c * state.dir : order.indexOf(x) - order.indexOf(y);
   }
 
-  function testTable(pair) {
-    var rows = tests[String(pair.id)] || [];
+  function testTable(tr) {
+    var list = tests[tr.getAttribute("data-pair")] || [];
     var wrap = el("div");
-    if (!rows.length) {
-      wrap.appendChild(el("p", "No test was run on this pair (for example: forbidden by expert knowledge)."));
+    if (!list.length) {
+      wrap.appendChild(el("p", "No test was run on this pair (forbidden by the configuration)."));
       return wrap;
     }
-    wrap.appendChild(el("p", rows.length + (rows.length === 1 ? " test" : " tests") + " run on " + pair.a + " and " + pair.b + ", in the order they were run:"));
+    wrap.appendChild(el("p", list.length + (list.length === 1 ? " test" : " tests") + " run on this pair, in the order they were run:"));
     var table = el("table", null, "tests");
     var head = el("tr");
-    ["#", "set size", "conditioning set", "statistic", "dof", "p-value", "rows", "test", "decision", "notes"].forEach(function (h) {
+    ["#", "set size", "conditioning set", "statistic", "dof", "p-value", "rows", "test", "reading", "notes"].forEach(function (h) {
       head.appendChild(el("th", h));
     });
     var thead = el("thead"); thead.appendChild(head); table.appendChild(thead);
     var tb = el("tbody");
-    rows.forEach(function (t) {
-      var tr = el("tr");
-      tr.appendChild(el("td", t.test_id, "num"));
-      tr.appendChild(el("td", t.level, "num"));
-      tr.appendChild(el("td", t.given_text));
-      tr.appendChild(el("td", fmtNum(t.statistic), "num"));
-      tr.appendChild(el("td", t.dof, "num"));
-      tr.appendChild(el("td", fmtP(t.pvalue), "num"));
-      tr.appendChild(el("td", t.n, "num"));
-      tr.appendChild(el("td", t.method));
-      tr.appendChild(el("td", t.independent ? "independent" : "dependent", t.independent ? "independent" : "dependent"));
-      tr.appendChild(el("td", t.notes));
-      tb.appendChild(tr);
+    list.forEach(function (t) {
+      var r = el("tr");
+      r.appendChild(el("td", t.test_id, "num"));
+      r.appendChild(el("td", t.level, "num"));
+      r.appendChild(el("td", t.given_text));
+      r.appendChild(el("td", fmtNum(t.statistic), "num"));
+      r.appendChild(el("td", t.dof, "num"));
+      r.appendChild(el("td", fmtP(t.pvalue), "num"));
+      r.appendChild(el("td", t.n, "num"));
+      r.appendChild(el("td", t.method));
+      r.appendChild(el("td", t.independent ? "no evidence of dependence" : "dependent", t.independent ? "independent" : "dependent"));
+      r.appendChild(el("td", t.notes));
+      tb.appendChild(r);
     });
     table.appendChild(tb);
     wrap.appendChild(table);
     return wrap;
   }
 
-  function render() {
-    var list = pairs.filter(visible);
-    if (state.key) { list.sort(compare); }
-    while (body.firstChild) { body.removeChild(body.firstChild); }
-    list.forEach(function (pair) {
-      var tr = el("tr", null, "pair " + (pair.linked ? "linked" : "separated"));
-      tr.setAttribute("data-pair", String(pair.id));
-      var first = el("td");
-      var btn = el("button", state.open[pair.id] ? "\u2212" : "+", "expand");
-      btn.type = "button";
-      btn.setAttribute("aria-expanded", state.open[pair.id] ? "true" : "false");
-      btn.setAttribute("aria-label", "show the tests on " + pair.a + " and " + pair.b);
-      btn.addEventListener("click", function () {
-        state.open[pair.id] = !state.open[pair.id];
-        render();
-      });
-      first.appendChild(btn);
-      tr.appendChild(first);
-      columns.forEach(function (col) {
-        var cls = (col.type === "num" || col.type === "p") ? "num" : col.key;
-        tr.appendChild(el("td", show(col, pair[col.key]), cls));
-      });
-      body.appendChild(tr);
-      if (state.open[pair.id]) {
-        var detail = el("tr", null, "detail");
-        detail.setAttribute("data-detail", String(pair.id));
-        var td = el("td");
-        td.colSpan = columns.length + 1;
-        td.appendChild(testTable(pair));
-        detail.appendChild(td);
-        body.appendChild(detail);
-      }
-    });
-    count.textContent = "showing " + list.length + " of " + pairs.length + " pairs";
+  function toggle(tr, btn) {
+    var next = tr.nextElementSibling;
+    if (next && next.classList.contains("detail")) {
+      body.removeChild(next);
+      btn.textContent = "+";
+      btn.setAttribute("aria-expanded", "false");
+      return;
+    }
+    var detail = el("tr", null, "detail");
+    detail.setAttribute("data-detail", tr.getAttribute("data-pair"));
+    var td = el("td");
+    td.colSpan = ncols;
+    td.appendChild(testTable(tr));
+    detail.appendChild(td);
+    body.insertBefore(detail, tr.nextSibling);
+    btn.textContent = "\u2212";
+    btn.setAttribute("aria-expanded", "true");
   }
+
+  function render() {
+    var list = order.slice();
+    if (state.key) { list.sort(compare); }
+    var shown = 0;
+    list.forEach(function (tr) {
+      var detail = tr.nextElementSibling;
+      var open = detail && detail.classList.contains("detail") ? detail : null;
+      var on = visible(tr);
+      tr.hidden = !on;
+      body.appendChild(tr);
+      if (open) { open.hidden = !on; body.appendChild(open); }
+      if (on) { shown += 1; }
+    });
+    count.textContent = "showing " + shown + " of " + rows.length + " pairs";
+  }
+
+  rows.forEach(function (tr) {
+    var btn = el("button", "+", "expand");
+    btn.type = "button";
+    btn.setAttribute("aria-expanded", "false");
+    btn.setAttribute("aria-label", "show the tests on this pair");
+    btn.addEventListener("click", function () { toggle(tr, btn); });
+    tr.querySelector("td.x").appendChild(btn);
+  });
 
   document.querySelectorAll("#pairs thead th[data-key]").forEach(function (th) {
     th.querySelector("button").addEventListener("click", function () {
@@ -147,7 +157,7 @@
   });
 
   document.getElementById("pair-filter").addEventListener("input", function (ev) {
-    state.text = ev.target.value.trim().toLowerCase();
+    state.words = ev.target.value.toLowerCase().split(/[\s,]+/).filter(function (w) { return w.length > 0; });
     render();
   });
 

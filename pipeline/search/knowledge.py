@@ -20,12 +20,15 @@ class Knowledge:
     """What experts know before the data speak.
 
     ``required`` pairs are never removed (their tests still run, so the report can say when the
-    data disagreed); ``forbidden`` pairs are removed before any test and never tested; ``tiers``
+    data disagreed); ``forbidden`` pairs (from the configuration) are removed before any test and
+    never tested; ``rejected`` pairs (a reviewer's ``reject``) are tested as usual and removed when
+    the search ends, so the report can say when the data disagree with the reviewer; ``tiers``
     order the signals: an earlier tier cannot be caused by a later one.
     """
 
     required: frozenset[tuple[str, str]] = frozenset()
     forbidden: frozenset[tuple[str, str]] = frozenset()
+    rejected: frozenset[tuple[str, str]] = frozenset()
     tiers: tuple[tuple[str, ...], ...] = ()
     sources: dict[tuple[str, str], str] = field(default_factory=dict)
 
@@ -37,6 +40,7 @@ class Knowledge:
         forbidden: Iterable[Sequence[str]] = (),
         tiers: Iterable[Sequence[str]] = (),
         sources: dict[tuple[str, str], str] | None = None,
+        rejected: Iterable[Sequence[str]] = (),
     ) -> "Knowledge":
         """Validate names against the data's signals and build the knowledge."""
         known = set(names)
@@ -55,10 +59,19 @@ class Knowledge:
         forb = frozenset(
             _pair(check(a, "knowledge.forbidden"), check(b, "knowledge.forbidden")) for a, b in forbidden
         )
+        rej = frozenset(
+            _pair(check(a, "knowledge.review_file"), check(b, "knowledge.review_file")) for a, b in rejected
+        ) - forb  # a pair the configuration forbids is never tested, whatever the reviewer says
         both = req & forb
         if both:
             a, b = sorted(both)[0]
             raise ConfigError(f"The pair `{a}` - `{b}` is both required and forbidden; keep one.")
+        both = req & rej
+        if both:
+            a, b = sorted(both)[0]
+            raise ConfigError(
+                f"The pair `{a}` - `{b}` is both required (or confirmed) and rejected in the review file; keep one."
+            )
         tier_t = tuple(tuple(check(n, "knowledge.tiers") for n in t) for t in tiers)
         seen: set[str] = set()
         for t in tier_t:
@@ -66,7 +79,7 @@ class Knowledge:
                 if n in seen:
                     raise ConfigError(f"`knowledge.tiers` lists `{n}` in more than one tier; keep one.")
                 seen.add(n)
-        return cls(required=req, forbidden=forb, tiers=tier_t, sources=dict(sources or {}))
+        return cls(required=req, forbidden=forb, rejected=rej, tiers=tier_t, sources=dict(sources or {}))
 
     def tier_of(self, name: str) -> int | None:
         """Index of the tier holding `name`, or None."""
@@ -80,5 +93,9 @@ class Knowledge:
         return _pair(a, b) in self.required
 
     def is_forbidden(self, a: str, b: str) -> bool:
-        """True when the pair must not be linked."""
+        """True when the pair must not be linked and is never tested."""
         return _pair(a, b) in self.forbidden
+
+    def is_rejected(self, a: str, b: str) -> bool:
+        """True when a reviewer rejected the pair: tested as usual, removed at the end."""
+        return _pair(a, b) in self.rejected

@@ -56,8 +56,9 @@ class SkeletonResult:
     removed_by: dict[Pair, int]  # pair -> index into `tests` of the test that removed it
     tests: tuple[TestRecord, ...]
     levels: int  # number of levels run
-    disagreements: frozenset[Pair] = frozenset()  # required pairs some test called independent
+    disagreements: frozenset[Pair] = frozenset()  # required pairs some test separated; rejected pairs none did
     forbidden: frozenset[Pair] = frozenset()
+    rejected: frozenset[Pair] = frozenset()  # reviewer-rejected pairs, removed after the last level
 
     def adjacency(self) -> np.ndarray:
         """Boolean adjacency matrix in the order of `names`."""
@@ -265,13 +266,16 @@ def pc_stable_skeleton(
         state.level = level + 1
         if on_level is not None:
             on_level(state)
+    # reviewer-rejected pairs were tested like any other; those the tests kept linked disagree
+    rejected = frozenset(p for p in all_pairs if knowledge.is_rejected(*p))
     return SkeletonResult(
         names=tuple(names),
-        edges=frozenset(state.edges),
+        edges=frozenset(state.edges - rejected),
         separating_sets=dict(state.separating_sets),
         removed_by=dict(state.removed_by),
         tests=tuple(state.tests),
         levels=state.level,
-        disagreements=frozenset(state.disagreements),
+        disagreements=frozenset(state.disagreements | (state.edges & rejected)),
         forbidden=forbidden,
+        rejected=rejected,
     )

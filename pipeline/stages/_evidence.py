@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..independence.result import CITestResult
+from ..report._common import p_is
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
 from ..search.skeleton import SkeletonResult, TestRecord
@@ -109,14 +110,20 @@ def benjamini_hochberg(pvalues: Sequence[float]) -> np.ndarray:
     return out
 
 
-def _fmt_p(p: float) -> str:
-    if not np.isfinite(p):
-        return "n/a"
-    return f"{p:.2g}" if p < 0.001 else f"{p:.3f}"
-
-
 def _set_text(given: str) -> str:
     return "{" + ", ".join(given.split(";")) + "}" if given else "no conditioning set"
+
+
+def _sparse_matters(results: Sequence, deciding: object, dependent: bool, alpha: float) -> bool:
+    """True when a sparse table decided the pair's fate or could have flipped it.
+
+    That is: the deciding test was sparse, or a sparse test's own reading of its p-value (above
+    alpha: no evidence of dependence) differs from where the pair ended (``dependent``: every test
+    kept it). A sparse test that agreed with the outcome, among many, does not count.
+    """
+    if deciding is not None and getattr(deciding, "sparse", False):
+        return True
+    return any(r.sparse and (r.pvalue > alpha) == dependent for r in results)
 
 
 def evidence_frame(
@@ -137,7 +144,8 @@ def evidence_frame(
         pair = (a, b)
         idx = by_pair.get(pair, [])
         linked = pair in skeleton.edges
-        know = "required" if knowledge.is_required(a, b) else "forbidden" if knowledge.is_forbidden(a, b) else ""
+        know = ("required" if knowledge.is_required(a, b) else "forbidden" if knowledge.is_forbidden(a, b)
+                else "rejected" if knowledge.is_rejected(a, b) else "")
         row: dict[str, object] = {"var_a": a, "var_b": b, "linked": linked, "knowledge": know}
         results = [skeleton.tests[i].result for i in idx]
         if pair in skeleton.removed_by:
@@ -159,7 +167,7 @@ def evidence_frame(
             max_given_size=max((len(r.given) for r in results), default=-1),
             cmi_bits=deciding.cmi_bits if deciding else np.nan,
             cramers_v=marginal.cramers_v if marginal else np.nan,
-            sparse=any(r.sparse for r in results),
+            sparse=_sparse_matters(results, deciding, linked or pair in skeleton.disagreements, alpha),
             degenerate=any(r.degenerate for r in results),
             policy_applied=any(r.policy_applied for r in results),
             data_disagrees=pair in skeleton.disagreements,
@@ -171,7 +179,7 @@ def evidence_frame(
             if row[word]:
                 flags.append(word)
         if know:
-            flags.append(know)
+            flags.append("reviewer_rejected" if know == "rejected" else know)
         if row["orientation"] == "ambiguous":
             flags.append("ambiguous_orientation")
         row["flags"] = ";".join(flags)
@@ -180,10 +188,11 @@ def evidence_frame(
     frame = pd.DataFrame(rows)
     if frame.empty:
         frame = pd.DataFrame(columns=EVIDENCE_COLUMNS)
-    kept = frame["linked"].astype(bool) & frame["pvalue"].notna()
+    # q-values over every pair that was tested (linked or separated), each at its deciding p-value
+    tested = frame["pvalue"].notna()
     frame["qvalue"] = np.nan
-    if kept.any():
-        frame.loc[kept, "qvalue"] = benjamini_hochberg(frame.loc[kept, "pvalue"].to_numpy())
+    if tested.any():
+        frame.loc[tested, "qvalue"] = benjamini_hochberg(frame.loc[tested, "pvalue"].to_numpy())
     frame = frame[EVIDENCE_COLUMNS]
     return frame.astype(
         {"linked": "bool", "dof": "int64", "n": "int64", "level": "int64", "n_tests": "int64",
@@ -198,19 +207,27 @@ def _explain(row: dict[str, object], alpha: float) -> str:
     p = float(row["pvalue"])  # type: ignore[arg-type]
     given = _set_text(str(row["given"]))
     if row["knowledge"] == "forbidden":
-        return "separated by expert knowledge: the pair was never tested."
+        return "separated by the configuration (knowledge.forbidden): the pair was never tested."
+    if row["knowledge"] == "rejected":
+        if row["data_disagrees"]:
+            return (
+                "separated by the reviewer (reject), but tonight's data disagree: every test found "
+                f"dependence, the weakest {p_is(p)} given {given}."
+            )
+        return (f"separated by the reviewer (reject); the data agree: no evidence of dependence "
+                f"given {given} ({p_is(p)} > alpha = {alpha:g}).")
     if not row["linked"]:
-        return f"separated: independent given {given} (p = {_fmt_p(p)} > alpha = {alpha:g})."
+        return f"separated: no evidence of dependence given {given} ({p_is(p)} > alpha = {alpha:g})."
     tried = "test" if n_tests == 1 else "conditioning sets"
     text = (
-        f"linked: no conditioning set among the {n_tests} {tried} tried made them independent; "
-        f"weakest evidence p = {_fmt_p(p)} given {given}."
+        f"linked: dependent under each of the {n_tests} {tried} tried; "
+        f"weakest evidence {p_is(p)} given {given}."
     )
     if row["knowledge"] == "required":
         if row["data_disagrees"]:
             return (
-                "linked by expert knowledge, but the data disagree: a test found them independent "
-                f"(largest p = {_fmt_p(p)} given {given})."
+                "linked by expert knowledge, but the data disagree: a test found no evidence of "
+                f"dependence (largest {p_is(p)} given {given})."
             )
         text = "linked by expert knowledge; " + text.split(": ", 1)[1]
     return text

@@ -7,6 +7,7 @@ package.
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -15,10 +16,10 @@ import pandas as pd
 
 from ..errors import DataError
 from ..report import _exports, _graph, _html
-from ..report._common import compare_truth, pair_key, signal_names
+from ..report._common import compare_truth, near_alpha, pair_key, signal_names
 from ..runs import atomic_write_bytes, atomic_write_text
 
-__all__ = ["ReportContext", "run"]
+__all__ = ["ReportContext", "render_report_html", "run"]
 
 _NEEDED = ("var_a", "var_b", "linked")
 
@@ -30,7 +31,9 @@ class ReportContext:
     Attributes
     ----------
     title : str
-        Page and graph title.
+        The service the run is about (``report.title``, else the configuration's ``name``).
+    night : str
+        The night (snapshot name) the run stands for; the page title reads "<title> — night of <night>".
     summary : dict
         ``{"input": path, "rows": {"read", "kept", "rejected", "quarantined"}, "dropped" (or
         "columns_dropped"): {column: reason}, "settings": {...}, "timings": {stage: seconds or
@@ -50,9 +53,19 @@ class ReportContext:
         Lines shown at the top of the summary.
     png : bool
         Also write ``graph.png``.
+    near_alpha_factor : float
+        A pair whose deciding p-value lies within this factor of alpha (either side) is marked.
+    changes : dict or None
+        What changed since the previous night, from the change test: ``previous_run`` (str),
+        ``added``, ``removed``, ``unconfirmed``, ``mechanism_changes`` (lists of dicts with
+        ``var_a``/``var_b`` or ``signal``, ``pvalue``, ``qvalue``), ``diff_href``, ``history_href``.
+    show_changes : bool
+        Show the "What changed since the previous night" section even when `changes` is None
+        (it then says there is no previous night to compare with); off for ad-hoc runs.
     """
 
     title: str = "edgeproof run"
+    night: str = ""
     summary: dict[str, Any] = field(default_factory=dict)
     levels: dict[str, list[str]] = field(default_factory=dict)
     alpha: float = 0.05
@@ -61,6 +74,9 @@ class ReportContext:
     review: dict[Any, dict[str, str]] | None = None
     warnings: list[str] = field(default_factory=list)
     png: bool = True
+    near_alpha_factor: float = 2.0
+    changes: dict[str, Any] | None = None
+    show_changes: bool = False
 
 
 def _with_review(evidence: pd.DataFrame, review: dict[Any, dict[str, str]] | None) -> pd.DataFrame:
@@ -113,7 +129,7 @@ def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out
     if missing:
         raise DataError(f"Evidence table lacks column(s) {', '.join(missing)}; pass the skeleton stage's evidence.")
     out = Path(out_dir)
-    ev = _with_review(evidence.reset_index(drop=True), context.review)
+    ev = _prepared(evidence, context)
     names = signal_names(ev, context.levels)
     graph = _graph.build_graph(ev, names, context.levels, context.alpha, context.orient)
     svg = _graph.render(graph, "svg", "graph.svg")
@@ -127,6 +143,20 @@ def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out
     nxg = _exports.build_nx_graph(ev, names, context.levels)
     files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", _exports.graphml_bytes(nxg))
     files["graph.json"] = atomic_write_bytes(out / "graph.json", _exports.node_link_json(nxg))
+    files["report.html"] = _write_page(ev, tests, context, names, svg, out)
+    return files
+
+
+def _prepared(evidence: pd.DataFrame, context: ReportContext) -> pd.DataFrame:
+    """The evidence with the reviewer's columns and the near-alpha mark added."""
+    ev = _with_review(evidence.reset_index(drop=True), context.review)
+    if "pvalue" in ev.columns:
+        ev["near_alpha"] = [near_alpha(p, context.alpha, context.near_alpha_factor) for p in ev["pvalue"]]
+    return ev
+
+
+def _write_page(ev: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, names: list[str], svg: bytes,
+                out: Path) -> Path:
     truth_svg, split = None, None
     if context.truth_edges is not None:
         linked = [(str(a), str(b)) for a, b, k in zip(ev["var_a"], ev["var_b"], ev["linked"]) if bool(k)]
@@ -134,5 +164,53 @@ def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out
         known = _graph.build_truth_graph(names, context.levels, context.truth_edges, linked)
         truth_svg = _html.inline_svg(_graph.render(known, "svg", "the known graph"), "known-")
     page = _html.build_html(context, ev, tests, names, _html.inline_svg(svg), truth_svg, split)
-    files["report.html"] = atomic_write_text(out / "report.html", page)
-    return files
+    return atomic_write_text(out / "report.html", page)
+
+
+def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> ReportContext:
+    """The report context of a finished run folder, read back from its manifest and levels."""
+    d = Path(run_dir)
+    manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
+    levels = json.loads((d / "levels.json").read_text(encoding="utf-8")).get("levels", {})
+    cfg = manifest.get("config") or {}
+    section = lambda name: cfg.get(name) or {}  # noqa: E731
+    truth = None
+    truth_file = section("report").get("truth_file")
+    if truth_file and Path(truth_file).is_file():
+        edges = json.loads(Path(truth_file).read_text(encoding="utf-8")).get("edges", [])
+        if isinstance(edges, dict):  # per snapshot
+            edges = edges.get(manifest.get("night", "")) or next(iter(edges.values()), [])
+        truth = [(str(a), str(b)) for a, b in edges]
+    return ReportContext(
+        title=section("report").get("title") or cfg.get("name") or "edgeproof run",
+        night=str(manifest.get("night") or d.resolve().name),
+        summary={
+            "input": (manifest.get("input") or {}).get("path"), "rows": manifest.get("rows") or {},
+            "columns_dropped": (manifest.get("columns") or {}).get("dropped") or {},
+            "settings": {k: section(k) for k in ("test", "search", "discretise")},
+            "timings": manifest.get("stages") or {},
+        },
+        levels=levels,
+        alpha=float(section("test").get("alpha", 0.05)),
+        orient=bool(section("search").get("orient", False)),
+        truth_edges=truth,
+        review={(c["var_a"], c["var_b"]): c for c in manifest.get("review") or []} or None,
+        warnings=list(manifest.get("warnings") or []),
+        near_alpha_factor=float(section("search").get("near_alpha_factor", 2.0)),
+        changes=changes,
+        show_changes=True,
+    )
+
+
+def render_report_html(run_dir: Path, changes: dict[str, Any] | None) -> Path:
+    """Re-render report.html of a finished run folder from its files, with what changed since the
+    previous night (`changes`, see `ReportContext`; None: "no previous night to compare with").
+
+    The graph drawing (graph.svg) is reused as it is; the page is replaced atomically.
+    """
+    d = Path(run_dir)
+    context = context_from_run(d, changes)
+    ev = _prepared(pd.read_parquet(d / "evidence.parquet"), context)
+    tests = pd.read_parquet(d / "tests.parquet")
+    names = signal_names(ev, context.levels)
+    return _write_page(ev, tests, context, names, (d / "graph.svg").read_bytes(), d)
