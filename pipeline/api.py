@@ -172,12 +172,9 @@ def _truth_edges(cfg: Config, input_path: Path) -> list[tuple[str, str]] | None:
     p = Path(path)
     if not p.is_file():
         raise ConfigError(f"`report.truth_file` = `{p}` does not exist; fix the path or remove the key.")
-    data = json.loads(p.read_text(encoding="utf-8"))
-    edges = data.get("edges", [])
-    if isinstance(edges, dict):  # per snapshot
-        key = input_path.stem
-        edges = edges.get(key) or edges.get(input_path.name) or next(iter(edges.values()), [])
-    return [tuple(e) for e in edges]  # type: ignore[misc]
+    from .stages._data_read import read_truth_edges
+
+    return read_truth_edges(p, input_path)
 
 
 def _coded_matrix(codes: pd.DataFrame) -> np.ndarray:

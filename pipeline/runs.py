@@ -330,10 +330,17 @@ def check_outside_nightly_root(final: Path, cfg: Any, config_path: str | os.Path
 
 def _own_partial(folder: Path) -> bool:
     """A `.NAME.partial` folder edgeproof started: it holds the marker, is still empty (killed right
-    after creating it) or is complete up to its manifest (killed while being published)."""
+    after creating it), is complete up to its manifest (killed while being published), or has the
+    run's lock file ``.locks/NAME`` beside it (left by a version that wrote no marker)."""
     if folder.is_symlink() or not folder.is_dir():
         return False
-    return (folder / PARTIAL_MARKER).is_file() or not any(folder.iterdir()) or is_run_folder(folder)
+    name = folder.name[1:-len(".partial")] if folder.name.endswith(".partial") else ""
+    return (
+        (folder / PARTIAL_MARKER).is_file()
+        or not any(folder.iterdir())
+        or is_run_folder(folder)
+        or (bool(name) and (folder.parent / ".locks" / name / ".lock").is_file())
+    )
 
 
 def start_partial(partial: Path) -> None:
@@ -355,29 +362,21 @@ def start_partial(partial: Path) -> None:
 def clean_stale_partials(parent: Path, keep: str) -> list[str]:
     """Delete the `.NAME.partial` folders failed or killed runs left in `parent`; returns their names.
 
-    Only folders edgeproof started (they hold its marker file, and ``.locks/NAME`` exists beside
-    them) whose lock nobody holds are removed; `keep` (the run starting now) is left alone.
+    Only folders edgeproof started (see `_own_partial`; the run's lock ``.locks/NAME`` must exist
+    too) whose lock nobody holds are removed; `keep` (the run starting now) is left alone.
     """
-    from filelock import FileLock, Timeout
-
     removed: list[str] = []
     for entry in sorted(parent.glob(".*.partial")):
         name = entry.name[1:-len(".partial")]
-        lock_file = parent / ".locks" / name
-        if name == keep or not lock_file.is_file() or not _own_partial(entry):
+        lock_dir = parent / ".locks" / name
+        if name == keep or not (lock_dir / ".lock").is_file() or not _own_partial(entry):
             continue
-        lock = FileLock(str(lock_file))
+        trash = parent / f".{name}.stale-{os.getpid()}"
         try:
-            lock.acquire(timeout=0)
-        except Timeout:
-            continue  # another run is assembling it now
-        try:
-            trash = parent / f".{name}.stale-{os.getpid()}"
-            os.replace(entry, trash)
-        except OSError:
-            continue
-        finally:
-            lock.release()
+            with run_lock(lock_dir, 0.0):  # held only for the rename: a run starting now is not kept waiting
+                os.replace(entry, trash)
+        except (LockHeldError, OSError):
+            continue  # another run is assembling it now, or it went meanwhile
         shutil.rmtree(trash, ignore_errors=True)
         removed.append(entry.name)
     return removed

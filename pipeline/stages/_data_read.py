@@ -718,3 +718,24 @@ def check_wanted(wanted: list[str] | None, seen: list[str], what: str = "input.c
                 f"`{what}` names column `{name}`, which the input does not have"
                 f"{close_matches(name, seen)}."
             )
+
+
+# ----------------------------------------------------------------------------- a known true graph
+
+
+def read_truth_edges(path: Path, input_path: Path) -> list[tuple[str, str]]:
+    """The pairs of a truth file (``report.truth_file``) for this input; `ConfigError` when the file
+    is not ``{"edges": [[a, b], ...]}`` or ``{"edges": {"<snapshot>": [[a, b], ...], ...}}``."""
+    shape = 'a JSON object {"edges": [["a", "b"], ...]} (or {"edges": {"<snapshot>": [...]}})'
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as err:
+        raise ConfigError(f"`report.truth_file` = `{path}` is not readable JSON ({_first_line(err)}); it must be {shape}.") from err
+    edges = data.get("edges") if isinstance(data, dict) else None
+    if isinstance(edges, dict):  # per snapshot
+        edges = edges.get(input_path.stem) or edges.get(input_path.name) or next(iter(edges.values()), [])
+    if not isinstance(edges, list) or not all(
+        isinstance(e, (list, tuple)) and len(e) == 2 and all(isinstance(v, str) for v in e) for e in edges
+    ):
+        raise ConfigError(f"`report.truth_file` = `{path}` is not {shape}; fix the file or remove the key.")
+    return [(str(a), str(b)) for a, b in edges]
