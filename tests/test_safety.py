@@ -108,9 +108,10 @@ def test_out_at_or_inside_the_input_folder_is_refused(tmp_path, refused, out, ma
     refused("run", "--input", "inbox", "--out", out, "--quiet", match=match)
 
 
-@pytest.mark.parametrize("out", [".", "..", "/"])
+@pytest.mark.parametrize("out", [".", ".."])
 def test_out_dot_is_refused(tmp_path, refused, out):
-    """`--out .` (and `..`, `/`) names no run folder of its own: exit 2, nothing changed."""
+    """`--out .` (and `..`) names no run folder of its own: exit 2, nothing changed. (`--out /` is
+    refused the same way; it is not tried here, since a regression would write into `/`.)"""
     small_extract(tmp_path / "base.csv")
     refused("run", "--input", "base.csv", "--out", out, "--quiet", match="names no folder of its own",
             subprocess=out == ".")
