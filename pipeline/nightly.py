@@ -11,7 +11,11 @@ What counts as a snapshot
     An entry is *not ready yet* when it was modified less than ``nightly.settle_seconds`` ago (for
     a folder: its newest file), or, when ``nightly.ready_marker`` is set, when a partition folder
     does not hold that marker file (a folder with the marker is ready at once). Entries not ready
-    are left for the next start.
+    are left for the next start. A modification time in the future is not trusted: that file's
+    status-change time (this machine's clock) is used instead.
+Roots
+    The inbox and the output root must be separate: the same folder, or one inside the other, is
+    refused (`ConfigError`) before anything is written.
 Run folder names
     The snapshot's name without its data suffixes (``2026-11-01.csv.gz`` -> ``2026-11-01``);
     characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``. A name that could
@@ -27,7 +31,9 @@ Pointers
     After each successful run, ``latest`` (a relative symlink, replaced atomically) and
     ``latest.json`` name the successful run that comes last by name; ``previous`` and the
     ``previous`` key of ``latest.json`` name the successful run just before it. A late snapshot
-    that sorts before the latest one therefore never moves ``latest`` backwards.
+    that sorts before the latest one therefore never moves ``latest`` backwards. Only runs the state
+    records as nightly's own successes count. A pointer naming a run that no longer exists is
+    repaired at the start, with one ``note`` line.
 Retention
     Beyond ``output.keep_runs`` successful runs, the oldest by name are deleted; the latest run is
     never deleted. The state keeps their ``ok`` status so they are not run again.
