@@ -536,7 +536,7 @@ def read_parquet(
     try:
         table = pfile.read(columns=chosen, use_pandas_metadata=False)
         table = table.rename_columns([n for n in names if wanted is None or n in wanted])
-        frame = _plain_values(_flat(table).to_pandas())
+        frame = _arrow_frame(table)
     except (pa.ArrowException, OSError) as err:
         raise DataError(
             f"`{path}` could not be read as Parquet: {str(err).splitlines()[0]}."
@@ -572,12 +572,14 @@ def read_jsonl(
     rejected: list[tuple[str, int, str, str]] = []
     if data.lstrip(b" \t\r\n").startswith(b"["):
         frame, rejected = _json_array(data, path)
+        frame = _plain_values(frame)
         records = np.asarray(frame.index, dtype=np.int64)
     else:
         try:
-            frame = _flat(pa_json.read_json(pa.BufferReader(data))).to_pandas()
+            frame = _arrow_frame(pa_json.read_json(pa.BufferReader(data)))
         except pa.ArrowInvalid:
             frame, rejected = _jsonl_slow(data, path, records)
+            frame = _plain_values(frame)
     if frame.empty or frame.shape[1] == 0:
         raise DataError(f"`{path}` has no data rows; check the extract.")
     raw_names = [str(c) for c in frame.columns]
@@ -588,7 +590,6 @@ def read_jsonl(
         frame = frame[[n for n in names if n in wanted]]
     frame.index = pd.Index(records[: len(frame)] if not rejected else frame.index, name="line")
     rejected += [(str(path), ln, f"bytes not valid {settings.encoding}", t) for ln, t in bad_lines]
-    frame = _plain_values(frame)
     info = {
         "path": str(path),
         "format": "jsonl",
@@ -601,11 +602,17 @@ def read_jsonl(
     return _Part(frame, rejected, info)
 
 
-def _flat(table: pa.Table) -> pa.Table:
-    """Struct columns split into one column per field (``s.q``), however deep they nest."""
+def _arrow_frame(table: pa.Table) -> pd.DataFrame:
+    """A typed table as a DataFrame of plain values: struct columns split into one column per field
+    (``s.q``), however deep they nest; list and map columns as their JSON text. Arrow columns hold
+    one type each, so only the nested ones are looked at value by value."""
     while any(pa.types.is_struct(t) for t in table.schema.types):
         table = table.flatten()
-    return table
+    frame = table.to_pandas()
+    for name, typ in zip(table.column_names, table.schema.types):
+        if pa.types.is_nested(typ) or (pa.types.is_dictionary(typ) and pa.types.is_nested(typ.value_type)):
+            frame[name] = frame[name].map(_as_text)
+    return frame
 
 
 def _as_text(value: Any) -> Any:
@@ -630,9 +637,10 @@ def _kind(value: Any) -> str:
 
 
 def _plain_values(frame: pd.DataFrame) -> pd.DataFrame:
-    """Every column holds one kind of plain value: lists, maps and other nested values become their
-    JSON text, and a column mixing numbers with words becomes text (the clean stage then decides,
-    per `clean.text_in_numeric`, what the words in a numeric column mean)."""
+    """Every column of a frame built from Python objects (JSON read line by line) holds one kind of
+    plain value: lists, maps and other nested values become their JSON text, and a column mixing
+    numbers with words becomes text (the clean stage then decides, per `clean.text_in_numeric`,
+    what the words in a numeric column mean)."""
     for col in frame.columns:
         if frame[col].dtype != object:
             continue
