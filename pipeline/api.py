@@ -37,11 +37,16 @@ from .runs import (
     atomic_write_json,
     atomic_write_parquet,
     atomic_write_text,
+    cap_parallel_jobs,
+    check_out_dir,
+    clean_stale_partials,
+    default_run_dir,
     fingerprint_paths,
     output_root,
     publish_run,
     run_lock,
     safe_name,
+    start_partial,
 )
 from .search.knowledge import Knowledge
 from .stages import report
@@ -150,12 +155,9 @@ def _truth_edges(cfg: Config, input_path: Path) -> list[tuple[str, str]] | None:
     p = Path(path)
     if not p.is_file():
         raise ConfigError(f"`report.truth_file` = `{p}` does not exist; fix the path or remove the key.")
-    data = json.loads(p.read_text(encoding="utf-8"))
-    edges = data.get("edges", [])
-    if isinstance(edges, dict):  # per snapshot
-        key = input_path.stem
-        edges = edges.get(key) or edges.get(input_path.name) or next(iter(edges.values()), [])
-    return [tuple(e) for e in edges]  # type: ignore[misc]
+    from .stages._data_read import read_truth_edges
+
+    return read_truth_edges(p, input_path)
 
 
 _coded_matrix = coded_matrix  # the probe command codes its table the same way
@@ -224,16 +226,16 @@ def run_pipeline(
     source = Path(input_path)
     files = _input_files(source)
     if out_dir is None:
-        stem = safe_name(source.stem if source.is_file() else source.name)
-        out_dir = output_root(cfg, config_path) / (safe_name(run_name) if run_name else f"{stem}-{time.strftime('%Y%m%dT%H%M%S')}")
+        out_dir = output_root(cfg, config_path) / safe_name(run_name) if run_name else default_run_dir(cfg, config_path, source)
     final = Path(out_dir)
+    check_out_dir(final, source, files)
+    cfg, jobs_note = cap_parallel_jobs(cfg)
     final.parent.mkdir(parents=True, exist_ok=True)
     partial = final.parent / f".{final.name}.partial"
     cache = StageCache.beside(final.parent).open()
     with run_lock(final.parent / ".locks" / final.name, 0.0):
-        if partial.exists():
-            shutil.rmtree(partial)
-        partial.mkdir(parents=True)
+        clean_stale_partials(final.parent, keep=final.name)
+        start_partial(partial)
         par = cfg.parallel
         # the workers start in the background while the data stages run
         with parallel_context(par.jobs, par.backend, par.scheduler) as workers:
@@ -241,6 +243,7 @@ def run_pipeline(
             manifest = _run_plan(runner, source, files, partial, rep, run_name)
         manifest.update(started=started, finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                         seconds=round(time.perf_counter() - t_start, 3), out_dir=str(final.resolve()))
+        manifest["warnings"] += [jobs_note] if jobs_note else []
         atomic_write_json(partial / "manifest.json", manifest)
         publish_run(partial, final)
         cache.prune(cfg.output.cache_entries, protect=runner.entries())

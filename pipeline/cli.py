@@ -104,8 +104,11 @@ def _reporter(args: argparse.Namespace):
 
 def _cmd_run(args: argparse.Namespace) -> int:
     from .api import run_pipeline
+    from .runs import check_outside_nightly_root
 
     cfg = _load(args)
+    if args.out:
+        check_outside_nightly_root(Path(args.out), cfg, args.config)
     res = run_pipeline(cfg, args.input, args.out, config_path=args.config, reporter=_reporter(args))
     linked = int(res.evidence["linked"].sum())
     print(f"{res.out_dir}: {linked} linked pairs of {len(res.evidence)}; report {res.out_dir / 'report.html'}")

@@ -1,13 +1,16 @@
 """The configuration schema: defaults, validation and ``--set key=value`` overrides.
 
-A configuration is YAML (loaded with ``yaml.safe_load``: nothing in it is executed), validated by
-pydantic models that refuse unknown keys, wrong types and out-of-range values with a one-line message
-naming the key, the value and what is allowed.
+A configuration is YAML (loaded with a safe loader: nothing in it is executed; a key repeated in one
+mapping is refused, and so is a file whose anchors and aliases expand to more than `MAX_CONFIG_VALUES`
+values), validated by pydantic models that refuse unknown keys, wrong types, infinite numbers and
+out-of-range values with a one-line message naming the key, the value (shortened) and what is allowed.
 """
 
 from __future__ import annotations
 
+import codecs
 import copy
+import reprlib
 from pathlib import Path
 from typing import Annotated, Any, Literal, Optional, Union
 
@@ -20,7 +23,7 @@ __all__ = ["Config", "load_config", "apply_overrides", "config_from_dict", "reso
 
 
 class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", validate_assignment=True)
+    model_config = ConfigDict(extra="forbid", validate_assignment=True, allow_inf_nan=False)
 
 
 class ColumnSpec(_Section):
@@ -50,6 +53,22 @@ class InputSettings(_Section):
     # Lines whose bytes do not decode with `encoding`: "quarantine" sets them aside (with the reason)
     # while they are a small minority of the file, "refuse" stops at the first one.
     encoding_errors: Literal["quarantine", "refuse"] = "quarantine"
+
+    @field_validator("encoding")
+    @classmethod
+    def _known_encoding(cls, value: str) -> str:
+        try:
+            codecs.lookup(value)
+        except LookupError:
+            raise ValueError("not an encoding Python knows; use e.g. utf-8, latin-1 or cp1252") from None
+        return value
+
+    @field_validator("columns")
+    @classmethod
+    def _some_columns(cls, value: Optional[list[str]]) -> Optional[list[str]]:
+        if value is not None and not value:
+            raise ValueError("an empty list selects no column; name the columns to read, or leave the key out to read every column")
+        return value
 
 
 class CleanSettings(_Section):
@@ -229,6 +248,81 @@ class Config(_Section):
         }
 
 
+# ----------------------------------------------------------------------------- reading YAML safely
+
+MAX_CONFIG_VALUES = 100_000  # values a configuration may expand to (anchors and aliases counted out)
+_SHOWN_CHARS = 80  # longest value or key echoed in a message
+
+
+class _RepeatedKey(yaml.YAMLError):
+    """A mapping holds the same key twice (YAML would silently keep the last one)."""
+
+    def __init__(self, key: Any, first: int, again: int) -> None:
+        super().__init__(f"repeated key {key!r}")
+        self.key, self.first, self.again = key, first, again
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """`yaml.SafeLoader` that refuses a key repeated in one mapping."""
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
+        seen: dict[Any, int] = {}
+        for key_node, _value in node.value:
+            if key_node.tag == "tag:yaml.org,2002:merge":
+                continue  # `<<: *defaults` may be overridden key by key
+            key = self.construct_object(key_node, deep=True)
+            try:
+                first = seen.setdefault(key, key_node.start_mark.line + 1)
+            except TypeError:
+                continue  # an unhashable key: the base loader reports it
+            if first != key_node.start_mark.line + 1:
+                raise _RepeatedKey(key, first, key_node.start_mark.line + 1)
+        return super().construct_mapping(node, deep=deep)
+
+
+def _yaml(text: str) -> Any:
+    return yaml.load(text, Loader=_StrictLoader)  # noqa: S506 - a SafeLoader subclass
+
+
+def _short(value: Any) -> str:
+    """`repr` of a value cut to a few dozen characters, without building the whole text first."""
+    r = reprlib.Repr()
+    r.maxlevel, r.maxlist, r.maxdict, r.maxtuple, r.maxstring, r.maxother = 3, 6, 6, 6, _SHOWN_CHARS, _SHOWN_CHARS
+    text = r.repr(value)
+    return text if len(text) <= _SHOWN_CHARS else text[: _SHOWN_CHARS - 3] + "..."
+
+
+def _check_size(data: Any) -> None:
+    """Refuse data whose anchors and aliases expand to more than `MAX_CONFIG_VALUES` values."""
+    sizes: dict[int, int] = {}
+    busy: set[int] = set()
+
+    def size(obj: Any) -> int:
+        if not isinstance(obj, (dict, list, tuple)):
+            return 1
+        key = id(obj)
+        if key in sizes:
+            return sizes[key]
+        if key in busy:
+            raise ConfigError("The configuration contains a value that contains itself (a YAML alias to its own anchor); remove it.")
+        busy.add(key)
+        items = list(obj.keys()) + list(obj.values()) if isinstance(obj, dict) else obj
+        total = 1
+        for item in items:
+            total += size(item)
+            if total > MAX_CONFIG_VALUES:
+                break
+        busy.discard(key)
+        sizes[key] = total
+        return total
+
+    if size(data) > MAX_CONFIG_VALUES:
+        raise ConfigError(
+            f"The configuration expands to more than {MAX_CONFIG_VALUES:,} values (YAML anchors and aliases "
+            "repeat what they name); write the values out, or use fewer aliases."
+        )
+
+
 def _key_path(loc: tuple[Any, ...], data: Any) -> tuple[list[str], Any]:
     """The part of an error location that names configuration keys, and the value found there."""
     parts: list[str] = []
@@ -260,13 +354,14 @@ def _describe(err: ValidationError, data: dict[str, Any]) -> str:
             model = field.annotation if field is not None else None
         allowed = sorted(model.model_fields) if hasattr(model, "model_fields") else []
         hint = f"; allowed keys here: {', '.join(allowed)}" if allowed else ""
-        return f"Unknown configuration key `{key}`{hint}."
+        return f"Unknown configuration key `{key[:_SHOWN_CHARS]}`{hint}."
     # a key whose type is a union (`auto` or a number, say) reports one error per branch
     msgs = []
     for e in errors:
-        if ".".join(_key_path(e["loc"], data)[0]) == key and e["msg"] not in msgs:
-            msgs.append(e["msg"])
-    return f"Configuration key `{key}` = {value!r} is not allowed: {'; or '.join(msgs)}."
+        msg = e["msg"].removeprefix("Value error, ")
+        if ".".join(_key_path(e["loc"], data)[0]) == key and msg not in msgs:
+            msgs.append(msg)
+    return f"Configuration key `{key[:_SHOWN_CHARS]}` = {_short(value)} is not allowed: {'; or '.join(msgs)}."
 
 
 def resolve_auto(cfg: Config, n_rows: int, cards: list[int]) -> tuple[Config, dict[str, Any]]:
@@ -308,6 +403,7 @@ def config_from_dict(data: dict[str, Any] | None) -> Config:
     data = data or {}
     if not isinstance(data, dict):
         raise ConfigError(f"The configuration must be a mapping of sections, got {type(data).__name__}.")
+    _check_size(data)
     try:
         return Config.model_validate(data)
     except ValidationError as err:
@@ -316,7 +412,7 @@ def config_from_dict(data: dict[str, Any] | None) -> Config:
 
 def _parse_value(text: str) -> Any:
     try:
-        return yaml.safe_load(text)
+        return _yaml(text)
     except yaml.YAMLError:
         return text
 
@@ -358,7 +454,12 @@ def load_config(path: Union[str, Path, None] = None, overrides: Optional[list[st
         if not p.is_file():
             raise ConfigError(f"Configuration file `{p}` does not exist; check the path given to --config.")
         try:
-            data = yaml.safe_load(p.read_text(encoding="utf-8")) or {}
+            data = _yaml(p.read_text(encoding="utf-8")) or {}
+        except _RepeatedKey as err:
+            raise ConfigError(
+                f"Configuration file `{p}` gives the key `{str(err.key)[:_SHOWN_CHARS]}` twice in one "
+                f"mapping (lines {err.first} and {err.again}); keep one of them (merge repeated sections)."
+            ) from err
         except (yaml.YAMLError, UnicodeDecodeError) as err:
             line = getattr(getattr(err, "problem_mark", None), "line", None)
             where = f" at line {line + 1}" if line is not None else ""

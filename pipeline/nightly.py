@@ -11,7 +11,11 @@ What counts as a snapshot
     An entry is *not ready yet* when it was modified less than ``nightly.settle_seconds`` ago (for
     a folder: its newest file), or, when ``nightly.ready_marker`` is set, when a partition folder
     does not hold that marker file (a folder with the marker is ready at once). Entries not ready
-    are left for the next start.
+    are left for the next start. A modification time in the future is not trusted: that file's
+    status-change time (this machine's clock) is used instead.
+Roots
+    The inbox and the output root must be separate: the same folder, or one inside the other, is
+    refused (`ConfigError`) before anything is written.
 Run folder names
     The snapshot's name without its data suffixes (``2026-11-01.csv.gz`` -> ``2026-11-01``);
     characters other than letters, digits, ``.``, ``_`` and ``-`` become ``_``. A name that could
@@ -27,7 +31,9 @@ Pointers
     After each successful run, ``latest`` (a relative symlink, replaced atomically) and
     ``latest.json`` name the successful run that comes last by name; ``previous`` and the
     ``previous`` key of ``latest.json`` name the successful run just before it. A late snapshot
-    that sorts before the latest one therefore never moves ``latest`` backwards.
+    that sorts before the latest one therefore never moves ``latest`` backwards. Only runs the state
+    records as nightly's own successes count. A pointer naming a run that no longer exists is
+    repaired at the start, with one ``note`` line.
 Retention
     Beyond ``output.keep_runs`` successful runs, the oldest by name are deleted; the latest run is
     never deleted. The state keeps their ``ok`` status so they are not run again.
@@ -160,6 +166,7 @@ def run(cfg: Config, config_path: Optional[Path] = None, *, log: LogFn = None) -
     """
     inbox = _inbox(cfg)
     root = _output_root(cfg, config_path)
+    _check_roots(inbox, root)
     root.mkdir(parents=True, exist_ok=True)
     emit = _logger(log, root)
     with _lock(root, cfg.nightly.lock_wait_seconds):
@@ -183,17 +190,37 @@ def nightly_main(cfg: Config, config_path: Optional[Path] = None, *, log: LogFn 
 
 
 def successful_runs(root: Union[str, Path]) -> list[str]:
-    """Names of the run folders under `root` whose ``manifest.json`` says ``status: ok``, by name."""
+    """Names of the successful runs nightly made under `root`, by name.
+
+    A run counts when its folder's ``manifest.json`` says ``status: ok`` and, once
+    ``nightly-state.json`` exists, the state records it as a successful snapshot: folders written
+    there by anything else (an ad-hoc ``run --out``) never become `latest` and are never pruned.
+    """
     root = Path(root)
     if not root.is_dir():
         return []
+    made = _nightly_names(root)
     names = []
     for entry in os.scandir(root):
         if entry.name.startswith(".") or entry.name in RESERVED_NAMES or entry.is_symlink():
             continue
+        if made is not None and entry.name not in made:
+            continue
         if entry.is_dir() and _manifest_ok(Path(entry.path)):
             names.append(entry.name)
     return sorted(names)
+
+
+def _nightly_names(root: Path) -> Optional[set[str]]:
+    """Snapshot names the state file records as successful, or None when there is no state file."""
+    try:
+        data = json.loads((root / STATE_FILE).read_text(encoding="utf-8"))
+        snapshots = data["snapshots"]
+        return {name for name, rec in snapshots.items() if isinstance(rec, dict) and rec.get("status") == "ok"}
+    except FileNotFoundError:
+        return None
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        return set()
 
 
 def read_pointer(root: Union[str, Path], which: str) -> Optional[str]:
@@ -278,11 +305,8 @@ def _process(
     deleted: list[str] = []
     seen_names: dict[str, str] = {}
     now = time.time()
-    root_real = root.resolve()
+    _repair_pointers(root, emit)
     for entry in _entries(inbox):
-        real = entry.path.resolve()
-        if real == root_real or real in root_real.parents:
-            continue  # the output root itself lives in the inbox: never a snapshot
         source = str(entry.path)
         try:
             name = snapshot_run_name(entry.entry_name)
@@ -476,6 +500,17 @@ def _inbox(cfg: Config) -> Path:
     return inbox
 
 
+def _check_roots(inbox: Path, root: Path) -> None:
+    """Refuse an inbox and an output root that overlap: each would take the other's files for its own."""
+    a, b = inbox.resolve(), root.resolve()
+    if a == b or b in a.parents or a in b.parents:
+        how = "is" if a == b else ("lies inside" if b in a.parents else "holds")
+        raise ConfigError(
+            f"The inbox `{inbox}` (nightly.inbox) {how} the output root `{root}` (output.root); "
+            "give them separate folders, e.g. `data/inbox` and `outputs/site`."
+        )
+
+
 def _entries(inbox: Path) -> list[_Entry]:
     """Candidate snapshots in name order, without hidden and in-progress names."""
     out = []
@@ -538,14 +573,37 @@ def _not_ready(entry: _Entry, cfg: Config, now: float) -> str:
         if (entry.path / marker).exists():
             return ""
         return f"partition folder has no `{marker}` marker yet (nightly.ready_marker)"
-    newest = _stamp(entry)[2] / 1e9
-    age = now - newest
+    age = _settle_age(entry, now)
     if age < cfg.nightly.settle_seconds:
         return (
             f"modified {max(age, 0.0):.0f} s ago, less than nightly.settle_seconds = "
             f"{cfg.nightly.settle_seconds:g}"
         )
     return ""
+
+
+def _settle_age(entry: _Entry, now: float) -> float:
+    """Seconds since the snapshot last changed, by this machine's clock.
+
+    A modification time in the future (set by another machine's clock, or by hand) says nothing
+    about when the file was written here, so that file's status-change time is used instead: the
+    local clock's moment of the last write or copy. Were that in the future too, the file counts
+    as settled (age infinite) rather than waiting for ever.
+    """
+    paths = [entry.path]
+    if entry.is_dir:
+        paths += [Path(d) / n for d, _dirs, files in os.walk(entry.path) for n in files]
+    newest = float("-inf")
+    for p in paths:
+        try:
+            st = p.stat()
+        except OSError:
+            continue
+        changed = st.st_mtime if st.st_mtime <= now + 1.0 else st.st_ctime
+        if changed > now + 1.0:
+            return float("inf")
+        newest = max(newest, changed)
+    return now - newest
 
 
 # ----------------------------------------------------------------------------- output root
@@ -574,10 +632,42 @@ def _checked_pointer(root: Path, name: Optional[str]) -> Optional[str]:
     return name if (root / name).is_dir() else None
 
 
+def _repair_pointers(root: Path, emit: Callable[..., None]) -> None:
+    """Point ``latest``/``previous`` again at runs that exist when one of them names a missing run."""
+    dangling = []
+    for which in sorted(RESERVED_NAMES):
+        named = _raw_pointer(root, which)
+        if named and read_pointer(root, which) != named:
+            dangling.append(f"`{which}` named `{named}`, which no longer exists")
+        elif named and which == "latest" and named not in successful_runs(root):
+            dangling.append(f"`{which}` named `{named}`, which is not a successful nightly run")
+    if not dangling:
+        return
+    _update_pointers(root)
+    now = read_pointer(root, "latest")
+    emit("pointers", "repaired", 0.0, f"{'; '.join(dangling)}; `latest` is now `{now or '-'}`", kind="note")
+
+
+def _raw_pointer(root: Path, which: str) -> Optional[str]:
+    """The name a pointer holds (``latest.json`` first, then the symlink), whether or not it exists."""
+    try:
+        data = json.loads((root / "latest.json").read_text(encoding="utf-8"))
+        name = data.get("name" if which == "latest" else "previous")
+        if isinstance(name, str) and name:
+            return name
+    except (OSError, ValueError, AttributeError):
+        pass
+    link = root / which
+    return os.readlink(link) if link.is_symlink() else None
+
+
 def _update_pointers(root: Path) -> None:
     """Point ``latest``/``previous`` (symlinks and ``latest.json``) at the last two successful runs."""
     runs = successful_runs(root)
-    if not runs:
+    if not runs:  # nothing to point at: no pointer at all rather than one at a missing run
+        for stale in (root / "latest", root / "previous", root / "latest.json"):
+            if stale.is_symlink() or stale.is_file():
+                stale.unlink()
         return
     latest = runs[-1]
     previous = runs[-2] if len(runs) > 1 else None
@@ -675,7 +765,8 @@ def _logger(log: LogFn, root: Path) -> Callable[..., None]:
     `logging.Logger` (gets an info line), any callable taking a line, or None (standard error).
     """
 
-    def emit(name: str, result: str, seconds: float = 0.0, message: str = "", **extra: Any) -> None:
+    def emit(name: str, result: str, seconds: float = 0.0, message: str = "", *, kind: str = "snapshot",
+             **extra: Any) -> None:
         fields = {"name": name, "result": result, "seconds": round(seconds, 1), **extra}
         if message:
             fields["message"] = message
@@ -683,15 +774,15 @@ def _logger(log: LogFn, root: Path) -> Callable[..., None]:
             f"{k}={v}" if k != "message" else f"message={json.dumps(v)}" for k, v in fields.items()
         )
         if log is None:
-            print(f"edgeproof: snapshot {line}", file=sys.stderr, flush=True)
+            print(f"edgeproof: {kind} {line}", file=sys.stderr, flush=True)
         elif hasattr(log, "event"):
-            log.event("snapshot", **fields)
+            log.event(kind, **fields)
         elif isinstance(log, logging.Logger):
-            log.info("snapshot %s", line)
+            log.info("%s %s", kind, line)
         else:
-            log(f"snapshot {line}")
+            log(f"{kind} {line}")
         with open(root / LOG_FILE, "a", encoding="utf-8") as fh:
-            fh.write(f"{_now_iso()} snapshot {line}\n")
+            fh.write(f"{_now_iso()} {kind} {line}\n")
 
     return emit
 

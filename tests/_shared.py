@@ -20,3 +20,36 @@ def benchmark_path(name: str) -> Path:
 def reference_skeleton(name: str) -> np.ndarray:
     """Skeleton (M != 0) of causal-learn's published PC-stable chi-square result on the set."""
     return np.loadtxt(benchmark_path(name) / "reference_pc_chisq_0.05_stable.txt") != 0
+
+
+def file_listing(root: Path, skip: tuple[str, ...] = ()) -> dict[str, tuple[object, str]]:
+    """Every entry under `root` (hidden ones too) with its size and sha256 (folders and links marked),
+    leaving out the relative paths in `skip` and everything under them."""
+    import hashlib
+    import os
+
+    out: dict[str, tuple[object, str]] = {}
+    for p in sorted(root.rglob("*")):
+        rel = p.relative_to(root).as_posix()
+        if any(rel == s or rel.startswith(s.rstrip("/") + "/") for s in skip):
+            continue
+        if p.is_symlink():
+            out[rel] = ("link", os.readlink(p))
+        elif p.is_dir():
+            out[rel] = ("dir", "")
+        else:
+            out[rel] = (p.stat().st_size, hashlib.sha256(p.read_bytes()).hexdigest())
+    return out
+
+
+def small_extract(path: Path, rows: int = 300, seed: int = 0) -> Path:
+    """An invented three-signal CSV (b depends on a, c independent), small enough for fast CLI checks."""
+    import pandas as pd
+
+    rng = np.random.default_rng(seed)
+    a = rng.integers(0, 3, rows)
+    b = (a + rng.integers(0, 2, rows)) % 3
+    c = rng.choice(["x", "y"], rows)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    pd.DataFrame({"a": a, "b": b, "c": c}).to_csv(path, index=False)
+    return path

@@ -164,11 +164,12 @@ def test_header_without_rows_has_no_data_rows(tmp_path):
 
 @pytest.mark.parametrize(
     "content",
-    [b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 4, gzip.compress(b"a,b\n1,2\n" * 50)],
-    ids=["png", "gzip"],
+    [b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 4, gzip.compress(b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 4)],
+    ids=["png", "gzipped-png"],
 )
 def test_binary_garbage_given_as_csv(tmp_path, content):
-    """A PNG image or a gzip file named .csv is refused as not a CSV/Parquet/JSON-lines file."""
+    """A PNG image, plain or gzip-compressed, named .csv is refused as not a CSV/Parquet/JSON-lines file
+    (compressed CSV is read: tests/test_bad_inputs.py)."""
     path = _write(tmp_path, "extract.csv", content)
     with pytest.raises(
         DataError, match=r"extract\.csv` does not look like a CSV/Parquet/JSON-lines file"

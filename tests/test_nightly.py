@@ -180,13 +180,13 @@ def test_run_names_cannot_escape_the_output_root(tmp_path, demo_files):
     assert not (root / "2026-11-01").exists()
 
 
-def test_output_root_inside_the_inbox_is_not_a_snapshot(tmp_path, demo_files):
-    """An output root placed inside the inbox is never taken for a snapshot."""
+def test_output_root_inside_the_inbox_is_refused(tmp_path, demo_files):
+    """An output root placed inside the inbox is refused before anything is written (more cases in
+    tests/test_safety.py)."""
     inbox = _inbox(tmp_path, demo_files[:1])
-    res = nightly.run(_config(inbox, inbox / "runs"), log=lambda line: None)
-    assert [(o.name, o.status) for o in res.outcomes] == [("2026-11-01", "ok")]
-    res = nightly.run(_config(inbox, inbox / "runs"), log=lambda line: None)
-    assert [(o.name, o.status) for o in res.outcomes] == [("2026-11-01", "done")]
+    with pytest.raises(ConfigError, match="holds the output root"):
+        nightly.run(_config(inbox, inbox / "runs"), log=lambda line: None)
+    assert not (inbox / "runs").exists()
 
 
 def test_missing_inbox_is_a_configuration_error(tmp_path):

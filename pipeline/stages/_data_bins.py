@@ -78,7 +78,7 @@ def fresh(
         cuts = []
     elif method == "uniform":
         lo, hi = float(present.min()), float(present.max())
-        cuts = sorted(set(lo + (hi - lo) * np.arange(1, bins) / bins)) if hi > lo else []
+        cuts = _uniform_cuts(lo, hi, bins)
     else:
         cuts = _quantile_cuts(present, bins)
     coded = apply_cuts(x, cuts)
@@ -111,6 +111,18 @@ def _fixed_cuts(name: str, spec: ColumnSpec | None) -> list[float]:
             f"`columns.{name}.edges` = {edges} must be finite and strictly increasing."
         )
     return [float(e) for e in edges]
+
+
+def _uniform_cuts(lo: float, hi: float, bins: int) -> list[float]:
+    """Equal-width cut points between `lo` and `hi`; near the largest float, where ``hi - lo``
+    overflows, they are computed as ``lo*(1-t) + hi*t`` instead, which stays finite."""
+    if not hi > lo:
+        return []
+    t = np.arange(1, bins) / bins
+    with np.errstate(over="ignore"):
+        width = hi - lo
+    cuts = lo + width * t if np.isfinite(width) else lo * (1.0 - t) + hi * t
+    return sorted({float(c) for c in cuts if np.isfinite(c) and lo < c <= hi})
 
 
 def _quantile_cuts(present: np.ndarray, bins: int) -> list[float]:

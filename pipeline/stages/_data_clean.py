@@ -137,7 +137,9 @@ def _from_text(
 ) -> Typed:
     plain = series.astype(object) if isinstance(series.dtype, pd.CategoricalDtype) else series
     codes, uniques = pd.factorize(plain, use_na_sentinel=True)
-    text = pd.Index(uniques, dtype=object).map(str).str.strip()
+    text = pd.Index(uniques, dtype=object).map(str)
+    nul = bool(text.str.contains("\x00", regex=False).any())
+    text = (text.str.replace("\x00", "", regex=False) if nul else text).str.strip()
     low = text.str.lower()
     infinite = np.asarray(low.isin(INFINITY_WORDS), dtype=bool)
     missing = np.asarray(low.isin(MISSING_WORDS), dtype=bool) | infinite
@@ -196,11 +198,7 @@ def _from_text(
         values = pd.Series(pd.array(per_unique[codes], dtype="boolean"), index=series.index)
         return Typed(name, "boolean", values, declared is not None, non_finite=non_finite)
     if kind == "timestamp":
-        stamps = pd.to_datetime(
-            pd.Series(np.asarray(text, dtype=object)).where(~missing, None),
-            errors="coerce",
-            format="ISO8601",
-        )
+        stamps = _parse_times(name, text, missing)
         unparsed = ~missing & stamps.isna().to_numpy()
         if unparsed.any():
             rows = np.flatnonzero(unparsed[codes] & (codes >= 0))
@@ -215,7 +213,27 @@ def _from_text(
     labels = np.asarray(text, dtype=object).copy()
     labels[missing] = None
     values = pd.Series(_take(labels, codes, None), index=series.index, dtype=object)
-    return Typed(name, "categorical", values, declared is not None, non_finite=non_finite)
+    typed = Typed(name, "categorical", values, declared is not None, non_finite=non_finite)
+    if nul:  # a NUL byte is never part of a level: it would break every text format downstream
+        typed.notes.append("NUL bytes removed from its values")
+    return typed
+
+
+def _parse_times(name: str, text: pd.Index, missing: np.ndarray) -> pd.Series:
+    """ISO 8601 times; a column mixing times with and without a time zone is refused."""
+    present = pd.Series(np.asarray(text, dtype=object)).where(~missing, None)
+    try:
+        return pd.to_datetime(present, errors="coerce", format="ISO8601")
+    except (ValueError, TypeError) as err:
+        zoned = present.dropna().astype(str).str.contains(r"(?:Z|[+-]\d{2}:?\d{2})$", regex=True)
+        example = ""
+        if zoned.any() and (~zoned).any():
+            example = f" (e.g. `{present.dropna()[zoned].iloc[0]}` and `{present.dropna()[~zoned].iloc[0]}`)"
+        raise DataError(
+            f"Column `{name}` mixes times with and without a time zone{example}, so they cannot be "
+            f"put on one clock; write every time with its offset (or none), or set "
+            f"`columns.{name}.type: ignore`."
+        ) from err
 
 
 def _take(per_unique: np.ndarray, codes: np.ndarray, fill: Any) -> np.ndarray:

@@ -42,6 +42,12 @@ _KNOWN_SUFFIXES = {
     ".ndjson": "jsonl",
     ".json": "jsonl",
 }
+_COMPRESSED = [  # (magic, codec, suffix, name); xz is read with the standard library, the rest with pyarrow
+    (b"\x1f\x8b", "gzip", ".gz", "gzip"),
+    (b"BZh", "bz2", ".bz2", "bzip2"),
+    (b"\xfd7zXZ\x00", "xz", ".xz", "xz"),
+    (b"\x28\xb5\x2f\xfd", "zstd", ".zst", "zstd"),
+]
 _MAGIC = [
     (b"\x89PNG", "a PNG image"),
     (b"\x1f\x8b", "gzip-compressed data"),
@@ -87,7 +93,8 @@ def find_files(source: str | Path) -> tuple[list[tuple[Path, dict[str, str]]], s
         files = [
             p for p in sorted(path.rglob("*")) if p.is_file() and not _hidden(p.relative_to(path))
         ]
-        files = [p for p in files if p.suffix.lower() in _KNOWN_SUFFIXES] or files
+        files = _outside_run_folders(files)
+        files = [p for p in files if _data_suffix(p) in _KNOWN_SUFFIXES] or files
         if not files:
             raise DataError(
                 f"Folder `{path}` holds no CSV, Parquet or JSON-lines files; check the input path."
@@ -101,6 +108,48 @@ def find_files(source: str | Path) -> tuple[list[tuple[Path, dict[str, str]]], s
         root = _glob_root(text)
         return [(p, _partition_values(_relative(p, root))) for p in files], "glob"
     raise DataError(f"Input `{text}` does not exist; check the path (a file, a glob or a folder).")
+
+
+def _outside_run_folders(files: list[Path]) -> list[Path]:
+    """The files that do not lie in an edgeproof run folder (an earlier run written into the input)."""
+    from ..runs import is_run_folder
+
+    runs = {p.parent for p in files if p.name == "manifest.json" and is_run_folder(p.parent)}
+    if not runs:
+        return files
+    return [p for p in files if not runs.intersection(p.parents)]
+
+
+def _data_suffix(path: Path) -> str:
+    """The suffix that names the format, behind a compression suffix (``x.csv.gz`` -> ``.csv``)."""
+    suffixes = [s.lower() for s in path.suffixes]
+    if len(suffixes) > 1 and suffixes[-1] in {c[2] for c in _COMPRESSED}:
+        return suffixes[-2]
+    return path.suffix.lower()
+
+
+def decompress(path: Path, raw: bytes) -> bytes:
+    """The bytes of a gzip, bzip2, xz or zstd compressed file, decompressed; other bytes as they are."""
+    for magic, codec, _suffix, name in _COMPRESSED:
+        if not raw.startswith(magic) or (codec == "bz2" and raw[3:4] not in b"123456789"):
+            continue
+        try:
+            if codec == "xz":
+                import lzma
+
+                return lzma.decompress(raw)
+            with pa.CompressedInputStream(pa.BufferReader(raw), codec) as stream:
+                return stream.read()
+        except (pa.ArrowException, OSError, EOFError, ValueError) as err:
+            raise DataError(
+                f"`{path}` is {name}-compressed but could not be decompressed "
+                f"({_first_line(err)}); check that the file was copied whole."
+            ) from err
+    return raw
+
+
+def _first_line(err: BaseException) -> str:
+    return (str(err).splitlines() or [type(err).__name__])[0][:160]
 
 
 def _hidden(rel: Path) -> bool:
@@ -142,7 +191,7 @@ def detect_format(path: Path, head: bytes, settings: InputSettings) -> str:
         return "parquet"
     fmt: str = settings.format
     if fmt == "auto":
-        fmt = _KNOWN_SUFFIXES.get(path.suffix.lower(), "")
+        fmt = _KNOWN_SUFFIXES.get(_data_suffix(path), "")
     if fmt == "parquet":
         raise DataError(
             f"`{path}` does not look like a Parquet file (it does not start with `PAR1`); "
@@ -157,7 +206,7 @@ def detect_format(path: Path, head: bytes, settings: InputSettings) -> str:
     if what is not None:
         raise DataError(
             f"`{path}` does not look like a CSV/Parquet/JSON-lines file (it looks like {what}); "
-            "give the extract itself (decompressed) as input."
+            "give the extract itself as input (gzip, bzip2, xz and zstd compression are read)."
         )
     if not fmt:
         stripped = head.lstrip(b"\xef\xbb\xbf \t\r\n")
@@ -305,7 +354,7 @@ def _check_rows(n_rows: int, total_before: int, path: Path, limits: LimitSetting
 
 
 def _clean_names(raw_names: list[str]) -> list[str]:
-    return [str(n).strip() or f"column_{i + 1}" for i, n in enumerate(raw_names)]
+    return [str(n).replace("\x00", "").strip() or f"column_{i + 1}" for i, n in enumerate(raw_names)]
 
 
 # ----------------------------------------------------------------------------- CSV
@@ -486,12 +535,13 @@ def read_parquet(
     chosen = [r for r, n in zip(raw_names, names) if wanted is None or n in wanted]
     try:
         table = pfile.read(columns=chosen, use_pandas_metadata=False)
+        table = table.rename_columns([n for n in names if wanted is None or n in wanted])
+        frame = _arrow_frame(table)
     except (pa.ArrowException, OSError) as err:
         raise DataError(
             f"`{path}` could not be read as Parquet: {str(err).splitlines()[0]}."
         ) from err
-    frame = table.to_pandas()
-    frame.columns = [n for n in names if wanted is None or n in wanted]
+    _check_columns([str(c) for c in frame.columns], path, limits, None)
     frame.index = pd.Index(np.arange(1, len(frame) + 1, dtype=np.int64), name="line")
     info = {
         "path": str(path),
@@ -520,13 +570,16 @@ def read_jsonl(
     records = nonempty_lines(data)
     _check_rows(len(records), rows_before, path, limits)
     rejected: list[tuple[str, int, str, str]] = []
-    try:
-        table = pa_json.read_json(pa.BufferReader(data))
-        while any(pa.types.is_struct(t) for t in table.schema.types):
-            table = table.flatten()
-        frame = table.to_pandas()
-    except pa.ArrowInvalid:
-        frame, rejected = _jsonl_slow(data, path, records)
+    if data.lstrip(b" \t\r\n").startswith(b"["):
+        frame, rejected = _json_array(data, path)
+        frame = _plain_values(frame)
+        records = np.asarray(frame.index, dtype=np.int64)
+    else:
+        try:
+            frame = _arrow_frame(pa_json.read_json(pa.BufferReader(data)))
+        except pa.ArrowInvalid:
+            frame, rejected = _jsonl_slow(data, path, records)
+            frame = _plain_values(frame)
     if frame.empty or frame.shape[1] == 0:
         raise DataError(f"`{path}` has no data rows; check the extract.")
     raw_names = [str(c) for c in frame.columns]
@@ -537,18 +590,6 @@ def read_jsonl(
         frame = frame[[n for n in names if n in wanted]]
     frame.index = pd.Index(records[: len(frame)] if not rejected else frame.index, name="line")
     rejected += [(str(path), ln, f"bytes not valid {settings.encoding}", t) for ln, t in bad_lines]
-    for col in frame.columns:  # lists and other nested values become their JSON text
-        if (
-            frame[col].dtype == object
-            and frame[col].map(lambda v: isinstance(v, (list, dict, np.ndarray))).any()
-        ):
-            frame[col] = frame[col].map(
-                lambda v: (
-                    json.dumps(v.tolist() if isinstance(v, np.ndarray) else v)
-                    if isinstance(v, (list, dict, np.ndarray))
-                    else v
-                )
-            )
     info = {
         "path": str(path),
         "format": "jsonl",
@@ -559,6 +600,77 @@ def read_jsonl(
         "available": names,
     }
     return _Part(frame, rejected, info)
+
+
+def _arrow_frame(table: pa.Table) -> pd.DataFrame:
+    """A typed table as a DataFrame of plain values: struct columns split into one column per field
+    (``s.q``), however deep they nest; list and map columns as their JSON text. Arrow columns hold
+    one type each, so only the nested ones are looked at value by value."""
+    while any(pa.types.is_struct(t) for t in table.schema.types):
+        table = table.flatten()
+    frame = table.to_pandas()
+    for name, typ in zip(table.column_names, table.schema.types):
+        if pa.types.is_nested(typ) or (pa.types.is_dictionary(typ) and pa.types.is_nested(typ.value_type)):
+            frame[name] = frame[name].map(_as_text)
+    return frame
+
+
+def _as_text(value: Any) -> Any:
+    """A nested or off-type value as its JSON text (a list, a map, a number among words)."""
+    if value is None or isinstance(value, str) or (isinstance(value, float) and np.isnan(value)):
+        return value
+    if isinstance(value, np.ndarray):
+        value = value.tolist()
+    if isinstance(value, np.generic):
+        value = value.item()
+    return json.dumps(value, default=str)
+
+
+def _kind(value: Any) -> str:
+    if isinstance(value, str):
+        return "text"
+    if isinstance(value, (bool, np.bool_)):
+        return "bool"
+    if isinstance(value, (int, float, np.number)):
+        return "number"
+    return "nested"
+
+
+def _plain_values(frame: pd.DataFrame) -> pd.DataFrame:
+    """Every column of a frame built from Python objects (JSON read line by line) holds one kind of
+    plain value: lists, maps and other nested values become their JSON text, and a column mixing
+    numbers with words becomes text (the clean stage then decides, per `clean.text_in_numeric`,
+    what the words in a numeric column mean)."""
+    for col in frame.columns:
+        if frame[col].dtype != object:
+            continue
+        kinds = set(frame[col].dropna().map(_kind))
+        if len(kinds) > 1 or "nested" in kinds:
+            frame[col] = frame[col].map(_as_text)
+    return frame
+
+
+def _json_array(data: bytes, path: Path) -> tuple[pd.DataFrame, list]:
+    """A file holding one JSON array of objects: each element is a row, numbered from 1."""
+    try:
+        value = json.loads(data.decode("utf-8", "replace"))
+    except json.JSONDecodeError as err:
+        raise DataError(
+            f"`{path}` starts like a JSON array but is not valid JSON ({err.msg} at line {err.lineno}); "
+            "fix the file or write one JSON object per line."
+        ) from err
+    if not isinstance(value, list):
+        raise DataError(f"`{path}` is not a JSON array of objects; write one JSON object per line.")
+    objects, kept, rejected = [], [], []
+    for number, item in enumerate(value, start=1):
+        if isinstance(item, dict):
+            objects.append(item)
+            kept.append(number)
+        else:
+            rejected.append((str(path), number, "array element is not a JSON object", json.dumps(item, default=str)[:200]))
+    frame = pd.json_normalize(objects) if objects else pd.DataFrame()
+    frame.index = pd.Index(np.asarray(kept, dtype=np.int64), name="line")
+    return frame, rejected
 
 
 def _jsonl_slow(data: bytes, path: Path, records: np.ndarray) -> tuple[pd.DataFrame, list]:
@@ -614,3 +726,24 @@ def check_wanted(wanted: list[str] | None, seen: list[str], what: str = "input.c
                 f"`{what}` names column `{name}`, which the input does not have"
                 f"{close_matches(name, seen)}."
             )
+
+
+# ----------------------------------------------------------------------------- a known true graph
+
+
+def read_truth_edges(path: Path, input_path: Path) -> list[tuple[str, str]]:
+    """The pairs of a truth file (``report.truth_file``) for this input; `ConfigError` when the file
+    is not ``{"edges": [[a, b], ...]}`` or ``{"edges": {"<snapshot>": [[a, b], ...], ...}}``."""
+    shape = 'a JSON object {"edges": [["a", "b"], ...]} (or {"edges": {"<snapshot>": [...]}})'
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as err:
+        raise ConfigError(f"`report.truth_file` = `{path}` is not readable JSON ({_first_line(err)}); it must be {shape}.") from err
+    edges = data.get("edges") if isinstance(data, dict) else None
+    if isinstance(edges, dict):  # per snapshot
+        edges = edges.get(input_path.stem) or edges.get(input_path.name) or next(iter(edges.values()), [])
+    if not isinstance(edges, list) or not all(
+        isinstance(e, (list, tuple)) and len(e) == 2 and all(isinstance(v, str) for v in e) for e in edges
+    ):
+        raise ConfigError(f"`report.truth_file` = `{path}` is not {shape}; fix the file or remove the key.")
+    return [(str(a), str(b)) for a, b in edges]

@@ -101,6 +101,7 @@ def _read_one(
         raise DataError(
             f"Input file `{path}` cannot be read ({err.strerror}); check its permissions."
         ) from err
+    raw = _read.decompress(path, raw)
     fmt = _read.detect_format(path, raw[:4096], settings)
     if fmt == "parquet":
         return _read.read_parquet(path, settings, limits, wanted, rows_before)
