@@ -385,7 +385,7 @@ class CIEngine:
             self.names[xi], self.names[yi], self._given_tuple(gi), float(statistic), int(dof),
             float(pvalue), int(n), method, g_stat / (2.0 * n * _LN2) if n > 0 else 0.0, cramers_v,
             bool(sparse), bool(degenerate), bool(independent), st.sparse_policy, policy_applied,
-            permutations,
+            permutations, "none", float(n),
         ))
 
     def _given_tuple(self, gi: tuple[int, ...]) -> tuple[str, ...]:
@@ -547,7 +547,8 @@ class CIEngine:
                 "x": names[xi], "y": names[yi], "given": gnames, "statistic": s_, "dof": d_,
                 "pvalue": p_, "n": n_, "method": method, "cmi_bits": cmi_,
                 "cramers_v": nan if gi else v_, "sparse": sp_, "degenerate": dg_, "independent": ind_,
-                "policy": policy, "policy_applied": ap_, "permutations": 0,
+                "policy": policy, "policy_applied": ap_, "permutations": 0, "correction": "none",
+                "n_effective": float(n_),
             })
             append(r)
         return out
