@@ -50,6 +50,7 @@ from .runs import (
 )
 from .search.knowledge import Knowledge
 from .stages import report
+from .stages.timeline import orient_lagged, time_tiers
 
 __all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
 
@@ -327,7 +328,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         required=[*cfg.knowledge.required, *confirm],
         forbidden=[*cfg.knowledge.forbidden, *_lag_pairs(time_doc)],
         rejected=reject,  # tested as usual, removed at the end (the report says when data disagree)
-        tiers=cfg.knowledge.tiers,
+        tiers=time_tiers(names, time_doc["lag"], cfg.knowledge.tiers),
     )
     runner.provide("signals", {"names": names, "cards": cards}, key=[names, cards])
     runner.provide("knowledge", knowledge, key=[sorted(knowledge.required), sorted(knowledge.forbidden),
@@ -341,6 +342,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         stability_info = runner.get("stability.json")
         evidence = _with_stability(evidence, shares, stability_info)
         atomic_write_parquet(out / "stability.parquet", shares)
+    evidence = orient_lagged(evidence)
     atomic_write_parquet(out / "evidence.parquet", evidence)
     atomic_write_parquet(out / "tests.parquet", tests)
 
@@ -391,6 +393,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                 "input": str(source), "rows": rows, "columns_kept": kept, "columns_dropped": dropped,
                 "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},
                 "timings": timings,
+                "time": manifest["time"],
             },
             levels=levels_doc["levels"],
             alpha=float(cfg.test.alpha),

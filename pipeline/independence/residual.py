@@ -127,6 +127,17 @@ def _spline(z: np.ndarray, knots: int) -> np.ndarray:
     return np.column_stack(cols)
 
 
+def _least_squares(basis: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients of `t` on `basis` through the normal equations, solved on the
+    eigenvectors whose eigenvalues are not negligible (a minimum-norm solution when columns are collinear);
+    the same fitted values as ``np.linalg.lstsq`` at a fraction of its cost for tall, narrow designs."""
+    gram = basis.T @ basis
+    vals, vecs = np.linalg.eigh(gram)
+    keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
+    v = vecs[:, keep]
+    return v @ ((v.T @ (basis.T @ t)) / vals[keep][:, None])
+
+
 def _group_demean(t: np.ndarray, strata: np.ndarray) -> np.ndarray:
     """Columns of `t` minus their mean within each stratum (strata coded 0..S-1)."""
     counts = np.bincount(strata).astype(np.float64)
@@ -273,8 +284,7 @@ class ResidualTester:
             if basis is not None:
                 basis = basis - basis.mean(axis=0)
         if basis is not None:
-            coef, *_ = np.linalg.lstsq(basis, t, rcond=None)
-            t = t - basis @ coef
+            t = t - basis @ _least_squares(basis, t)
         return t
 
     def _cached_residuals(self, v: int, given: tuple[int, ...], rows: np.ndarray, full: bool) -> np.ndarray:

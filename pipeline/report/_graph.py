@@ -121,7 +121,7 @@ def build_graph(
             if style == "solid":
                 style = "bold"
         attrs["style"] = style
-        head = direction(row) if orient else None
+        head = direction(row) if (orient or int(row.get("lag") or 0) > 0) else None  # time order is known
         tail, tip = head if head else (a, b)
         attrs["dir"] = "forward" if head else "none"
         orient_text = str(row.get("orientation") or "")

@@ -266,6 +266,44 @@ def _cautions(alpha: float) -> str:
     )
 
 
+def _time_html(ctx: Any) -> str:
+    """The "Time and series" section: how rows were ordered, and how persistent each signal is."""
+    doc: Mapping[str, Any] = (ctx.summary or {}).get("time") or {}
+    if not doc:
+        return ""
+    parts = ['<section id="time"><h2>Time and series</h2>']
+    if doc.get("timed"):
+        series = ", ".join(doc.get("series") or []) or "one series"
+        window = f"{float(doc.get('window_seconds') or 0):g}"
+        parts.append(
+            f"<p>Rows are windows of <strong>{e(series)}</strong> ({e(doc.get('series_how', ''))}), ordered by "
+            f"<code>{e(doc.get('time_column'))}</code> ({e(doc.get('time_column_how', ''))}); one window is "
+            f"{e(window)} s; {e(doc.get('series_count', 0))} series, "
+            f"{e(doc.get('gaps', 0))} gaps (missing windows). Each test compares the two signals' news since "
+            "their previous window, given the conditioning set and its previous window, and its p-value allows "
+            "for the persistence that is left; nothing is paired across two series or across a gap.</p>")
+        if doc.get("lags"):
+            parts.append(f"<p>Copies of every signal from 1 to {e(doc['lags'])} windows earlier "
+                         "(<code>name@t-1</code> ...) were tested too; links to them read from past to present.</p>")
+    else:
+        parts.append(f"<p>No time order was used ({e(doc.get('time_column_how', ''))}; "
+                     f"<code>time.serial</code> = {e(doc.get('serial', ''))}): the tests treat rows as independent "
+                     "draws.</p>")
+    for w in doc.get("warnings") or []:
+        parts.append(f"<p class='warn'>{e(w)}</p>")
+    signals = doc.get("signals") or {}
+    if signals:
+        parts.append('<table><thead><tr><th>signal</th><th class="num">persistence (lag 1)</th>'
+                     '<th class="num">effective rows of its own</th></tr></thead><tbody>')
+        for name, v in signals.items():
+            parts.append(f'<tr><td>{e(name)}</td><td class="num">{e(v.get("persistence"))}</td>'
+                         f'<td class="num">{e(v.get("n_effective"))}</td></tr>')
+        parts.append("</tbody></table><p>Persistence: how much a window repeats the one before (0 none, 1 always); "
+                     "effective rows: how many independent rows the signal's own variation is worth.</p>")
+    parts.append("</section>")
+    return "\n".join(parts)
+
+
 def _signals_html(names: Sequence[str], levels: Mapping[str, Sequence[str]]) -> str:
     parts = [('<table class="levels"><thead><tr><th>signal</th><th class="num">levels</th>'
               "<th>labels</th></tr></thead><tbody>")]
@@ -460,7 +498,7 @@ def build_html(
         "SUMMARY": _summary_html(ctx, len(names), n_links, len(evidence)),
         "GRAPH": _graph_html(svg, truth_svg, split, graph_key(ctx.alpha, ctx.orient)),
         "CAUTIONS": _cautions(ctx.alpha),
-        "SIGNALS": _signals_html(names, ctx.levels),
+        "SIGNALS": _time_html(ctx) + _signals_html(names, ctx.levels),
         "DETAILS": _details_html(ctx),
         "REVIEW_WORDS": review_words,
         "EVIDENCE_HEAD": head,

@@ -189,6 +189,7 @@ def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> Re
             "columns_dropped": (manifest.get("columns") or {}).get("dropped") or {},
             "settings": {k: section(k) for k in ("test", "search", "discretise")},
             "timings": manifest.get("stages") or {},
+            "time": manifest.get("time") or {},
         },
         levels=levels,
         alpha=float(section("test").get("alpha", 0.05)),

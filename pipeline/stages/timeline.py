@@ -28,7 +28,7 @@ from ..config import Config
 from ..errors import ConfigError, DataError
 from ..independence.residual import Timeline, normal_scores
 
-__all__ = ["Timed", "run", "persistence", "lag_name", "HIGH_PERSISTENCE"]
+__all__ = ["Timed", "run", "persistence", "lag_name", "lag_of", "time_tiers", "orient_lagged", "HIGH_PERSISTENCE"]
 
 HIGH_PERSISTENCE = 0.3  # lag-1 persistence above this makes independent-row tests unreliable (see README)
 
@@ -36,6 +36,34 @@ HIGH_PERSISTENCE = 0.3  # lag-1 persistence above this makes independent-row tes
 def lag_name(signal: str, lag: int) -> str:
     """The name of a signal's copy `lag` windows earlier."""
     return f"{signal}@t-{lag}"
+
+
+def lag_of(name: str) -> int:
+    """The lag of a variable named by `lag_name` (0 for a signal of the present window)."""
+    head, sep, tail = name.rpartition("@t-")
+    return int(tail) if sep and head and tail.isdigit() else 0
+
+
+def time_tiers(names: list[str], lags: list[int], tiers: list[list[str]]) -> list[list[str]]:
+    """Background tiers with the time order first: copies from L windows back, ..., 1 window back, then
+    the configured tiers of the present window (a later copy cannot cause an earlier one)."""
+    most = max(lags, default=0)
+    past = [[n for n, lag in zip(names, lags) if lag == k] for k in range(most, 0, -1)]
+    return [t for t in past if t] + [list(t) for t in tiers]
+
+
+def orient_lagged(evidence: pd.DataFrame) -> pd.DataFrame:
+    """Linked pairs with a copy from an earlier window read ``earlier -> present``, whatever the search
+    oriented (time order is background knowledge); a ``lag`` column gives the windows between them."""
+    out = evidence.copy()
+    la = out["var_a"].map(lag_of)
+    lb = out["var_b"].map(lag_of)
+    out["lag"] = (la - lb).abs().astype("int64")
+    lagged = out["linked"].astype(bool) & (out["lag"] > 0)
+    a_first = la > lb
+    out.loc[lagged & a_first, "orientation"] = out["var_a"] + " -> " + out["var_b"]
+    out.loc[lagged & ~a_first, "orientation"] = out["var_b"] + " -> " + out["var_a"]
+    return out
 
 
 @dataclass(frozen=True)
