@@ -153,6 +153,7 @@ def _stability(call: StageCall) -> dict[str, Any]:
         resamples=cfg.search.resamples, fraction=cfg.search.resample_fraction, method=cfg.search.resample_method,
         max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
         seed=cfg.test.seed, context=call.env["workers"], threshold=cfg.search.stable_threshold,
+        extras=search_extras(call),
     )
     rows = []
     for a, b in evidence[["var_a", "var_b"]].itertuples(index=False):

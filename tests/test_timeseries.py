@@ -213,3 +213,21 @@ def test_realistic_nights_have_few_false_links(tmp_path):
         assert res.manifest["time"]["series"] == ["node"] and res.manifest["time"]["window_seconds"] == 300
     assert np.mean(false_links) <= 1.0
     assert np.mean(found) >= 0.8
+
+
+def test_stability_on_time_ordered_rows_resamples_whole_blocks(tmp_path):
+    """With time order known, the stability stage resamples whole blocks of consecutive windows and runs the
+    same time-aware tests: the strong true links of a simulated night stay (share at least 0.8 of 6
+    resamples), and every share is a multiple of 1/6."""
+    from pipeline.api import run_pipeline
+    from pipeline.config import load_config
+    from pipeline.simulate import nightly_logs
+
+    path = tmp_path / "night.csv"
+    nightly_logs(seed=5).frame.to_csv(path, index=False)
+    cfg = load_config(None, ["time.column=window_start", "time.series=[node]", "search.resamples=6", "output.png=false"])
+    ev = run_pipeline(cfg, path, tmp_path / "run").evidence.set_index(["var_a", "var_b"])
+    for pair in [("conn_wait_ms", "queue_depth"), ("latency_ms", "queue_depth"), ("queue_depth", "traffic_rps")]:
+        assert ev.loc[pair, "stability"] >= 0.8
+    sixths = ev["stability"].to_numpy() * 6
+    assert np.allclose(sixths, np.round(sixths))

@@ -18,7 +18,7 @@ from __future__ import annotations
 import shutil
 import tempfile
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from itertools import combinations
 from typing import Any
 
@@ -29,7 +29,7 @@ from ..independence.engine import CIEngine, EngineSettings
 from ..parallel import ParallelContext, share_array
 from ..search.knowledge import Knowledge
 from ..search.orient import orient
-from ..search.skeleton import pc_stable_skeleton
+from ..search.skeleton import SignalExtras, pc_stable_skeleton
 
 __all__ = ["StabilityResult", "run"]
 
@@ -78,15 +78,42 @@ def _draw_rows(child: np.random.SeedSequence, n_rows: int, take: int, method: st
     return np.sort(rows)
 
 
+def _draw_blocks(child: np.random.SeedSequence, n_rows: int, take: int, block: int) -> np.ndarray:
+    """Rows of one resample of time-ordered rows: whole blocks of `block` consecutive windows, drawn
+    without replacement (blocks keep the persistence within them, as in Kunsch 1989)."""
+    rng = np.random.default_rng(child)
+    starts = np.arange(0, n_rows, block)
+    chosen = np.sort(rng.choice(starts.size, size=max(1, round(starts.size * take / n_rows)), replace=False))
+    return np.concatenate([np.arange(starts[i], min(starts[i] + block, n_rows)) for i in chosen])
+
+
+def _sub_extras(extras: SignalExtras, rows: np.ndarray) -> SignalExtras:
+    """The scores and previous windows of a resample (a previous window left out of it is no partner)."""
+    prev = None
+    if extras.prev is not None:
+        pos = np.full(len(extras.prev), -1, dtype=np.int64)
+        pos[rows] = np.arange(rows.size)
+        old = np.asarray(extras.prev)[rows]
+        prev = np.where(old >= 0, pos[np.maximum(old, 0)], -1)
+    return replace(extras, scores=np.ascontiguousarray(np.asarray(extras.scores)[:, rows]), prev=prev)
+
+
 def _resample_worker(shared: tuple[Any, ...], task: tuple[int, np.random.SeedSequence]):
     """Run the search on one resample; return its edges and, when orienting, its directed edges."""
-    data, names, cards, settings, knowledge, max_order, orient_graph, collider_rule, take, method = shared
+    data, names, cards, settings, knowledge, max_order, orient_graph, collider_rule, take, method, extras = shared
     _, child = task
-    sub = np.ascontiguousarray(data[:, _draw_rows(child, data.shape[1], take, method)])
-    skeleton = pc_stable_skeleton(sub, names, cards, settings, max_order=max_order, knowledge=knowledge)
+    if extras is not None and extras.prev is not None:
+        rows = _draw_blocks(child, data.shape[1], take, max(10, int(4 * max(extras.series_length, 1.0) ** (1 / 3))))
+    else:
+        rows = _draw_rows(child, data.shape[1], take, method)
+    sub = np.ascontiguousarray(data[:, rows])
+    sub_extras = _sub_extras(extras, rows) if extras is not None else None
+    skeleton = pc_stable_skeleton(sub, names, cards, settings, max_order=max_order, knowledge=knowledge,
+                                  extras=sub_extras)
     if not orient_graph:
         return skeleton.edges, None
-    engine = CIEngine(sub, names, cards, settings)
+    engine = sub_extras.engine(sub, names, cards, settings, None) if sub_extras is not None else CIEngine(
+        sub, names, cards, settings)
     asked: dict[tuple[str, str, tuple[str, ...]], bool] = {}
 
     def independent(a: str, c: str, s: tuple[str, ...]) -> bool:
@@ -167,6 +194,7 @@ def run(
     seed: int = 0,
     context: ParallelContext | None = None,
     threshold: float = 0.6,
+    extras: SignalExtras | None = None,
 ) -> StabilityResult:
     """Rerun the skeleton search on random resamples of the rows and report how often each edge appears.
 
@@ -183,6 +211,8 @@ def run(
     seed : root of the resample seeds (``np.random.SeedSequence(seed).spawn(resamples)``).
     context : where the resamples run (one task per resample; serial when None).
     threshold : a pair is stable when linked in at least this share of the resamples.
+    extras : numeric scores and previous windows (as for the search); with time-ordered rows a resample
+        is made of whole blocks of consecutive windows, so the persistence inside a block stays.
 
     Returns
     -------
@@ -203,7 +233,7 @@ def run(
     take = _check(resamples, fraction, method, threshold, n_rows)
     tasks = list(enumerate(np.random.SeedSequence(seed).spawn(resamples)))
     shared = (data, names, [int(c) for c in cards], settings, knowledge, max_order, orient_graph,
-              collider_rule, take, method)
+              collider_rule, take, method, extras)
     outcomes = _map_resamples(shared, tasks, context)
     counts, linked, directed = _shares(names, outcomes, orient_graph)
     if method == "bootstrap":
