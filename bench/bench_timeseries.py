@@ -4,7 +4,7 @@ Each night is `pipeline.simulate.nightly_logs` (6 nodes x 288 five-minute window
 links, persistence 0.8-0.995, a daily cycle, smooth mechanisms on raw values, independent drifting
 signals). Every night runs the real data stages (clean, discretise, timeline) and the PC-stable search.
 
-    python bench/bench_timeseries.py [--nights 7] [--out bench/results/timeseries.md]
+    python bench/bench_timeseries.py [--nights 7] [--quick] [--out bench/results/timeseries.md]
 """
 
 from __future__ import annotations
@@ -65,9 +65,12 @@ CASES = {
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--nights", type=int, default=7)
+    ap.add_argument("--quick", action="store_true", help="3 nights instead of 7")
     ap.add_argument("--persistence", choices=["on", "off", "both"], default="both")
-    ap.add_argument("--out", default=None)
+    ap.add_argument("--out", default=str(Path(__file__).resolve().parent / "results" / "timeseries.md"))
     args = ap.parse_args(argv)
+    if args.quick:
+        args.nights = 3
     lines = ["| rows | case | false links a night | true links found | seconds a night |", "|---|---|---:|---:|---:|"]
     modes = {"on": [True], "off": [False], "both": [True, False]}[args.persistence]
     for persistent in modes:

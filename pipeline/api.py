@@ -50,6 +50,7 @@ from .runs import (
 )
 from .search.knowledge import Knowledge
 from .stages import report
+from .stages._evidence import with_effect_r
 from .stages.timeline import orient_lagged, time_tiers
 
 __all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
@@ -342,7 +343,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         stability_info = runner.get("stability.json")
         evidence = _with_stability(evidence, shares, stability_info)
         atomic_write_parquet(out / "stability.parquet", shares)
-    evidence = orient_lagged(evidence)
+    evidence, tests = with_effect_r(orient_lagged(evidence)), with_effect_r(tests)
     atomic_write_parquet(out / "evidence.parquet", evidence)
     atomic_write_parquet(out / "tests.parquet", tests)
 

@@ -16,7 +16,7 @@ from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
 from ..search.skeleton import SkeletonResult, TestRecord
 
-__all__ = ["tests_frame", "tests_part", "records_from_part", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS", "TEST_COLUMNS"]
+__all__ = ["with_effect_r", "tests_frame", "tests_part", "records_from_part", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS", "TEST_COLUMNS"]
 
 # Fields of a test result kept out of tests.parquet: the pair and set have their own columns, and the
 # marginal effect size is an evidence column. Every other field (new ones too) becomes a column.
@@ -65,6 +65,18 @@ def records_from_part(table) -> list[TestRecord]:
         TestRecord(level=lv, result=CITestResult(**dict(zip(names, values))))
         for lv, values in zip(levels, zip(*(cols[n] for n in names)))
     ]
+
+
+def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
+    """`frame` with ``effect_r`` beside ``cmi_bits``: the partial correlation a Gaussian pair with that much
+    information would have, ``sqrt(1 - 2 ** (-2 * bits))``, an effect size read the same way whichever
+    test ran (G-test, chi-square, permutation or residual covariance)."""
+    if "cmi_bits" not in frame.columns or "effect_r" in frame.columns:
+        return frame
+    bits = frame["cmi_bits"].to_numpy(dtype=np.float64)
+    out = frame.copy()
+    out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0)))
+    return out
 
 
 def tests_frame(records: Sequence[TestRecord], phases: Sequence[str] | None = None) -> pd.DataFrame:
