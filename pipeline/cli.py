@@ -56,8 +56,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("x", help="the first signal (a column name)")
     p.add_argument("y", help="the second signal (a column name)")
     p.add_argument("--given", default="", help="comma-separated conditioning set (signals held fixed)")
-    p.add_argument("--method", choices=["g", "chi2", "permutation"],
-                   help="g: G-test; chi2: Pearson chi-square; permutation: G with permuted rows (default: test.method)")
+    p.add_argument("--method", choices=["auto", "g", "chi2", "permutation", "gcm"],
+                   help="auto: G-test for categories on independent rows, gcm otherwise; g: G-test; chi2: Pearson "
+                        "chi-square; permutation: G with permuted rows; gcm: residual covariance (default: test.method)")
     p.add_argument("--json", action="store_true", help="print the result as JSON instead of sentences")
 
     p = sub.add_parser("nightly", help="process every snapshot in the inbox that has no successful run yet",

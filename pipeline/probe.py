@@ -9,15 +9,16 @@ from typing import Any, Sequence
 
 from .config import Config, resolve_auto
 from .errors import ConfigError
-from .independence.engine import CIEngine, EngineSettings
-from .stages import clean, discretise, ingest
+from .independence.engine import EngineSettings
+from .independence.mixed import MixedEngine
+from .stages import clean, discretise, ingest, timeline
 
 __all__ = ["plain_words", "probe"]
 
 
 def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given: Sequence[str] = ()) -> dict[str, Any]:
     """Test `x` independent of `y` given `given` on an extract; returns the result as plain data."""
-    from .api import _coded_matrix, _input_files  # the same input resolution as a run
+    from .api import _input_files  # the same input resolution as a run
 
     _input_files(Path(input_path))
     ing = ingest.run(Path(input_path), cfg.input, cfg.limits)
@@ -31,12 +32,18 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
             raise ConfigError(f"`{n}` is not a usable signal of this extract{hint}; see cleaning.json of a run for dropped columns.")
     if len({x, y, *given}) != 2 + len(given):
         raise ConfigError("x, y and the --given signals must all be different.")
-    cards = [max(1, len(disc.levels[n])) for n in names]
-    cfg, _ = resolve_auto(cfg, len(disc.codes), cards)
+    # the same timeline as a run: rows in time order within series, previous windows, numeric scores
+    timed = timeline.run(cl.table, cl.times, cl.kinds, disc.codes,
+                         {n: max(1, len(disc.levels[n])) for n in names}, cfg.model_copy(update={"time": cfg.time.model_copy(update={"test_series": True, "lags": 0})}))
+    n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
+    cfg, _ = resolve_auto(cfg, n_info, timed.cards)
     settings = EngineSettings.from_config(cfg)
-    engine = CIEngine(_coded_matrix(disc.codes), names, cards, settings)
+    engine = MixedEngine(timed.codes, timed.names, timed.cards, settings, scores=timed.scores,
+                         timeline=timed.timeline, own_past=timed.own_past)
     r = engine.test(x, y, list(given))
     out = r.to_dict()
+    out["effect_r"] = r.effect_r
+    out["time"] = {k: timed.summary.get(k) for k in ("time_column", "series", "window_seconds")}
     out["flags"] = list(r.flags)
     out["alpha"] = float(settings.alpha)
     return out

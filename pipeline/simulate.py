@@ -199,8 +199,8 @@ def _one_node(rng: np.random.Generator, windows: int, node_level: float, *, pers
         lat_score = lat_score + s * 0.8 * _z(np.log(gc))
     latency = 40.0 * np.exp(0.35 * lat_score)
     err_score = s * 1.1 * _z(np.log(latency)) + s * 1.0 * deploy
-    error = _categorical(rng, err_score, 0.8 * noise("error_burst"), ("none", "some", "many"))
-    err_num = np.select([error == "none", error == "some"], [0.0, 1.0], 2.0)
+    error = _categorical(rng, err_score, 0.8 * noise("error_burst"), ("calm", "some", "many"))
+    err_num = np.select([error == "calm", error == "some"], [0.0, 1.0], 2.0)
     alert = _categorical(rng, s * 1.3 * _z(err_num), 0.8 * noise("alert_level"), ("ok", "warn", "page"))
     retry = np.exp(-3.0 + s * 0.6 * err_num + 0.5 * noise("retry_rate"))
     stay = SIGNALS["region_mix"][1] if persistence else 0.0
