@@ -16,7 +16,9 @@ How each part is done here:
   Wald statistic with ``(a * b)`` degrees of freedom (a, b the columns of x and y).
 * **Regressions.** Categorical members of z stratify exactly (every regression has a separate mean
   per stratum); numeric members enter through a piecewise-linear spline with knots at quantiles,
-  their number growing like ``n ** (1/3)``, plus products of pairs of numeric members. With only
+  their number growing like ``n ** (1/3)`` (at most 40), plus products of pairs of numeric members;
+  on more than 200,000 rows the coefficients are fitted on a fixed, seeded subset of 200,000 rows and
+  the residuals computed on every row. With only
   categorical members the residual is the deviation from the stratum mean, and the test is the
   generalised Cochran-Mantel-Haenszel statistic of average association.
 * **Time.** When the rows are windows of one or more series (`Timeline`), each signal is also
@@ -119,12 +121,34 @@ def wald(mean: np.ndarray, cov: np.ndarray, n: int) -> tuple[float, int]:
     return float(n * np.sum(proj**2 / vals[keep])), int(keep.sum())
 
 
-def _spline(z: np.ndarray, knots: int) -> np.ndarray:
-    """Piecewise-linear spline basis of a score column: z and (z - q)_+ at interior quantiles."""
-    qs = np.quantile(z, np.linspace(0.0, 1.0, knots + 2)[1:-1]) if knots > 0 else np.empty(0)
-    qs = np.unique(qs)
-    cols = [z] + [np.maximum(z - q, 0.0) for q in qs]
-    return np.column_stack(cols)
+def _knot_points(z: np.ndarray, knots: int) -> np.ndarray:
+    """Interior quantiles of a score column (distinct), the knots of its spline."""
+    if knots <= 0:
+        return np.empty(0)
+    return np.unique(np.quantile(z, np.linspace(0.0, 1.0, knots + 2)[1:-1]))
+
+
+def _design(num_cols: list[np.ndarray], knots: int, points: list[np.ndarray] | None = None) -> np.ndarray:
+    """Piecewise-linear spline basis of each numeric column (z and (z - q)_+ at interior quantiles, or at
+    the given `points`) and the products of pairs of columns, written into one preallocated array."""
+    if points is None:
+        points = [_knot_points(z, knots) for z in num_cols]
+    pairs = len(num_cols) * (len(num_cols) - 1) // 2
+    width = sum(1 + q.size for q in points) + pairs
+    out = np.empty((num_cols[0].size, width), order="F")  # column-major: each column is contiguous
+    at = 0
+    for z, q in zip(num_cols, points):
+        out[:, at] = z
+        for k, point in enumerate(q, start=at + 1):
+            col = out[:, k]
+            np.subtract(z, point, out=col)
+            np.maximum(col, 0.0, out=col)
+        at += 1 + q.size
+    for a in range(len(num_cols)):
+        for b in range(a + 1, len(num_cols)):
+            np.multiply(num_cols[a], num_cols[b], out=out[:, at])
+            at += 1
+    return out
 
 
 def _least_squares(basis: np.ndarray, t: np.ndarray) -> np.ndarray:
@@ -140,12 +164,7 @@ def _least_squares(basis: np.ndarray, t: np.ndarray) -> np.ndarray:
 
 def _group_demean(t: np.ndarray, strata: np.ndarray) -> np.ndarray:
     """Columns of `t` minus their mean within each stratum (strata coded 0..S-1)."""
-    counts = np.bincount(strata).astype(np.float64)
-    counts[counts == 0] = 1.0
-    out = np.empty_like(t)
-    for j in range(t.shape[1]):
-        out[:, j] = t[:, j] - (np.bincount(strata, weights=t[:, j], minlength=counts.size) / counts)[strata]
-    return out
+    return t - _group_means(t, strata)[strata]
 
 
 def _dense_codes(cols: list[np.ndarray]) -> np.ndarray | None:
@@ -156,6 +175,62 @@ def _dense_codes(cols: list[np.ndarray]) -> np.ndarray | None:
         return np.unique(cols[0], return_inverse=True)[1].ravel()
     stacked = np.column_stack(cols)
     return np.unique(stacked, axis=0, return_inverse=True)[1].ravel()
+
+
+@dataclass
+class _Projector:
+    """Regression on one conditioning set over one set of rows: exact strata of its categorical members,
+    a spline basis of its numeric members, and the normal equations of that basis (fitted on at most
+    `fit_rows` rows, a fixed seeded subset), so that each further variable costs one pass over the rows."""
+
+    strata: np.ndarray | None
+    num_cols: list[np.ndarray]
+    knots: int
+    points: list[np.ndarray]
+    means: np.ndarray | None  # per-stratum (or overall) means of the basis columns
+    whiten: np.ndarray | None  # w with w @ w.T the pseudo-inverse of the basis Gram matrix
+    pick: np.ndarray | None  # the rows the coefficients are fitted on (None: all)
+
+    @classmethod
+    def build(cls, strata: np.ndarray | None, num_cols: list[np.ndarray], knots: int, fit_rows: int) -> "_Projector":
+        if not num_cols:
+            return cls(strata, [], knots, [], None, None, None)
+        n = num_cols[0].size
+        points = [_knot_points(z, knots) for z in num_cols]
+        basis = _design(num_cols, 0, points)
+        means = _group_means(basis, strata)
+        basis -= means[strata] if strata is not None else means
+        pick = None
+        if n > fit_rows:
+            pick = np.sort(np.random.default_rng(n).choice(n, fit_rows, replace=False))
+            basis = basis[pick]
+        vals, vecs = np.linalg.eigh(basis.T @ basis)
+        keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
+        return cls(strata, num_cols, knots, points, means, vecs[:, keep] / np.sqrt(vals[keep]), pick)
+
+    def apply(self, t: np.ndarray, tester: "ResidualTester", basis: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray | None]:
+        """Residuals of the columns of `t`, and the demeaned basis (for a further regression)."""
+        t = _group_demean(t, self.strata) if self.strata is not None else t - t.mean(axis=0)
+        if self.whiten is None:
+            return t, None
+        if basis is None:
+            basis = _design(self.num_cols, 0, self.points)
+            basis -= self.means[self.strata] if self.strata is not None else self.means  # type: ignore[index]
+        fit_b, fit_t = (basis, t) if self.pick is None else (basis[self.pick], t[self.pick])
+        coef = self.whiten @ (self.whiten.T @ (fit_b.T @ fit_t))
+        return t - basis @ coef, basis
+
+
+def _group_means(t: np.ndarray, strata: np.ndarray | None) -> np.ndarray:
+    """Per-stratum means of the columns of `t` (shape strata x columns), or the overall means (1 x columns)."""
+    if strata is None:
+        return t.mean(axis=0, keepdims=True)
+    counts = np.bincount(strata).astype(np.float64)
+    counts[counts == 0] = 1.0
+    out = np.empty((counts.size, t.shape[1]))
+    for j in range(t.shape[1]):
+        out[:, j] = np.bincount(strata, weights=t[:, j], minlength=counts.size) / counts
+    return out
 
 
 class ResidualTester:
@@ -181,10 +256,11 @@ class ResidualTester:
 
     def __init__(self, codes: np.ndarray, scores: Sequence[np.ndarray | None], *,
                  timeline: Timeline | None = None, own_past: Sequence[bool] | None = None,
-                 cache_bytes: int = 256 * 1024 * 1024) -> None:
+                 cache_bytes: int = 256 * 1024 * 1024, fit_rows: int = 200_000) -> None:
         self.codes = codes
         self.scores = list(scores)
         self.timeline = timeline
+        self.fit_rows = int(fit_rows)
         nv = codes.shape[0]
         self.own_past = list(own_past) if own_past is not None else [True] * nv
         n = codes.shape[1]
@@ -196,6 +272,7 @@ class ResidualTester:
         self._base = base
         self._present = [self._present_of(i) for i in range(nv)]
         self._cache: OrderedDict[tuple, np.ndarray] = OrderedDict()
+        self._projectors: OrderedDict[tuple, _Projector] = OrderedDict()
         self._cache_bytes = 0
         self._cache_max = cache_bytes
 
@@ -245,10 +322,31 @@ class ResidualTester:
         return np.nonzero(ok)[0]
 
     def residuals(self, v: int, given: Sequence[int], rows: np.ndarray) -> np.ndarray:
-        """Residuals of variable `v` (its score or its indicators) regressed on `given` and its own past."""
+        """Residuals of variable `v` (its score or its indicators) regressed on `given` (with the previous
+        window of each member when rows are time-ordered) and on its own previous window."""
         t = self._target(v, rows)
         if t.shape[1] == 0:
             return t
+        timed = self.timeline is not None and self.own_past[v]
+        cat_past = timed and self.scores[v] is None
+        proj = self._projector(tuple(given), rows, v if cat_past else None)
+        t, basis = proj.apply(t, self)
+        if timed and not cat_past:
+            # the signal's own numeric past, after the conditioning set (Frisch-Waugh: the same fit as
+            # one regression on both)
+            past = self.scores[v][self.timeline.prev[rows]]  # type: ignore[index, union-attr]
+            extra, _ = proj.apply(_design([past], self._knots(rows.size)), self, basis)
+            t = t - extra @ _least_squares(extra, t)
+        return t
+
+    def _projector(self, given: tuple[int, ...], rows: np.ndarray, cat_past_of: int | None) -> "_Projector":
+        """The regression on a conditioning set (its strata, spline knots and normal equations), kept for
+        the next variable regressed on the same set over the same rows."""
+        key = (given, cat_past_of, rows.size, int(rows[0]) if rows.size else -1, int(rows[-1]) if rows.size else -1)
+        hit = self._projectors.get(key)
+        if hit is not None:
+            self._projectors.move_to_end(key)
+            return hit
         cat_cols: list[np.ndarray] = []
         num_cols: list[np.ndarray] = []
         for g in given:
@@ -257,35 +355,21 @@ class ResidualTester:
             else:
                 num_cols.append(self.scores[g][rows])  # type: ignore[index]
         if self.timeline is not None:
-            # the signal's own previous window, and that of every member of the conditioning set
             past = self.timeline.prev[rows]
-            for w in (v, *given):
+            for w in given:  # the conditioning set's previous window
                 if not self.own_past[w]:
                     continue
                 if self.scores[w] is None:
                     cat_cols.append(self.codes[w][past].astype(np.int64))
                 else:
                     num_cols.append(self.scores[w][past])  # type: ignore[index]
-        strata = _dense_codes(cat_cols)
-        basis = None
-        if num_cols:
-            knots = self._knots(rows.size)
-            blocks = [_spline(z, knots) for z in num_cols]
-            for a in range(len(num_cols)):
-                for b in range(a + 1, len(num_cols)):
-                    blocks.append((num_cols[a] * num_cols[b])[:, None])
-            basis = np.column_stack(blocks)
-        if strata is not None:
-            t = _group_demean(t, strata)
-            if basis is not None:
-                basis = _group_demean(basis, strata)
-        else:
-            t = t - t.mean(axis=0)
-            if basis is not None:
-                basis = basis - basis.mean(axis=0)
-        if basis is not None:
-            t = t - basis @ _least_squares(basis, t)
-        return t
+            if cat_past_of is not None:  # a categorical signal's own previous level stratifies exactly
+                cat_cols.append(self.codes[cat_past_of][past].astype(np.int64))
+        proj = _Projector.build(_dense_codes(cat_cols), num_cols, self._knots(rows.size), self.fit_rows)
+        self._projectors[key] = proj
+        while len(self._projectors) > 64:
+            self._projectors.popitem(last=False)
+        return proj
 
     def _cached_residuals(self, v: int, given: tuple[int, ...], rows: np.ndarray, full: bool) -> np.ndarray:
         if not full:
