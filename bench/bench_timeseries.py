@@ -37,7 +37,8 @@ def search_night(frame, overrides: list[str]):
     cleaned = clean.run(Ingested(table, empty_rejected(), len(table), ["night.csv"], {}), cfg)
     disc = discretise.run(cleaned, cfg)
     cards = {k: max(1, len(v)) for k, v in disc.levels.items()}
-    timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg)
+    timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg,
+                         {c: v.get("method") for c, v in disc.summary["columns"].items()})
     settings = EngineSettings.from_config(cfg)
     if settings.alpha == "auto":
         settings = EngineSettings(**{**settings.__dict__, "alpha": 0.05})

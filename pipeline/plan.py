@@ -90,7 +90,9 @@ def _timeline(call: StageCall) -> dict[str, Any]:
     levels = call["levels.json"]
     codes = call["discretised.parquet"]
     cards = {c: max(1, len(levels["levels"][c])) for c in codes.columns}
-    timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg)
+    methods = {c: v.get("method") for c, v in (call["discretise.json"].get("columns") or {}).items()}
+    timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg,
+                         methods)
     n = timed.codes.shape[1]
     scores = np.full(timed.codes.shape, np.nan)
     for i, s in enumerate(timed.scores):
@@ -186,7 +188,8 @@ STAGES: tuple[Stage, ...] = (
           writes=("discretised.parquet", "codes.npy", "levels.json", "discretise.json"),
           carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("timeline", _timeline,
-          reads=("clean.parquet", "clean-times.parquet", "discretised.parquet", "levels.json"), settings=("time", "discretise.default", "columns"),
+          reads=("clean.parquet", "clean-times.parquet", "discretised.parquet", "levels.json", "discretise.json"),
+          settings=("time", "discretise.default", "columns"),
           writes=("timeline.parquet", "search-codes.npy", "search-scores.npy", "search-prev.npy", "timeline.json")),
     Stage("battery", _battery, reads=_SEARCH_DATA, settings=("test",),
           writes=("marginal.parquet", "marginal-part.parquet", "state.json")),

@@ -34,7 +34,8 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
         raise ConfigError("x, y and the --given signals must all be different.")
     # the same timeline as a run: rows in time order within series, previous windows, numeric scores
     timed = timeline.run(cl.table, cl.times, cl.kinds, disc.codes,
-                         {n: max(1, len(disc.levels[n])) for n in names}, cfg.model_copy(update={"time": cfg.time.model_copy(update={"test_series": True, "lags": 0})}))
+                         {n: max(1, len(disc.levels[n])) for n in names}, cfg.model_copy(update={"time": cfg.time.model_copy(update={"test_series": True, "lags": 0})}),
+                         {c: v.get("method") for c, v in (disc.summary.get("columns") or {}).items()})
     n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
     cfg, _ = resolve_auto(cfg, n_info, timed.cards)
     settings = EngineSettings.from_config(cfg)

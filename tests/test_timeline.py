@@ -31,7 +31,8 @@ def _timed(frame, overrides=()):
     cleaned = clean.run(Ingested(frame.astype(str), empty_rejected(), len(frame), ["x.csv"], {}), cfg)
     disc = discretise.run(cleaned, cfg)
     cards = {k: max(1, len(v)) for k, v in disc.levels.items()}
-    return timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg)
+    return timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg,
+                         {c: v.get("method") for c, v in disc.summary["columns"].items()})
 
 
 def test_time_column_and_series_are_detected_and_said():
@@ -95,3 +96,16 @@ def test_persistent_signals_without_time_handling_are_warned_about():
     assert t.timeline is None
     assert len(t.summary["warnings"]) == 1 and "load" in t.summary["warnings"][0]
     assert t.summary["signals"]["load"]["persistence"] > 0.8
+
+
+def test_default_settings_on_a_benchmark_set_run_the_g_test_unchanged(tmp_path):
+    """ASIA (tests/data/benchmarks, integer-coded categories, no time column): the default `auto` method codes
+    the columns level by level and runs the G-test, with the same skeleton as `test.method: g`."""
+    from pipeline.api import run_pipeline
+
+    data = __import__("_shared").benchmark_path("asia") / "data.txt"
+    auto = run_pipeline(load_config(None, ["output.png=false"]), data, tmp_path / "auto")
+    g = run_pipeline(load_config(None, ["output.png=false", "test.method=g"]), data, tmp_path / "g")
+    assert set(auto.tests["method"]) == {"g"}
+    assert auto.manifest["time"]["timed"] is False
+    assert auto.evidence[["var_a", "var_b", "linked", "pvalue"]].equals(g.evidence[["var_a", "var_b", "linked", "pvalue"]])

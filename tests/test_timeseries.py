@@ -155,7 +155,8 @@ def test_planted_lag_one_link_is_found_from_past_to_present():
         cleaned = clean.run(Ingested(frame, empty_rejected(), len(frame), ["lagged.csv"], {}), cfg)
         disc = discretise.run(cleaned, cfg)
         cards = {k: max(1, len(v)) for k, v in disc.levels.items()}
-        timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg)
+        timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg,
+                         {c: v.get("method") for c, v in disc.summary["columns"].items()})
         scores = np.vstack([s if s is not None else np.full(timed.codes.shape[1], np.nan) for s in timed.scores])
         extras = SignalExtras(scores=scores, numeric=tuple(s is not None for s in timed.scores),
                               prev=timed.timeline.prev, series_length=timed.timeline.series_length,

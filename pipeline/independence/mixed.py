@@ -67,9 +67,8 @@ class MixedEngine:
         self.settings = settings
         self.scores = list(scores) if scores is not None else [None] * len(self.names)
         self.timeline = timeline
-        cat_settings = settings if settings.method in ("g", "chi2", "permutation") else _as_g(settings)
         self.codes = data
-        self.categorical = CIEngine(data, names, cards, cat_settings, distinct=distinct)
+        self.categorical = CIEngine(data, names, cards, settings, distinct=distinct)  # `auto`/`gcm` read as G there
         self.residual = ResidualTester(data, self.scores, timeline=timeline, own_past=own_past)
         self._numeric = np.array([s is not None for s in self.scores])
 
@@ -202,9 +201,3 @@ def _one_blas_thread() -> Any:
     from threadpoolctl import threadpool_limits
 
     return threadpool_limits(limits=1, user_api="blas")
-
-
-def _as_g(settings: EngineSettings) -> EngineSettings:
-    from dataclasses import replace
-
-    return replace(settings, method="g")

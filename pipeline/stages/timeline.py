@@ -207,7 +207,7 @@ def _previous(series_id: np.ndarray, t: np.ndarray, window: float | None) -> tup
 
 
 def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: pd.DataFrame,
-        cards: dict[str, int], cfg: Config) -> Timed:
+        cards: dict[str, int], cfg: Config, methods: dict[str, str] | None = None) -> Timed:
     """Order the rows, find previous windows, measure persistence and add lag copies.
 
     Parameters
@@ -217,6 +217,7 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
     kinds : kept column -> numeric / categorical / boolean.
     codes : the discretised codes (the same rows and kept columns).
     cards : kept column -> number of levels.
+    methods : kept column -> how the discretise stage coded it (``categorical`` = level by level).
     """
     n = len(codes)
     time_col, how = _time_column(times, cfg)
@@ -252,11 +253,14 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
         timeline = None
     signals = [c for c in codes.columns if cfg.time.test_series or c not in series]
     base_codes = [codes[c].to_numpy()[order] for c in signals]
-    # a numeric signal is tested on its values unless the configuration asks for bins (then its codes)
+    # a numeric signal is tested on its values, unless the configuration asks for bins or the data
+    # hold a few whole numbers coded level by level (codes of a category, as in the benchmark sets)
     binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
     as_numbers = cfg.discretise.default == "auto"
+    methods = methods or {}
     base_scores = [normal_scores(table[c].to_numpy(dtype=np.float64)[order])
-                   if kinds.get(c) == "numeric" and as_numbers and c not in binned else None for c in signals]
+                   if kinds.get(c) == "numeric" and as_numbers and c not in binned
+                   and methods.get(c, "quantile") != "categorical" else None for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
         rho = persistence(c, s, prev)
