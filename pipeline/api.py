@@ -318,7 +318,9 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     # `auto` rules count the rows a test can use: on time-ordered rows the tests condition on the previous
     # window, so a row counts once it has one (its news since that window is what the tests see)
     n_info = n_kept - int(time_doc.get("rows_without_previous", 0)) if time_doc["timed"] else n_kept
-    cfg, auto_settings = resolve_auto(cfg, n_info, cards[: len(time_doc["signals"])])
+    # the level-count part of the rules is about contingency tables: only signals tested on their codes count
+    coded = [c for c, numeric, lag in zip(cards, time_doc["numeric"], time_doc["lag"]) if not numeric and lag == 0]
+    cfg, auto_settings = resolve_auto(cfg, n_info, coded)
     runner.cfg = cfg  # the stages from here on see the resolved settings (and are keyed by them)
 
     # knowledge: configuration + reviewed evidence file + the order of time (a copy from an earlier window

@@ -372,7 +372,9 @@ def resolve_auto(cfg: Config, n_rows: int, cards: list[int]) -> tuple[Config, di
     ``test.alpha`` is 0.2 below ``100 * k**2`` rows (a typical two-variable table has fewer than 100
     rows per cell) and 0.05 above; ``search.max_order`` is 2 below ``5 * k**5`` rows (a typical
     table of order 3 would have fewer than 5 rows per cell, common practice) and uncapped above.
-    Returns the resolved configuration and a record of what was decided and why.
+    Returns the resolved configuration and a record of what was decided and why. The caller passes the
+    rows a test can use (on time-ordered rows: the rows with a previous window) and the level counts of the
+    signals tested on their codes (signals tested on their values have no table cells to fill).
     """
     import statistics
 

@@ -37,7 +37,7 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
                          {n: max(1, len(disc.levels[n])) for n in names}, cfg.model_copy(update={"time": cfg.time.model_copy(update={"test_series": True, "lags": 0})}),
                          {c: v.get("method") for c, v in (disc.summary.get("columns") or {}).items()})
     n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
-    cfg, _ = resolve_auto(cfg, n_info, timed.cards)
+    cfg, _ = resolve_auto(cfg, n_info, [c for c, s in zip(timed.cards, timed.scores) if s is None])
     settings = EngineSettings.from_config(cfg)
     engine = MixedEngine(timed.codes, timed.names, timed.cards, settings, scores=timed.scores,
                          timeline=timed.timeline, own_past=timed.own_past)

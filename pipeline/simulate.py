@@ -141,11 +141,6 @@ class NightlyLogs:
     notes: dict[str, object] = field(default_factory=dict)
 
 
-def _z(v: np.ndarray) -> np.ndarray:
-    s = v.std()
-    return (v - v.mean()) / (s if s > 0 else 1.0)
-
-
 def _flag(rng: np.random.Generator, n: int, stay: float, on_share: float) -> np.ndarray:
     """An on/off flag that switches rarely (mean run of 1/(1-stay) windows) and is on `on_share` of the time."""
     out = np.empty(n, dtype=np.int64)
@@ -161,11 +156,9 @@ def _flag(rng: np.random.Generator, n: int, stay: float, on_share: float) -> np.
     return out
 
 
-def _categorical(rng: np.random.Generator, score: np.ndarray, noise: np.ndarray, labels: tuple[str, ...]) -> np.ndarray:
-    """Ordered categories from a latent score plus persistent noise, cut at fixed thresholds."""
-    latent = score + noise
-    cuts = np.quantile(latent, np.linspace(0, 1, len(labels) + 1)[1:-1]) if latent.size else []
-    return np.asarray(labels, dtype=object)[np.searchsorted(cuts, latent)]
+def _categorical(latent: np.ndarray, cuts: tuple[float, ...], labels: tuple[str, ...]) -> np.ndarray:
+    """Ordered categories of a latent score cut at fixed points (the same on every node and night)."""
+    return np.asarray(labels, dtype=object)[np.searchsorted(np.asarray(cuts), latent)]
 
 
 def _one_node(rng: np.random.Generator, windows: int, node_level: float, *, persistence: bool,
@@ -181,7 +174,7 @@ def _one_node(rng: np.random.Generator, windows: int, node_level: float, *, pers
     cycle = np.sin(2 * np.pi * (hours - 9.0) / 24.0)  # busiest in the afternoon
     s = strength
     traffic = np.exp(5.0 + 0.25 * node_level + 0.5 * cycle + 0.25 * noise("traffic_rps"))
-    lt = _z(np.log(traffic))
+    lt = (np.log(traffic) - 5.0) / 0.5  # fixed scales: no mechanism depends on a node's own statistics
     st_deploy = SIGNALS["deploy_window"][1] if persistence else 0.15  # stay = on share: independent draws
     st_batch = SIGNALS["batch_job"][1] if persistence else 0.25
     deploy = _flag(rng, n, st_deploy, 0.15)
@@ -190,18 +183,18 @@ def _one_node(rng: np.random.Generator, windows: int, node_level: float, *, pers
     q_gain = 1.6 if change == "mechanism" else 0.8
     queue = np.exp(1.5 + s * q_gain * np.tanh(lt) + 0.45 * noise("queue_depth"))
     cpu = 100.0 / (1.0 + np.exp(-(s * 0.9 * lt + s * 1.0 * batch - 0.5 + 0.6 * noise("cpu_util"))))
-    lq = _z(np.log(queue))
+    lq = (np.log(queue) - 1.5) / 0.65
     conn = np.exp(1.0 + s * 0.7 * lq + 0.6 * noise("conn_wait_ms"))
     gc = np.exp(2.0 + 0.5 * noise("gc_pause_ms"))
     disk = 60.0 + 12.0 * noise("disk_used_pct") + 0.02 * day
-    lat_score = s * 0.8 * lq - s * 0.8 * _z(cache) + 0.7 * noise("latency_ms")
+    lat_score = s * 0.8 * lq - s * 0.8 * (cache - 0.88) / 0.06 + 0.7 * noise("latency_ms")
     if change == "link":
-        lat_score = lat_score + s * 0.8 * _z(np.log(gc))
+        lat_score = lat_score + s * 0.8 * (np.log(gc) - 2.0) / 0.5
     latency = 40.0 * np.exp(0.35 * lat_score)
-    err_score = s * 1.1 * _z(np.log(latency)) + s * 1.0 * deploy
-    error = _categorical(rng, err_score, 0.8 * noise("error_burst"), ("calm", "some", "many"))
+    err_score = s * 1.1 * lat_score / 1.3 + s * 1.0 * deploy
+    error = _categorical(err_score + 0.8 * noise("error_burst"), (-0.4, 0.8), ("calm", "some", "many"))
     err_num = np.select([error == "calm", error == "some"], [0.0, 1.0], 2.0)
-    alert = _categorical(rng, s * 1.3 * _z(err_num), 0.8 * noise("alert_level"), ("ok", "warn", "page"))
+    alert = _categorical(s * 1.3 * (err_num - 1.0) / 0.8 + 0.8 * noise("alert_level"), (-0.6, 0.6), ("ok", "warn", "page"))
     retry = np.exp(-3.0 + s * 0.6 * err_num + 0.5 * noise("retry_rate"))
     stay = SIGNALS["region_mix"][1] if persistence else 0.0
     region = np.asarray(("north", "harbour", "uplands", "riverside"), dtype=object)[markov_chain(rng, n, 4, stay)]
