@@ -16,7 +16,7 @@ How each part is done here:
   Wald statistic with ``(a * b)`` degrees of freedom (a, b the columns of x and y).
 * **Regressions.** Categorical members of z stratify exactly (every regression has a separate mean
   per stratum); numeric members enter through a piecewise-linear spline with knots at quantiles,
-  their number growing like ``n ** (1/3)`` (at most 40), plus products of pairs of numeric members;
+  their number growing like ``n ** (1/3)`` (at most 24), plus products of pairs of numeric members;
   on more than 200,000 rows the coefficients are fitted on a fixed, seeded subset of 200,000 rows and
   the residuals computed on every row. With only
   categorical members the residual is the deviation from the stratum mean, and the test is the
@@ -307,7 +307,7 @@ class ResidualTester:
         return onehot
 
     def _knots(self, n: int) -> int:
-        return int(min(40, max(3, round(0.5 * n ** (1.0 / 3.0)))))
+        return int(min(24, max(3, round(0.5 * n ** (1.0 / 3.0)))))
 
     # -- the regression of one variable on a conditioning set -------------------------------------
     def rows_for(self, x: int, y: int, given: Sequence[int]) -> np.ndarray:
