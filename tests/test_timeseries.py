@@ -45,7 +45,8 @@ def _markov_rate(stay: float, series: int, conditional: bool) -> float:
     rejections = 0
     for trial in range(TRIALS):
         rng = np.random.default_rng([trial, int(stay * 1000), series, int(conditional)])
-        chains = lambda levels: np.concatenate([markov_chain(rng, length, levels, stay) for _ in range(series)])  # noqa: E731
+        chains = lambda levels, rng=rng: np.concatenate(  # noqa: E731
+            [markov_chain(rng, length, levels, stay) for _ in range(series)])
         if conditional:
             z = chains(3)
             codes = np.vstack([_child_chain(rng, z, stay, length), _child_chain(rng, z, stay, length), z])
@@ -74,7 +75,7 @@ def _ar_rate(phi: float, series: int, conditional: bool) -> float:
     rejections = 0
     for trial in range(TRIALS):
         rng = np.random.default_rng([trial, int(phi * 1000), series, int(conditional), 7])
-        noise = lambda: np.concatenate([ar1(rng, length, phi) for _ in range(series)])  # noqa: E731
+        noise = lambda rng=rng: np.concatenate([ar1(rng, length, phi) for _ in range(series)])  # noqa: E731
         if conditional:
             z = noise()
             values = [np.tanh(z) + 0.7 * noise(), np.exp(0.8 * z) + 0.7 * noise(), z]

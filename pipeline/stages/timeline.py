@@ -294,7 +294,7 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
                 lags.append(k)
     frame = pd.DataFrame({"row": order.astype(np.int64), "series": series_id.astype(np.int64), "time": t,
                           "previous": (prev if timed_on else np.full(n, -1)).astype(np.int64)})
-    for name, s in zip(signals, base_codes):
+    for name in signals:
         if kinds.get(name) == "numeric":
             frame[name] = table[name].to_numpy(dtype=np.float64)[order]
     stacked = np.vstack(all_codes) if all_codes else np.zeros((0, n), dtype=np.int8)
