@@ -233,9 +233,13 @@ class ResidualTester:
                 ok = ok & p
         return np.nonzero(ok)[0]
 
-    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray) -> np.ndarray:
-        """Residuals of variable `v` (its score or its indicators) regressed on `given` and its own past."""
-        t = self._target(v, rows)
+    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray, target: np.ndarray | None = None) -> np.ndarray:
+        """Residuals of variable `v` (its score or its indicators) regressed on `given` and its own past.
+
+        `target` (rows x columns) replaces v's own score or indicators, e.g. indicators of levels fixed
+        across two tables (the change test of `pipeline.change`); the regressors are v's as usual.
+        """
+        t = self._target(v, rows) if target is None else np.asarray(target, dtype=np.float64)
         if t.shape[1] == 0:
             return t
         cat_cols: list[np.ndarray] = []
