@@ -219,11 +219,12 @@ def test_categorical_route_on_independent_rows_is_the_loglinear_test():
 
 @pytest.fixture(scope="module")
 def seed_runs(tmp_path_factory):
-    """Seed 2: night 0, night 1 as it is, and night 1 with the planted link (bins of night 0 reused)."""
-    base = tmp_path_factory.mktemp("change-runs")
-    first = _nights.run_night(2, 0, base)
-    quiet = _nights.run_night(2, 1, base / "quiet", reuse=first)
-    link = _nights.run_night(2, 1, base / "link", change="link", reuse=first)
+    """Seed 2, small nights (4 nodes x 192 windows): night 0, night 1 as it is, and night 1 with the
+    planted link (bins of night 0 reused)."""
+    base, size = tmp_path_factory.mktemp("change-runs"), {"nodes": 4, "windows": 192}
+    first = _nights.run_night(2, 0, base, **size)
+    quiet = _nights.run_night(2, 1, base / "quiet", reuse=first, **size)
+    link = _nights.run_night(2, 1, base / "link", change="link", reuse=first, **size)
     return first, quiet, link
 
 
@@ -256,8 +257,8 @@ def test_swapping_runs_swaps_added_and_removed(seed_runs):
 
 
 def test_one_seed_quiet_and_planted(seed_runs):
-    """Seed 2 (the default suite's short version of the slow studies below): the quiet pair has no supported
-    change, and the planted gc_pause_ms -> latency_ms is listed as added.
+    """Seed 2, small nights (the default suite's short version of the slow studies below): the quiet pair
+    has no supported change, and the planted gc_pause_ms -> latency_ms is listed as added.
 
     A single seed: the slow studies measure the rates (README); on seed 2 the quiet pair's chance of a
     supported change is about that of any seed (see the slow test's measured rate).
