@@ -14,12 +14,15 @@ Two routes, chosen by what is known about the rows:
   ``signal`` against ``night`` within the strata of the signal's neighbours (the night indicator as a
   surrogate variable: Huang, Zhang, Zhang, Ramsey, Sanchez-Romero, Glymour & Scholkopf 2020, JMLR).
 * **Residual route** (numeric values or a time order known). Rows of a night are time series with
-  strong persistence, so the tests above would report chance drift as change. Each signal is
-  regressed flexibly on the conditioning set (exact strata of categorical members, a spline basis of
-  numeric members, and the signal's own previous window when the time order is known); the
-  residuals' association (pair) or mean and slope-against-neighbours (mechanism) is compared between
-  the nights with a Newey-West variance (Newey & West 1987) computed within each series of each
-  night, never across two series or across a gap in time.
+  strong persistence, so the tests above would report chance drift as change. The rows of both nights
+  go into one `pipeline.independence.residual.ResidualTester` (normal scores of the pooled values,
+  each night's own previous windows), so a signal is regressed exactly as the search regresses it:
+  exact strata of categorical members, a spline basis of numeric members, and the previous windows
+  of the signal and of the conditioning set when the time order is known. The residuals' association
+  (pair) or mean and slope-against-neighbours (mechanism) is compared between the nights with a
+  Newey-West variance (Newey & West 1987, `hac_covariance`) computed within each series of each
+  night, never across two series, across a gap in time or across the two nights, and a Wald test
+  (`wald`).
 
 Benjamini & Hochberg (1995) over everything compared gives each test a q-value
 (`scipy.stats.false_discovery_control`). Algorithms only: no file I/O (the reading is in
@@ -37,6 +40,7 @@ import pandas as pd
 from scipy import stats
 
 from .independence import contingency_statistics
+from .independence.residual import ResidualTester, Timeline, hac_covariance, normal_scores, wald
 
 __all__ = [
     "NightData", "ChangeTest", "homogeneous_association_lr", "pair_change", "mechanism_change",
@@ -45,7 +49,6 @@ __all__ = [
 
 _IPF_TOL = 1e-10
 _IPF_MAX_ITER = 500
-_MAX_EXACT_STRATA = 64  # categorical members of a regression: exact strata up to this many, else additive
 
 
 @dataclass(frozen=True)
@@ -236,248 +239,130 @@ def _mechanism_categorical(a: NightData, b: NightData, s: str, nbrs: tuple[str, 
                       st.cmi_bits)
 
 
-# ----------------------------------------------------------------------------- residual route (private helpers)
+# ----------------------------------------------------------------------------- residual route
 
 
-def _normal_scores(v: np.ndarray) -> np.ndarray:
-    """Pooled ranks mapped to standard normal quantiles (NaN stays NaN)."""
-    out = np.full(v.shape, np.nan)
-    ok = np.isfinite(v)
-    if ok.any():
-        r = stats.rankdata(v[ok])
-        out[ok] = stats.norm.ppf((r - 0.5) / ok.sum())
-    return out
+class _Pooled:
+    """Both nights' rows of a few signals in one `ResidualTester`: night b's rows after night a's.
 
-
-def _columns(night: NightData, name: str) -> tuple[np.ndarray, bool]:
-    """(raw representation, is_numeric): numeric values when known, else the codes."""
-    if night.values is not None and name in night.values.columns:
-        return night.values[name].to_numpy(dtype=float), True
-    c = night.codes[name].to_numpy(dtype=float)
-    c[c < 0] = np.nan
-    return c, False
-
-
-def _lagged(night: NightData, v: np.ndarray) -> np.ndarray:
-    """The previous window's value in the same series (NaN at a series start or after a gap)."""
-    out = np.full(v.shape, np.nan)
-    if night.order is None:
-        return out
-    series = night.series if night.series is not None else np.zeros(len(v))
-    order = np.asarray(night.order, dtype=np.int64)
-    idx = np.lexsort((order, series))
-    prev_ok = np.r_[False, (series[idx][1:] == series[idx][:-1]) & (np.diff(order[idx]) == 1)]
-    lag_sorted = np.r_[np.nan, v[idx][:-1]]
-    out[idx] = np.where(prev_ok, lag_sorted, np.nan)
-    return out
-
-
-def _one_hot(codes: np.ndarray, levels: int) -> np.ndarray:
-    """Indicator columns of levels 0..levels-2 (the last level is the reference)."""
-    c = np.nan_to_num(codes, nan=-1).astype(np.int64)
-    return (c[:, None] == np.arange(max(levels - 1, 0))[None, :]).astype(float)
-
-
-def _spline(v: np.ndarray) -> np.ndarray:
-    """A cubic B-spline basis of a numeric score (knots at quantiles), plus the score itself."""
-    from sklearn.preprocessing import SplineTransformer
-
-    ok = np.isfinite(v)
-    out = np.zeros((len(v), 6))
-    if ok.sum() < 20 or np.unique(v[ok]).size < 5:
-        out[ok, 0] = v[ok]
-        return out[:, :1]
-    basis = SplineTransformer(n_knots=4, degree=3, knots="quantile", extrapolation="linear",
-                              include_bias=False).fit_transform(v[ok, None])
-    out = np.zeros((len(v), basis.shape[1] + 1))
-    out[ok, :-1] = basis
-    out[ok, -1] = v[ok]
-    return out
-
-
-def _demean(m: np.ndarray, groups: np.ndarray) -> np.ndarray:
-    """Subtract the group mean from every column of `m`."""
-    if m.shape[1] == 0:
-        return m
-    counts = np.bincount(groups).astype(float)
-    means = np.stack([np.bincount(groups, weights=m[:, j]) for j in range(m.shape[1])], axis=1)
-    return m - means[groups] / counts[groups, None]
-
-
-def _residuals(target: np.ndarray, design: np.ndarray, groups: np.ndarray) -> np.ndarray:
-    """Residuals of `target` (n x a) on group fixed effects plus `design` (Frisch-Waugh)."""
-    yt, xt = _demean(target, groups), _demean(design, groups)
-    if xt.shape[1]:
-        gram = xt.T @ xt
-        vals, vecs = np.linalg.eigh(gram)
-        keep = vals > max(vals.max(initial=0.0), 0.0) * 1e-10
-        inv = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T  # pseudo-inverse: least squares
-        yt = yt - xt @ (inv @ (xt.T @ yt))
-    return yt
-
-
-def _nw_lags(n: int) -> int:
-    """Newey & West (1994) plug-in truncation lag, floor(4 (n/100)^(2/9))."""
-    return int(math.floor(4.0 * (max(n, 1) / 100.0) ** (2.0 / 9.0)))
-
-
-def _hac_mean_cov(psi: np.ndarray, series: np.ndarray, order: Optional[np.ndarray]) -> np.ndarray:
-    """Newey-West covariance of the column means of `psi` (n x d), within each series only.
-
-    Rows of different series are independent; within a series, products of rows up to L windows
-    apart (by `order`, never across a gap) enter with Bartlett weights 1 - l/(L+1). Without a time
-    order the rows are independent (L = 0).
+    Numeric signals enter through normal scores of the pooled values (one value, one score on both
+    nights); the previous window of a row is looked up within its own night and series, so nothing is
+    paired across the two nights. Rows, regressions and Newey-West partners are the search's own
+    (`pipeline.independence.residual`).
     """
-    n, d = psi.shape
-    c = psi - psi.mean(axis=0)
-    omega = c.T @ c
-    if order is not None:
-        order = np.asarray(order, dtype=np.int64)
-        lags = _nw_lags(n // max(len(np.unique(series)), 1))
-        idx = np.lexsort((order, series))
-        cs, ss, os_ = c[idx], series[idx], order[idx]
-        for lag in range(1, lags + 1):
-            same = (ss[lag:] == ss[:-lag]) & (os_[lag:] - os_[:-lag] == lag)
-            if not same.any():
-                continue
-            gamma = cs[lag:][same].T @ cs[:-lag][same]
-            omega += (1.0 - lag / (lags + 1.0)) * (gamma + gamma.T)
-    return omega / (n * n)
+
+    def __init__(self, a: NightData, b: NightData, names: Sequence[str]):
+        self.names = list(names)
+        self.night = np.r_[np.zeros(len(a.codes), dtype=np.int64), np.ones(len(b.codes), dtype=np.int64)]
+        codes, scores = [], []
+        for name in self.names:
+            codes.append(np.r_[a.codes[name].to_numpy(), b.codes[name].to_numpy()].astype(np.int64))
+            va, vb = _values(a, name), _values(b, name)
+            scores.append(normal_scores(np.r_[va, vb]) if va is not None and vb is not None else None)
+        self.codes = np.vstack(codes)
+        self.levels = {n: int(c.max(initial=-1)) + 1 for n, c in zip(self.names, codes)}
+        self.tester = ResidualTester(self.codes, scores, timeline=_pooled_timeline(a, b))
+
+    def at(self, names: Sequence[str]) -> tuple[int, ...]:
+        return tuple(self.names.index(n) for n in names)
+
+    def target(self, name: str, rows: np.ndarray) -> np.ndarray:
+        """Its score (one column), else indicators of its levels 0..L-2 (the same columns on both nights)."""
+        i = self.names.index(name)
+        s = self.tester.scores[i]
+        if s is not None:
+            return s[rows][:, None]
+        return (self.codes[i][rows][:, None] == np.arange(max(self.levels[name] - 1, 0))[None, :]).astype(float)
+
+    def residuals(self, name: str, given: Sequence[str], rows: np.ndarray) -> np.ndarray:
+        """Standardised residuals of `name` on `given`, its own and their previous windows."""
+        r = self.tester.residuals(self.names.index(name), self.at(given), rows, target=self.target(name, rows))
+        sd = r.std(axis=0)
+        return r / np.where(sd > 0, sd, 1.0)
+
+    def mean_covariance(self, psi: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        """Newey-West covariance of the column means of `psi` (its rows are `rows`), within series."""
+        return hac_covariance(psi, self.tester.partners_for(rows)) / max(len(rows), 1)
 
 
-def _wald(diff: np.ndarray, cov: np.ndarray) -> tuple[float, int, float]:
-    """Wald chi-square of ``diff = 0`` with covariance `cov` (pseudo-inverse, dof = rank)."""
-    if diff.size == 0:
-        return 0.0, 0, 1.0
-    vals, vecs = np.linalg.eigh((cov + cov.T) / 2.0)
-    keep = vals > max(vals.max(initial=0.0), 0.0) * 1e-10
-    if not keep.any():
-        return 0.0, 0, 1.0
-    proj = vecs[:, keep].T @ diff
-    w = float(np.sum(proj**2 / vals[keep]))
-    dof = int(keep.sum())
-    return w, dof, float(stats.chi2.sf(w, dof))
+def _values(night: NightData, name: str) -> Optional[np.ndarray]:
+    """Raw numeric values of a signal (NaN missing), or None when the night has none for it."""
+    if night.values is None or name not in night.values.columns:
+        return None
+    return night.values[name].to_numpy(dtype=float)
 
 
-class _Frame:
-    """The pooled rows of both nights for a set of signals, in the residual route's representation."""
-
-    def __init__(self, a: NightData, b: NightData, names: Sequence[str], lag_of: Sequence[str]):
-        raw, numeric, lags = {}, {}, {}
-        for name in names:
-            va, na = _columns(a, name)
-            vb, nb = _columns(b, name)
-            raw[name], numeric[name] = np.r_[va, vb], na and nb
-            if name in lag_of:
-                lags[name] = np.r_[_lagged(a, va), _lagged(b, vb)]
-        ok = np.all([np.isfinite(v) for v in raw.values()], axis=0)
-        for v in lags.values():
-            ok &= np.isfinite(v) | (a.order is None and b.order is None)
-        self.night = np.r_[np.zeros(len(a.codes), dtype=np.int64), np.ones(len(b.codes), dtype=np.int64)][ok]
-        ser_a = a.series if a.series is not None else np.zeros(len(a.codes))
-        ser_b = b.series if b.series is not None else np.zeros(len(b.codes))
-        _, ser = np.unique(np.r_[pd.factorize(pd.Series(ser_a))[0], 10**9 + pd.factorize(pd.Series(ser_b))[0]],
-                           return_inverse=True)
-        self.series = ser[ok]
-        self.order = None if a.order is None or b.order is None else np.r_[a.order, b.order].astype(np.int64)[ok]
-        self.numeric = numeric
-        self.raw = {k: v[ok] for k, v in raw.items()}
-        self.lags = {k: v[ok] for k, v in lags.items()}
-        self.levels = {k: int(np.nanmax(np.r_[v, 0])) + 1 for k, v in self.raw.items()}
-
-    def target(self, name: str) -> np.ndarray:
-        """Normal scores of a numeric signal (one column), else indicators of its levels."""
-        if self.numeric[name]:
-            return _normal_scores(self.raw[name])[:, None]
-        return _one_hot(self.raw[name], self.levels[name])
-
-    def regressors(self, given: Sequence[str], lag_of: Optional[str], rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(group id, design) for the rows `rows`: exact strata of categorical members when few,
-        additive indicators otherwise; splines of numeric members; the own previous window."""
-        cats = [g for g in given if not self.numeric[g]]
-        nums = [g for g in given if self.numeric[g]]
-        parts = []
-        strata = int(np.prod([self.levels[g] for g in cats])) if cats else 1
-        groups = np.zeros(int(rows.sum()), dtype=np.int64)
-        if strata <= _MAX_EXACT_STRATA:
-            for g in cats:
-                groups = groups * self.levels[g] + self.raw[g][rows].astype(np.int64)
-            groups = np.unique(groups, return_inverse=True)[1]
-        else:
-            parts += [_one_hot(self.raw[g][rows], self.levels[g]) for g in cats]
-        parts += [_spline(_normal_scores(self.raw[g])[rows]) for g in nums]
-        if lag_of is not None and lag_of in self.lags and np.isfinite(self.lags[lag_of]).all():
-            lag = self.lags[lag_of][rows]
-            parts.append(_normal_scores(lag)[:, None] if self.numeric[lag_of]
-                         else _one_hot(lag, self.levels[lag_of]))
-        design = np.hstack(parts) if parts else np.zeros((int(rows.sum()), 0))
-        return groups, design
+def _pooled_timeline(a: NightData, b: NightData) -> Optional[Timeline]:
+    """Previous windows of the pooled rows (within a night and a series; consecutive ``order``), or None."""
+    if a.order is None or b.order is None:
+        return None
+    ids = [pd.factorize(pd.Series(n.series if n.series is not None else np.zeros(len(n.codes))))[0] for n in (a, b)]
+    series = np.r_[ids[0], ids[1] + (ids[0].max(initial=-1) + 1)]
+    order = np.r_[a.order, b.order].astype(np.int64)
+    idx = np.lexsort((order, series))
+    ok = (series[idx][1:] == series[idx][:-1]) & (np.diff(order[idx]) == 1)
+    prev = np.full(len(order), -1, dtype=np.int64)
+    prev[idx[1:][ok]] = idx[:-1][ok]
+    return Timeline(prev=prev, series_length=float(np.median(np.bincount(series))) if series.size else 0.0)
 
 
-def _standardise(r: np.ndarray) -> np.ndarray:
-    sd = r.std(axis=0)
-    return r / np.where(sd > 0, sd, 1.0)
+def _chi2(w: float, dof: int) -> float:
+    return float(stats.chi2.sf(w, dof)) if dof > 0 else 1.0
 
 
 def _pair_residual(a: NightData, b: NightData, x: str, y: str, given: tuple[str, ...]) -> ChangeTest:
-    """Partial correlations of x and y given `given` (and their own past) compared between nights.
+    """Partial correlations of x and y given `given` (and the previous windows) compared between nights.
 
-    Within each night, x and y are regressed on the conditioning set and their own previous window;
-    the standardised residuals' correlations (a vector for categorical signals) are compared with a
-    Wald test whose variance is the Newey-West variance of their influence functions
-    ``rx ry - rho (rx^2 + ry^2) / 2``, computed within series.
+    Within each night, x and y are regressed on the conditioning set and the previous windows (the
+    search's regression); the standardised residuals' correlations (a vector for categorical signals)
+    are compared with a Wald test whose variance is the Newey-West variance of their influence
+    functions ``rx ry - rho (rx^2 + ry^2) / 2``, computed within series.
     """
-    f = _Frame(a, b, (x, y) + given, (x, y))
-    tx, ty = f.target(x), f.target(y)
+    p = _Pooled(a, b, (x, y) + given)
+    ix, iy = p.at((x, y))
+    every = p.tester.rows_for(ix, iy, p.at(given))
     rho, cov, counts = [], [], []
     for n in (0, 1):
-        rows = f.night == n
-        counts.append(int(rows.sum()))
-        rx = _standardise(_residuals(tx[rows], *_swap(f.regressors(given, x, rows))))
-        ry = _standardise(_residuals(ty[rows], *_swap(f.regressors(given, y, rows))))
+        rows = every[p.night[every] == n]
+        counts.append(int(rows.size))
+        if rows.size < 3:
+            return ChangeTest("pair", x, y, given, "residual_hac", 0.0, 0, 1.0, counts[0], int(rows.size))
+        rx, ry = p.residuals(x, given, rows), p.residuals(y, given, rows)
         prod = (rx[:, :, None] * ry[:, None, :]).reshape(len(rx), -1)
         r = prod.mean(axis=0)
         sq = ((rx**2)[:, :, None] + (ry**2)[:, None, :]).reshape(len(rx), -1)
-        psi = prod - r[None, :] * sq / 2.0
-        order = None if f.order is None else f.order[rows]
         rho.append(r)
-        cov.append(_hac_mean_cov(psi, f.series[rows], order))
-    w, dof, p = _wald(rho[1] - rho[0], cov[0] + cov[1])
+        cov.append(p.mean_covariance(prod - r[None, :] * sq / 2.0, rows))
+    w, dof = wald(rho[1] - rho[0], cov[0] + cov[1], 1)
     eff = [float(r[np.argmax(np.abs(r))]) if r.size else float("nan") for r in rho]
-    return ChangeTest("pair", x, y, given, "residual_hac", w, dof, p, counts[0], counts[1],
+    return ChangeTest("pair", x, y, given, "residual_hac", w, dof, _chi2(w, dof), counts[0], counts[1],
                       "partial_r", eff[0], eff[1])
 
 
-def _swap(gd: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """(groups, design) -> (design, groups), the argument order of `_residuals`."""
-    return gd[1], gd[0]
-
-
 def _mechanism_residual(a: NightData, b: NightData, s: str, nbrs: tuple[str, ...]) -> ChangeTest:
-    """Does the signal's regression on its neighbours (and its own past) differ between nights?
+    """Does the signal's regression on its neighbours (and the previous windows) differ between nights?
 
     One pooled regression (the same mechanism both nights under no change); its residuals, and
-    their products with each neighbour's centred score, are averaged per night and the difference
-    is Wald-tested with Newey-West variances computed within each night's series.
+    their products with each neighbour's centred score or indicators, are averaged per night and the
+    difference is Wald-tested with Newey-West variances computed within each night's series.
     """
-    f = _Frame(a, b, (s,) + nbrs, (s,))
-    rows = np.ones(len(f.night), dtype=bool)
-    groups, design = f.regressors(nbrs, s, rows)
-    r = _standardise(_residuals(f.target(s), design, groups))
-    moments = [np.ones((len(r), 1))]
-    for g in nbrs:
-        z = _normal_scores(f.raw[g])[:, None] if f.numeric[g] else _one_hot(f.raw[g], f.levels[g])
-        moments.append(z - z.mean(axis=0))
+    p = _Pooled(a, b, (s,) + nbrs)
+    (i,) = p.at((s,))
+    rows = p.tester.rows_for(i, i, p.at(nbrs))
+    counts = [int(np.sum(p.night[rows] == n)) for n in (0, 1)]
+    if min(counts) < 3:
+        return ChangeTest("mechanism", s, "", nbrs, "residual_hac", 0.0, 0, 1.0, counts[0], counts[1])
+    r = p.residuals(s, nbrs, rows)
+    moments = [np.ones((len(rows), 1))] + [(z - z.mean(axis=0)) for z in (p.target(g, rows) for g in nbrs)]
     m = np.hstack(moments)
     psi = (r[:, :, None] * m[:, None, :]).reshape(len(r), -1)
-    means, cov, counts = [], [], []
+    means, cov = [], []
     for n in (0, 1):
-        rows = f.night == n
-        counts.append(int(rows.sum()))
-        means.append(psi[rows].mean(axis=0))
-        cov.append(_hac_mean_cov(psi[rows], f.series[rows], None if f.order is None else f.order[rows]))
-    w, dof, p = _wald(means[1] - means[0], cov[0] + cov[1])
-    return ChangeTest("mechanism", s, "", nbrs, "residual_hac", w, dof, p, counts[0], counts[1])
+        sel = p.night[rows] == n
+        means.append(psi[sel].mean(axis=0))
+        cov.append(p.mean_covariance(psi[sel], rows[sel]))
+    w, dof = wald(means[1] - means[0], cov[0] + cov[1], 1)
+    return ChangeTest("mechanism", s, "", nbrs, "residual_hac", w, dof, _chi2(w, dof), counts[0], counts[1])
 
 
 # ----------------------------------------------------------------------------- public tests

@@ -29,7 +29,7 @@ import pandas as pd
 from .config import Config
 from .errors import EXIT_OK, ConfigError, DataError
 
-__all__ = ["History", "run", "edge_history", "history_main"]
+__all__ = ["History", "run", "at_root", "edge_history", "write_pages", "history_main"]
 
 _LINKED, _UNLINKED, _UNTESTED = "L", "s", "?"
 
@@ -69,12 +69,17 @@ def run(cfg: Config, config_path: Optional[Path] = None, last: Optional[int] = N
     DataError
         There is no successful run under the output root yet.
     """
-    from .nightly import successful_runs
     from .runs import output_root
+
+    return at_root(Path(output_root(cfg, config_path)), last)
+
+
+def at_root(root: Path, last: Optional[int] = None) -> History:
+    """History of the last `last` successful runs under the nightly output root `root` (see `run`)."""
+    from .nightly import successful_runs
 
     if last is not None and last < 1:
         raise ConfigError(f"`--last {last}` must be 1 or more.")
-    root = Path(output_root(cfg, config_path))
     names = successful_runs(root)
     if last is not None:
         names = names[-last:]
@@ -183,13 +188,19 @@ def history_main(
 
     hist = run(cfg, config_path, last)
     out = Path(out_dir) if out_dir is not None else Path(output_root(cfg, config_path))
+    csv, page = write_pages(hist, out)
+    print(_text(hist))
+    print(f"Written: {csv}, {page}", file=sys.stderr)
+    return EXIT_OK
+
+
+def write_pages(hist: History, out: Path) -> tuple[Path, Path]:
+    """Write ``history.csv`` and ``history.html`` into `out` (atomically); their paths."""
     out.mkdir(parents=True, exist_ok=True)
     csv, page = out / "history.csv", out / "history.html"
     _atomic_text(csv, hist.table.to_csv(index=False))
     _atomic_text(page, _html(hist))
-    print(_text(hist))
-    print(f"Written: {csv}, {page}", file=sys.stderr)
-    return EXIT_OK
+    return csv, page
 
 
 def _float(value: object) -> float:

@@ -411,11 +411,12 @@ def _run_one(
 
 
 def _changes_since_previous(cfg: Config, root: Path, name: str, emit: Callable[..., None]) -> None:
-    """Compare the new run with the successful run before it and hand the summary to the report.
+    """Compare the new run with the successful run before it and show the result in its report.
 
-    Writes the comparison folder ``compare-<previous>-<name>`` under the root and the summary
+    Writes the comparison folder ``compare-<previous>-<name>`` under the root, the summary
     (`Comparison.summary` plus links to the comparison and history pages) as ``changes.json`` in
-    the run folder. A failure here is logged and never fails the night's run.
+    the run folder, the history pages under the root, and re-renders the run's report.html with
+    "what changed since the previous night". A failure here is logged and never fails the night's run.
     """
     from .compare import compare_main_quiet
 
@@ -433,13 +434,20 @@ def _changes_since_previous(cfg: Config, root: Path, name: str, emit: Callable[.
 
 
 def report_changes(run_dir: Path, changes: dict[str, Any]) -> None:
-    """The hook that shows "what changed since the previous night" in a run's report.
+    """Show "what changed since the previous night" in a run's report.
 
-    Today it writes ``changes.json`` (keys ``previous_run``, ``added``, ``removed``,
-    ``unconfirmed``, ``mechanism_changes``, ``diff_href``, ``history_href``) into the run folder;
-    the report stage's ``render_report_html(run_dir, changes)`` is to be called here once it exists.
+    Writes ``changes.json`` (keys ``previous_run``, ``added``, ``removed``, ``unconfirmed``,
+    ``mechanism_changes``, ``diff_href``, ``history_href``) into the run folder, the history pages
+    (``history.html``, ``history.csv``) into the nightly root above it (they read every night's
+    ``changes.json``, this one's included), and re-renders the run's report.html with the changes
+    near its top.
     """
+    from .history import at_root, write_pages
+    from .stages.report import render_report_html
+
     _write_text_atomic(run_dir / "changes.json", json.dumps(changes, indent=2, allow_nan=False) + "\n")
+    write_pages(at_root(run_dir.parent), run_dir.parent)
+    render_report_html(run_dir, changes)
 
 
 def _record_failure(

@@ -241,3 +241,25 @@ def test_two_starts_together_never_both_run(tmp_path, demo_files):
     assert {k: v["attempts"] for k, v in state.items()} == {
         "2026-11-01": 1, "2026-11-02": 1, "2026-11-03": 1
     }
+
+
+def test_report_says_what_changed_since_the_previous_night(tmp_path, demo_files):
+    """The second night's report.html shows the change test's verdict near its top, with working links
+    to the comparison page and the history page; the counts are those of its changes.json."""
+    import re
+
+    inbox, root = _inbox(tmp_path, demo_files[:2]), tmp_path / "runs"
+    assert nightly.run(_config(inbox, root)).exit_code == 0
+    changes = json.loads((root / "2026-11-02" / "changes.json").read_text())
+    text = (root / "2026-11-02" / "report.html").read_text(encoding="utf-8")
+    start = text.index('<section id="changes">')
+    section = text[start:text.index("</section>", start)]
+    assert start < text.index('id="graph"')
+    assert (f"Compared with <b>2026-11-01</b>: <b>{len(changes['added'])}</b> links added, "
+            f"<b>{len(changes['removed'])}</b> removed and <b>{len(changes['mechanism_changes'])}</b> signals") in section
+    links = re.findall(r'href="([^"]+)"', section)
+    assert links == ["../compare-2026-11-01-2026-11-02/diff.html", "../history.html"]
+    for link in links:
+        assert (root / "2026-11-02" / link).resolve().is_file(), link
+    assert "2026-11-02" in (root / "history.html").read_text(encoding="utf-8")
+    assert "Compared with" not in (root / "2026-11-01" / "report.html").read_text(encoding="utf-8")

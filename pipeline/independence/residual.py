@@ -321,10 +321,14 @@ class ResidualTester:
                 ok = ok & p
         return np.nonzero(ok)[0]
 
-    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray) -> np.ndarray:
+    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray, target: np.ndarray | None = None) -> np.ndarray:
         """Residuals of variable `v` (its score or its indicators) regressed on `given` (with the previous
-        window of each member when rows are time-ordered) and on its own previous window."""
-        t = self._target(v, rows)
+        window of each member when rows are time-ordered) and on its own previous window.
+
+        `target` (rows x columns) replaces v's own score or indicators, e.g. indicators of levels fixed
+        across two tables (the change test of `pipeline.change`); the regressors are v's as usual.
+        """
+        t = self._target(v, rows) if target is None else np.asarray(target, dtype=np.float64)
         if t.shape[1] == 0:
             return t
         timed = self.timeline is not None and self.own_past[v]
@@ -342,7 +346,7 @@ class ResidualTester:
     def _projector(self, given: tuple[int, ...], rows: np.ndarray, cat_past_of: int | None) -> "_Projector":
         """The regression on a conditioning set (its strata, spline knots and normal equations), kept for
         the next variable regressed on the same set over the same rows."""
-        key = (given, cat_past_of, rows.size, int(rows[0]) if rows.size else -1, int(rows[-1]) if rows.size else -1)
+        key = (given, cat_past_of, rows.size, hash(rows.tobytes()))
         hit = self._projectors.get(key)
         if hit is not None:
             self._projectors.move_to_end(key)

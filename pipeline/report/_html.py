@@ -75,7 +75,9 @@ def _changes_html(ctx: Any) -> str:
         out = []
         for r in rows:
             what = r.get("signal") or f"{r.get('var_a', '')} \u2014 {r.get('var_b', '')}"
-            nums = f"change p = {fmt_p(r.get('pvalue'))}, q = {fmt_p(r.get('qvalue'))}"
+            # `Comparison.summary` names them change_pvalue / change_qvalue (as compare --json does)
+            p, q = r.get("change_pvalue", r.get("pvalue")), r.get("change_qvalue", r.get("qvalue"))
+            nums = f"change p = {fmt_p(p)}, q = {fmt_p(q)}"
             out.append(f"<li><b>{e(sign)}</b> {e(what)} <span class=\"muted\">({e(nums)})</span></li>")
         return "".join(out)
 
