@@ -188,10 +188,11 @@ def test_residual_route_holds_its_size_on_persistent_nights():
 
 
 def test_mechanism_change_is_found_by_the_residual_route():
-    """queue_depth's response to traffic doubled (graph unchanged): found at p < 1e-4 in 3 of 3 seeds."""
+    """queue_depth's response to traffic doubled (graph unchanged): found at p < 5e-4 in 3 of 3 seeds (below
+    compare.alpha = 0.05 even after a Bonferroni bound over 100 comparisons)."""
     for seed in range(1, 4):
         a, b = _nights_data(seed, change="mechanism")
-        assert mechanism_change(a, b, "queue_depth", QUEUE_NEIGHBOURS).pvalue < 1e-4
+        assert mechanism_change(a, b, "queue_depth", QUEUE_NEIGHBOURS).pvalue < 5e-4
 
 
 def test_new_link_is_found_by_the_residual_pair_test():
