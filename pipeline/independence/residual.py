@@ -179,22 +179,24 @@ def _dense_codes(cols: list[np.ndarray]) -> np.ndarray | None:
 
 @dataclass
 class _Projector:
-    """Regression on one conditioning set over one set of rows: exact strata of its categorical members,
-    a spline basis of its numeric members, and the normal equations of that basis (fitted on at most
-    `fit_rows` rows, a fixed seeded subset), so that each further variable costs one pass over the rows."""
+    """Regression on one conditioning set over one set of rows: exact strata of its categorical members
+    and a spline basis of its numeric members, with a curve of its own in every stratum that has the rows
+    for it (at least `_ROWS_PER_COLUMN` per basis column; smaller strata share the pooled curve), and the
+    normal equations of each fit kept, so that each further variable costs one pass over the rows.
+    Coefficients come from at most `fit_rows` rows per fit (a fixed, seeded subset)."""
 
     strata: np.ndarray | None
     num_cols: list[np.ndarray]
-    knots: int
     points: list[np.ndarray]
     means: np.ndarray | None  # per-stratum (or overall) means of the basis columns
-    whiten: np.ndarray | None  # w with w @ w.T the pseudo-inverse of the basis Gram matrix
-    pick: np.ndarray | None  # the rows the coefficients are fitted on (None: all)
+    whiten: np.ndarray | None  # w with w @ w.T the pseudo-inverse of the pooled basis Gram matrix
+    pick: np.ndarray | None  # the rows the pooled coefficients are fitted on (None: all)
+    own: list[tuple[np.ndarray, np.ndarray | None, np.ndarray]]  # (rows of a stratum, fit positions, whitening)
 
     @classmethod
     def build(cls, strata: np.ndarray | None, num_cols: list[np.ndarray], knots: int, fit_rows: int) -> "_Projector":
         if not num_cols:
-            return cls(strata, [], knots, [], None, None, None)
+            return cls(strata, [], [], None, None, None, [])
         n = num_cols[0].size
         points = [_knot_points(z, knots) for z in num_cols]
         basis = _design(num_cols, 0, points)
@@ -203,10 +205,19 @@ class _Projector:
         pick = None
         if n > fit_rows:
             pick = np.sort(np.random.default_rng(n).choice(n, fit_rows, replace=False))
-            basis = basis[pick]
-        vals, vecs = np.linalg.eigh(basis.T @ basis)
-        keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
-        return cls(strata, num_cols, knots, points, means, vecs[:, keep] / np.sqrt(vals[keep]), pick)
+        whiten = _whitening(basis if pick is None else basis[pick])
+        own: list[tuple[np.ndarray, np.ndarray | None, np.ndarray]] = []
+        if strata is not None:
+            order = np.argsort(strata, kind="stable")
+            bounds = np.searchsorted(strata[order], np.arange(int(strata.max(initial=-1)) + 2))
+            need = _ROWS_PER_COLUMN * basis.shape[1]
+            for s in range(bounds.size - 1):
+                rows = order[bounds[s]: bounds[s + 1]]
+                if rows.size >= need:
+                    at = None if rows.size <= fit_rows else np.sort(
+                        np.random.default_rng(s).choice(rows.size, fit_rows, replace=False))
+                    own.append((rows, at, _whitening(basis[rows] if at is None else basis[rows[at]])))
+        return cls(strata, num_cols, points, means, whiten, pick, own)
 
     def apply(self, t: np.ndarray, tester: "ResidualTester", basis: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray | None]:
         """Residuals of the columns of `t`, and the demeaned basis (for a further regression)."""
@@ -217,8 +228,22 @@ class _Projector:
             basis = _design(self.num_cols, 0, self.points)
             basis -= self.means[self.strata] if self.strata is not None else self.means  # type: ignore[index]
         fit_b, fit_t = (basis, t) if self.pick is None else (basis[self.pick], t[self.pick])
-        coef = self.whiten @ (self.whiten.T @ (fit_b.T @ fit_t))
-        return t - basis @ coef, basis
+        out = t - basis @ (self.whiten @ (self.whiten.T @ (fit_b.T @ fit_t)))
+        for rows, at, w in self.own:
+            b, y = basis[rows], t[rows]
+            fb, fy = (b, y) if at is None else (b[at], y[at])
+            out[rows] = y - b @ (w @ (w.T @ (fb.T @ fy)))
+        return out, basis
+
+
+_ROWS_PER_COLUMN = 10  # rows per basis column a stratum needs for a curve of its own (common practice)
+
+
+def _whitening(basis: np.ndarray) -> np.ndarray:
+    """w with ``w @ w.T`` the pseudo-inverse of ``basis.T @ basis`` (negligible directions dropped)."""
+    vals, vecs = np.linalg.eigh(basis.T @ basis)
+    keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
+    return vecs[:, keep] / np.sqrt(vals[keep])
 
 
 def _group_means(t: np.ndarray, strata: np.ndarray | None) -> np.ndarray:
