@@ -13,6 +13,7 @@ between them) are compared too. No seed is left out.
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 import tempfile
@@ -95,6 +96,8 @@ def table(rows: list[dict]) -> str:
     clean_links = sum(r["planted_added"] and not r["others_not_endpoint"] for r in rows)
     others = np.array([len(r["others"]) for r in rows], dtype=float)
     elsewhere = np.array([len(r["others_not_endpoint"]) for r in rows], dtype=float)
+    other_links = np.array([sum(not c.startswith("~") for c in r["others"]) for r in rows], dtype=float)
+    quiet_links = np.array([sum(not c.startswith("~") for c in r["quiet"]) for r in rows], dtype=float)
     quiet = np.array([len(r["quiet"]) for r in rows], dtype=float)
     seeds = f"{rows[0]['seed']}-{rows[-1]['seed']}" if n > 1 else str(rows[0]["seed"])
     lines = [
@@ -111,12 +114,16 @@ def table(rows: list[dict]) -> str:
         f"{sum(r['exact_pattern'] for r in rows)} of {n} seeds |",
         f"| planted link listed as `unconfirmed` | {sum(r['planted_unconfirmed'] for r in rows)} of {n} seeds |",
         f"| other supported changes in that compare (mean; max) | {others.mean():.2f} ({others.max():.0f}) |",
-        f"| ... of them not a mechanism change of the planted link's two ends (mean; max) | "
-        f"{elsewhere.mean():.2f} ({elsewhere.max():.0f}) |",
+        f"| ... of them a mechanism change of the planted link's two ends (the new link changes them; mean) | "
+        f"{(others - elsewhere).mean():.2f} |",
+        f"| ... of them another link added or removed (mean; max) | {other_links.mean():.2f} ({other_links.max():.0f}) |",
+        f"| ... of them a mechanism change elsewhere (mean; max) | {(elsewhere - other_links).mean():.2f} "
+        f"({(elsewhere - other_links).max():.0f}) |",
         f"| seeds with the planted link and nothing else | {clean} of {n} |",
         f"| seeds with the planted link and nothing else but its ends' mechanism changes | {clean_links} of {n} |",
         f"| supported changes between nights 1 and 2 (nothing changed; mean; max) | {quiet.mean():.2f} "
         f"({quiet.max():.0f}) |",
+        f"| ... of them links added or removed (mean) | {quiet_links.mean():.2f} |",
         f"| seconds a seed (whole flow, mean) | {np.mean([r['seconds'] for r in rows]):.0f} |",
         "",
         "| seed | false links per night | planted link per night | planted added | other supported changes "
@@ -135,7 +142,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--first-seed", type=int, default=1)
     ap.add_argument("--jobs", type=int, default=1, help="seeds run side by side in worker processes")
     ap.add_argument("--quick", action="store_true", help="4 seeds")
-    ap.add_argument("--out", type=Path, default=RESULTS / "demo.md")
+    ap.add_argument("--out", type=Path, default=RESULTS / "demo.md", help="the table; the per-seed figures go "
+                    "beside it as .json")
     args = ap.parse_args(argv)
     seeds = list(range(args.first_seed, args.first_seed + (4 if args.quick else args.seeds)))
     rows: list[dict] = []
@@ -146,6 +154,7 @@ def main(argv: list[str] | None = None) -> int:
                   f"planted {r['planted_added']} others {r['others']} quiet {r['quiet']} "
                   f"{r['seconds']:.0f} s", file=sys.stderr, flush=True)
     text = table(rows)
+    args.out.with_suffix(".json").write_text(json.dumps(rows, indent=1) + "\n", encoding="utf-8")
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(text, encoding="utf-8")
     sys.stdout.write(text)

@@ -79,7 +79,8 @@ def test_json_output_artifacts_and_fail_on_change(demo_runs, tmp_path, capsys):
     for key in ("added", "removed", "kept", "orientation_changes", "evidence_change", "shd",
                 "near_alpha"):
         assert key in data
-    assert data["shd"] == len(data["added"]) + len(data["removed"]) + len(data["orientation_changes"])
+    assert data["shd"] == (len(data["added"]) + len(data["removed"]) + len(data["unconfirmed"])
+                           + len(data["orientation_changes"]))
     assert all({"pvalue_a", "pvalue_b", "cmi_bits_a", "cmi_bits_b"} <= set(e) for e in data["evidence_change"])
     # the demo pins the first night's bins (discretise.reuse_from: latest): like is compared with like
     assert "different categories" not in captured.err
