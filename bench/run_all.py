@@ -9,6 +9,9 @@ machine, the date and the command.
     .venv/bin/python bench/run_all.py            # every size (the 10,000,000-row run takes minutes)
     .venv/bin/python bench/run_all.py --quick    # smaller sizes, for a first look
     .venv/bin/python bench/run_all.py --only bench_scale
+
+Every bench/bench_*.py is picked up by its name; `SCRIPT_ARGS` adds arguments to one script, e.g.
+bench_demo.py (the demo flow over 20 seeds, the README's demo table) runs two seeds side by side.
 """
 
 from __future__ import annotations
@@ -25,6 +28,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 RESULTS_DIR = HERE / "results"
+# extra arguments of single scripts (by stem)
+SCRIPT_ARGS: dict[str, list[str]] = {"bench_demo": ["--jobs", "2"]}
 
 
 def _cpu_model() -> str:
@@ -77,7 +82,7 @@ def machine_header(command: str) -> list[str]:
 
 def _run_script(script: Path, quick: bool) -> tuple[int, float, str, list[Path], str]:
     """Run one bench script; its exit code, seconds, stdout, results files it wrote, stderr tail."""
-    cmd = [sys.executable, str(script)]
+    cmd = [sys.executable, str(script), *SCRIPT_ARGS.get(script.stem, [])]
     if quick and "--quick" in script.read_text(encoding="utf-8"):
         cmd.append("--quick")
     env = dict(os.environ)

@@ -12,7 +12,6 @@ import pytest
 
 from pipeline import compare, nightly
 from pipeline.config import load_config
-from pipeline.demo import generate
 from pipeline.errors import EXIT_CHANGED, ConfigError, DataError
 
 REPO = Path(__file__).resolve().parents[1]
@@ -24,44 +23,44 @@ def _pair(a: str, b: str) -> tuple[str, str]:
 
 
 @pytest.fixture(scope="module")
-def demo_runs(tmp_path_factory):
-    """The demo at its default settings (seed 7, 4000 rows, 4 nights), run by `nightly`."""
-    base = tmp_path_factory.mktemp("compare-demo")
-    scenario = generate(base / "demo")
-    cfg = load_config(DEMO_CONFIG, [
-        f"nightly.inbox={scenario.inbox}", f"output.root={base / 'runs'}",
-        "nightly.settle_seconds=0", f"report.truth_file={scenario.truth_path}", "output.png=false",
-    ])
-    result = nightly.run(cfg, log=lambda line: None)
-    assert result.exit_code == 0, result.outcomes
-    return scenario, cfg, base / "runs"
+def demo_runs(demo_nights):
+    """The demo at its default settings (seed 7, 4 nights of 6 nodes x 288 windows), run by `nightly`
+    (the session fixture of conftest.py)."""
+    return demo_nights
 
 
-def test_demo_change_is_reported_and_nothing_spurious(demo_runs):
-    """Before vs after the planted mechanism change: exactly the planted link differs (demo truth)."""
-    scenario, _cfg, root = demo_runs
+def test_demo_change_is_reported_as_a_supported_added_link(demo_runs):
+    """The night before the planted change vs the night of it: the planted link is a supported `added`
+    link, no link is removed, no false link is added, and swapping the runs swaps added and removed.
+
+    Demo truth (truth.json). Over 20 seeds (bench/bench_demo.py, README demo section) the planted link
+    is reported as `added` on most seeds, not all, and other supported changes appear beside it on some
+    (a true link found on one night only, a mechanism change): this checks what holds on seed 7."""
+    scenario, cfg, root = demo_runs
     names = [p.stem for p in scenario.snapshots]
     after = scenario.changed_snapshot_name
     before = names[names.index(after) - 1]
     truth_before = {_pair(*e) for e in scenario.true_edges_by_snapshot[before]}
     truth_after = {_pair(*e) for e in scenario.true_edges_by_snapshot[after]}
-    assert _pair(*scenario.changed_edge) in truth_before ^ truth_after
-    cmp = compare.run(root / before, root / after)
-    assert set(cmp.added) == truth_after - truth_before
-    assert set(cmp.removed) == truth_before - truth_after
-    # the planted link is the one supported link change; the demo generator redraws each node's
-    # region every night, a real shift of region's distribution that the mechanism test may report
-    assert len(cmp.added) + len(cmp.removed) == 1
+    planted = _pair(*scenario.changed_edge)
+    assert truth_after - truth_before == {planted} and not truth_before - truth_after
+    cmp = compare.run(root / before, root / after, change_alpha=cfg.compare.alpha)
+    assert planted in cmp.added and planted not in cmp.unconfirmed
+    assert cmp.pair_figures(planted)["change_qvalue"] <= cfg.compare.alpha
+    assert set(cmp.added) <= truth_after and not cmp.removed
+    back = compare.run(root / after, root / before, change_alpha=cfg.compare.alpha)
+    assert (set(back.added), set(back.removed)) == (set(cmp.removed), set(cmp.added))
 
 
 def test_run_against_itself_reports_no_change(demo_runs, capsys):
-    """A run compared with itself: nothing added, removed or turned, SHD 0, exit 0 at N = 0."""
+    """A run compared with itself: nothing added, removed, unconfirmed, turned or changed, SHD 0, exit 0 at N = 0."""
     _scenario, cfg, root = demo_runs
     latest = root / nightly.read_pointer(root, "latest")
     cmp = compare.run(latest, latest)
-    assert (cmp.added, cmp.removed, cmp.orientation_changes, cmp.shd, cmp.warnings) == (
-        (), (), (), 0, ()
+    assert (cmp.added, cmp.removed, cmp.unconfirmed, cmp.orientation_changes, cmp.shd, cmp.warnings) == (
+        (), (), (), (), 0, ()
     )
+    assert cmp.mechanism_changes == ()
     assert len(cmp.kept) == int(pd.read_parquet(latest / "evidence.parquet")["linked"].sum())
     assert compare.compare_main("latest", "latest", cfg=cfg, fail_on_change=0, json_out=True) == 0
     out = json.loads(capsys.readouterr().out)
@@ -80,7 +79,8 @@ def test_json_output_artifacts_and_fail_on_change(demo_runs, tmp_path, capsys):
     for key in ("added", "removed", "kept", "orientation_changes", "evidence_change", "shd",
                 "near_alpha"):
         assert key in data
-    assert data["shd"] == len(data["added"]) + len(data["removed"]) + len(data["orientation_changes"])
+    assert data["shd"] == (len(data["added"]) + len(data["removed"]) + len(data["unconfirmed"])
+                           + len(data["orientation_changes"]))
     assert all({"pvalue_a", "pvalue_b", "cmi_bits_a", "cmi_bits_b"} <= set(e) for e in data["evidence_change"])
     # the demo pins the first night's bins (discretise.reuse_from: latest): like is compared with like
     assert "different categories" not in captured.err

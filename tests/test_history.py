@@ -7,9 +7,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from pipeline import history, nightly
+from pipeline import history
 from pipeline.config import load_config
-from pipeline.demo import generate
 from pipeline.errors import DataError
 
 REPO = Path(__file__).resolve().parents[1]
@@ -17,20 +16,17 @@ DEMO_CONFIG = REPO / "configs" / "demo.yaml"
 
 
 @pytest.fixture(scope="module")
-def demo_root(tmp_path_factory):
-    """The demo at its default settings (seed 7, 4000 rows, 4 nights), run by `nightly`."""
-    base = tmp_path_factory.mktemp("history-demo")
-    scenario = generate(base / "demo")
-    cfg = load_config(DEMO_CONFIG, [
-        f"nightly.inbox={scenario.inbox}", f"output.root={base / 'runs'}",
-        "nightly.settle_seconds=0", f"report.truth_file={scenario.truth_path}", "output.png=false",
-    ])
-    assert nightly.run(cfg, log=lambda line: None).exit_code == 0
-    return scenario, cfg, base / "runs"
+def demo_root(demo_nights):
+    """The demo at its default settings (seed 7, 4 nights of 6 nodes x 288 windows), run by `nightly`
+    (the session fixture of conftest.py)."""
+    return demo_nights
 
 
 def test_planted_change_shows_on_the_right_night(demo_root, capsys):
-    """The demo's changed link flips exactly once, on the demo's changed night (demo truth.json)."""
+    """The demo's changed link flips exactly once, on the demo's changed night (demo truth.json).
+
+    Seed 7; over 20 seeds the planted link's pattern is exactly ssLL on most seeds, not all (measured by
+    bench/bench_demo.py, README demo section)."""
     scenario, cfg, root = demo_root
     assert history.history_main(cfg) == 0
     printed = capsys.readouterr().out

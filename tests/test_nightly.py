@@ -1,7 +1,8 @@
 """Nightly operation over the invented demo inbox: order, idempotence, retries, locks, pointers, retention.
 
 The demo snapshots are invented data (pipeline.demo); these checks are about the operation of the
-nightly job, not about the statistics, so they use small snapshots (1500 rows) and settle_seconds 0.
+nightly job, not about the statistics, so they use small snapshots (3 nodes x 100 five-minute windows)
+and settle_seconds 0.
 """
 
 from __future__ import annotations
@@ -25,7 +26,7 @@ from pipeline.runs import run_lock
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO_CONFIG = REPO / "configs" / "demo.yaml"
-ROWS = 1500
+NODES, WINDOWS = 3, 100  # small snapshots: the operation is under test, not the statistics
 
 
 def _sets(inbox: Path, root: Path, *extra: str) -> list[str]:
@@ -61,8 +62,8 @@ def _in_tmp(tmp_path, monkeypatch):
 
 @pytest.fixture(scope="module")
 def demo_files(tmp_path_factory) -> list[Path]:
-    """Five demo snapshots (1500 rows each), written once and copied into each test's inbox."""
-    scenario = generate(tmp_path_factory.mktemp("demo"), rows_per_snapshot=ROWS, snapshots=5)
+    """Five demo snapshots (3 nodes x 100 windows each), written once and copied into each test's inbox."""
+    scenario = generate(tmp_path_factory.mktemp("demo"), nodes=NODES, windows=WINDOWS, snapshots=5)
     return scenario.snapshots
 
 

@@ -11,7 +11,7 @@ from pipeline.demo import generate
 def test_stability_in_evidence_and_stable_graph(tmp_path):
     """`search.resamples` fills `stability` for every pair, identically for 1 and 2 workers, and
     writes the stable graph beside the single-run graph."""
-    data = generate(tmp_path / "demo", rows_per_snapshot=1500, snapshots=1).snapshots[0]
+    data = generate(tmp_path / "demo", rows_per_snapshot=900, snapshots=1).snapshots[0]
     frames = []
     for jobs in (1, 2):
         out = tmp_path / f"j{jobs}" / "run"

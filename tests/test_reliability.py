@@ -22,7 +22,8 @@ DATA_ARTIFACTS = ["evidence.parquet", "tests.parquet", "marginal.parquet", "disc
                   "rejected.parquet", "levels.json", "cleaning.json", "evidence.csv", "graph.dot"]
 
 
-def _demo_extract(folder: Path, rows: int = 3000) -> Path:
+def _demo_extract(folder: Path, rows: int = 1200) -> Path:
+    """One demo night of about `rows` rows (6 node series; time-ordered, so the time-aware tests run)."""
     from pipeline.demo import generate
 
     return generate(folder, rows_per_snapshot=rows, snapshots=1).snapshots[0]
@@ -80,7 +81,7 @@ def _fault_injection(tmp_path: Path, kills: int, rows: int, seed: int, extra: tu
 def test_runs_killed_at_ten_random_moments(tmp_path):
     """SIGKILL at 10 random moments never harms the previous run or leaves a half artifact, and the
     next run produces the same artifacts as an uninterrupted one."""
-    _fault_injection(tmp_path, kills=10, rows=3000, seed=20261201)
+    _fault_injection(tmp_path, kills=10, rows=1200, seed=20261201)
 
 
 @pytest.mark.slow
@@ -91,7 +92,7 @@ def test_runs_killed_at_random_moments_bigger_input(tmp_path):
 
 def test_artifacts_repeat_byte_for_byte_across_runs_and_worker_counts(tmp_path):
     """Same input, configuration and seed: byte-identical data artifacts for jobs 1 and 2, run twice."""
-    data = _demo_extract(tmp_path / "demo", 2000)
+    data = _demo_extract(tmp_path / "demo", 1200)
     runs = {}
     for label, jobs in (("one", 1), ("two", 2), ("again", 1)):
         out = tmp_path / label / "run"  # separate parents: separate caches, so everything is recomputed
