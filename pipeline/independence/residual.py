@@ -28,7 +28,8 @@ How each part is done here:
   window (the start of a series, a gap) are left out, so nothing is paired across series or gaps. The
   variance of the mean product is the Newey & West (1987) long-run variance with Bartlett weights
   over lags within the series (bandwidth ``floor(4 (m / 100) ** (2 / 9))`` for series of m rows,
-  Newey & West 1994), so what persistence is left after the regressions does not shrink the p-values.
+  Newey & West 1994, widened by the AR(1) plug-in rule of Andrews 1991 when the products themselves
+  persist), so what persistence is left after the regressions does not shrink the p-values.
 
 Every result records ``correction`` (what was done for serial dependence) and ``n_effective`` (the rows
 divided by the variance inflation the long-run variance found), and an effect size comparable with the
@@ -294,6 +295,7 @@ class ResidualTester:
         if timeline is not None:
             base &= timeline.prev >= 0
             self._partners = [timeline.lag_partner(k) for k in range(1, timeline.bandwidth() + 1)]
+        self._rule = len(self._partners)  # the Newey-West bandwidth for this series length
         self._base = base
         self._present = [self._present_of(i) for i in range(nv)]
         self._cache: OrderedDict[tuple, np.ndarray] = OrderedDict()
@@ -427,17 +429,43 @@ class ResidualTester:
         prod = (rx[:, :, None] * ry[:, None, :]).reshape(rows.size, -1)
         return prod, rows
 
-    def partners_for(self, rows: np.ndarray) -> list[np.ndarray]:
-        """Positions within `rows` of each row's partners 1..bandwidth windows back in its series (or -1)."""
+    def partners_for(self, rows: np.ndarray, bandwidth: int | None = None) -> list[np.ndarray]:
+        """Positions within `rows` of each row's partners 1..bandwidth windows back in its series (or -1);
+        the bandwidth defaults to the Newey-West rule for the series length."""
         if self.timeline is None:
             return []
+        want = self._rule if bandwidth is None else int(bandwidth)
+        while len(self._partners) < want:
+            self._partners.append(self.timeline.lag_partner(len(self._partners) + 1))
         pos = np.full(self.codes.shape[1], -1, dtype=np.int64)
         pos[rows] = np.arange(rows.size)
         out = []
-        for p in self._partners:
+        for p in self._partners[:want]:
             q = p[rows]
             out.append(np.where(q >= 0, pos[np.maximum(q, 0)], -1))
         return out
+
+    def bandwidth_for(self, prod: np.ndarray, partners: list[np.ndarray]) -> int:
+        """Bartlett bandwidth: the Newey & West (1994) rule for the series length, or more when the products
+        themselves persist (the AR(1) plug-in rule of Andrews 1991, Econometrica 59(3), with the lag-1
+        autocorrelation of each product column within the series), capped at half a series."""
+        rule = len(partners)
+        if not partners:
+            return 0
+        p1 = partners[0]
+        ok = p1 >= 0
+        if ok.sum() < 10:
+            return rule
+        a, b = prod[ok], prod[p1[ok]]
+        a = a - a.mean(axis=0)
+        b = b - b.mean(axis=0)
+        var = np.maximum((a * a).mean(axis=0), 1e-300)
+        rho = np.clip((a * b).mean(axis=0) / var, -0.97, 0.97)
+        num = np.sum(4.0 * rho**2 * var**2 / ((1.0 - rho) ** 6 * (1.0 + rho) ** 2))
+        den = np.sum(var**2 / (1.0 - rho) ** 4)
+        plug_in = 1.1447 * (float(num / den) * prod.shape[0]) ** (1.0 / 3.0)
+        cap = max(1, int(self.timeline.series_length // 2)) if self.timeline is not None else rule
+        return int(min(cap, max(rule, math.ceil(plug_in))))
 
     def _full_rows(self, x: int, y: int) -> int:
         # residuals are cached only for the common row set: every row with a previous window
@@ -461,6 +489,10 @@ class ResidualTester:
             return 0.0, 0, 1.0, n, float(n), 0.0, 0.0, correction
         mean = prod.mean(axis=0)
         partners = self.partners_for(rows)
+        if partners:
+            wide = self.bandwidth_for(prod, partners)
+            if wide > len(partners):
+                partners = self.partners_for(rows, wide)
         cov0 = hac_covariance(prod)
         w0, dof0 = wald(mean, cov0, n)
         if partners:
