@@ -28,6 +28,7 @@ __all__ = [
     "atomic_write_text",
     "atomic_write_json",
     "atomic_write_parquet",
+    "json_text",
     "fingerprint_paths",
     "stable_hash",
     "output_root",
@@ -86,9 +87,22 @@ def atomic_write_text(path: str | os.PathLike[str], text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
+_INDENT_UP_TO = 256 * 1024  # JSON longer than this (compact) is written compact: indenting runs in pure Python
+
+
+def json_text(data: Any) -> str:
+    """Sorted-key JSON (no NaN) with a final newline: indented for reading, or compact when it is
+    long (indenting takes json's pure-Python encoder, seconds for a large search state). The same
+    data always gives the same text."""
+    compact = json.dumps(data, sort_keys=True, default=str, allow_nan=False, separators=(",", ":"))
+    if len(compact) > _INDENT_UP_TO:
+        return compact + "\n"
+    return json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n"
+
+
 def atomic_write_json(path: str | os.PathLike[str], data: Any) -> Path:
-    """Write JSON (sorted keys, indented, no NaN) atomically."""
-    return atomic_write_text(path, json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n")
+    """Write JSON (sorted keys, no NaN; see `json_text`) atomically."""
+    return atomic_write_text(path, json_text(data))
 
 
 def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> Path:

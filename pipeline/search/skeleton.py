@@ -20,18 +20,19 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from itertools import combinations
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 
 from ..independence._kernels import HAVE_NUMBA
 from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
-from ..independence.mixed import MixedEngine
-from ..independence.residual import Timeline
 from ..independence.result import CITestResult
 from ..parallel import ParallelContext
 from .knowledge import Knowledge
+
+if TYPE_CHECKING:  # the mixed engine (and scipy.stats under it) loads only when numeric or timed signals need it
+    from ..independence.mixed import MixedEngine
 
 __all__ = ["TestRecord", "SkeletonResult", "SignalExtras", "pc_stable_skeleton", "candidate_sets"]
 
@@ -118,6 +119,9 @@ class SignalExtras:
     own_past: tuple[bool, ...]
 
     def engine(self, data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> MixedEngine:
+        from ..independence.mixed import MixedEngine
+        from ..independence.residual import Timeline
+
         timeline = None if self.prev is None else Timeline(prev=np.asarray(self.prev), series_length=self.series_length)
         scores = [np.asarray(self.scores[i]) if num else None for i, num in enumerate(self.numeric)]
         return MixedEngine(data, names, cards, settings, scores=scores, timeline=timeline,
