@@ -29,6 +29,7 @@ __all__ = [
     "atomic_write_json",
     "atomic_write_parquet",
     "json_text",
+    "RunFolder",
     "fingerprint_paths",
     "stable_hash",
     "output_root",
@@ -424,6 +425,40 @@ def publish_run(partial: Path, final: Path) -> None:
 ADHOC_FOLDER = "adhoc"  # ad-hoc runs under an output root: never part of the nightly history
 PARTIAL_MARKER = ".edgeproof-partial"  # written into every `.NAME.partial` folder edgeproof starts
 NIGHTLY_MARKERS = ("nightly-state.json", "nightly.log")  # files only `edgeproof nightly` writes
+
+
+class RunFolder:
+    """One run folder read back (by `load_run`, `compare` and `history`): its JSON files and its
+    Parquet tables, with one wording for a table that cannot be read."""
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self.path = Path(path)
+
+    @property
+    def name(self) -> str:
+        """The folder's own name (a `latest` link resolved)."""
+        return self.path.resolve().name
+
+    def has(self, name: str) -> bool:
+        return (self.path / name).is_file()
+
+    def json(self, name: str, default: Any = "{}") -> Any:
+        """The content of a JSON file of the run, or `default` (an empty dict unless given) when it
+        is missing or unreadable."""
+        try:
+            return json.loads((self.path / name).read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return {} if default == "{}" else default
+
+    def table(self, name: str, columns: list[str] | None = None) -> pd.DataFrame:
+        """A Parquet table of the run; `DataError` naming the file when it cannot be read."""
+        from .errors import DataError
+
+        path = self.path / name
+        try:
+            return pd.read_parquet(path, columns=columns)
+        except Exception as err:  # noqa: BLE001 - pyarrow raises several types
+            raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
 
 
 def is_run_folder(folder: str | os.PathLike[str]) -> bool:

@@ -18,7 +18,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._common import fmt_num, fmt_p, given_text, p_is, pair_key, plain
+from ..pairs import pair_keys
+from ._common import fmt_num, fmt_p, given_text, p_is, plain
 from ._page import GLOSSARY, LineSample, e, line_key, page_css, terms_list
 from ._review import VERDICTS
 
@@ -433,12 +434,10 @@ def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, Any]:
     empty: dict[str, Any] = {"fields": list(TEST_FIELDS), "tests": {}, "counts": {}, "limit": TESTS_PER_PAIR}
     if tests is None or len(tests) == 0 or len(evidence) == 0:
         return empty
-    a, b = evidence["var_a"].astype(str).to_numpy(), evidence["var_b"].astype(str).to_numpy()
-    lo_e, hi_e = np.where(a <= b, a, b), np.where(a <= b, b, a)
+    lo_e, hi_e = pair_keys(evidence["var_a"], evidence["var_b"])
     index = pd.Series(np.arange(len(evidence)), index=pd.MultiIndex.from_arrays([lo_e, hi_e]))
     index = index[~index.index.duplicated(keep="last")]
-    x, y = tests["var_a"].astype(str).to_numpy(), tests["var_b"].astype(str).to_numpy()
-    lo, hi = np.where(x <= y, x, y), np.where(x <= y, y, x)
+    lo, hi = pair_keys(tests["var_a"], tests["var_b"])
     row = index.reindex(pd.MultiIndex.from_arrays([lo, hi])).to_numpy()
     found = ~pd.isna(row)
     t = tests.loc[found].reset_index(drop=True)

@@ -28,6 +28,7 @@ from ..independence._kernels import HAVE_NUMBA
 from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
 from ..independence.result import CITestResult
+from ..pairs import pair_key
 from ..parallel import ParallelContext
 from .knowledge import Knowledge
 
@@ -82,8 +83,7 @@ class SearchState:
     disagreements: set[Pair] = field(default_factory=set)
 
 
-def _pair(a: str, b: str) -> Pair:
-    return (a, b) if a <= b else (b, a)
+_pair = pair_key
 
 
 def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) -> list[tuple[str, ...]]:
