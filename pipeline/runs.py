@@ -88,7 +88,7 @@ def atomic_write_text(path: str | os.PathLike[str], text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
-_INDENT_UP_TO = 256 * 1024  # JSON longer than this (compact) is written compact: indenting runs in pure Python
+_INDENT_UP_TO = 64 * 1024  # JSON longer than this (compact) is written compact: indenting runs in pure Python
 
 
 def json_text(data: Any) -> str:
