@@ -166,9 +166,8 @@ def build_nx_graph(
     g = nx.Graph()
     for name in names:
         g.add_node(str(name), levels=" | ".join(map(str, levels.get(name, []))))
-    for _, row in evidence.iterrows():
-        if not bool(row["linked"]):
-            continue
+    linked = evidence[evidence["linked"].astype(bool).to_numpy()] if len(evidence) else evidence
+    for _, row in linked.iterrows():  # the linked pairs only: a few among thousands of pairs
         attrs = {k: _attr(row[k]) for k in _EDGE_ATTRS if k in evidence.columns}
         for k in ("orientation", "given", "method", "knowledge", "flags", "explanation"):
             if k in attrs and isinstance(attrs[k], float) and math.isnan(attrs[k]):
