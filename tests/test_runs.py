@@ -110,3 +110,15 @@ def test_run_folder_reads_json_and_names_an_unreadable_table(tmp_path):
     assert run.json("levels.json") == {} and run.json("changes.json", default=None) is None
     with pytest.raises(DataError, match="evidence.parquet` cannot be read"):
         run.table("evidence.parquet")
+
+
+def test_json_text_indents_short_documents_and_keeps_long_ones_compact():
+    """Short JSON is indented for reading; long JSON is one compact line; both read back the same."""
+    import json
+
+    from pipeline.runs import json_text
+
+    short = {"b": 1, "a": [1, 2]}
+    long = {"edges": [[f"s{i}", f"s{i + 1}"] for i in range(20_000)]}
+    assert json_text(short) == json.dumps(short, indent=2, sort_keys=True) + "\n"
+    assert json_text(long).count("\n") == 1 and json.loads(json_text(long)) == long
