@@ -23,7 +23,7 @@ import pandas as pd
 from .independence.engine import EngineSettings
 from .runner import Stage, StageCall
 from .search.skeleton import SignalExtras
-from .stages import battery, clean, discretise, ingest, skeleton, stability, timeline
+from .stages import battery, clean, discretise, ingest, skeleton, stability
 from .stages._evidence import records_from_part, tests_part
 from .stages.skeleton import state_doc, state_from
 
@@ -90,6 +90,8 @@ def _timeline(call: StageCall) -> dict[str, Any]:
     levels = call["levels.json"]
     codes = call["discretised.parquet"]
     cards = {c: max(1, len(levels["levels"][c])) for c in codes.columns}
+    from .stages import timeline  # loads scipy.stats (rank scores): only when the stage runs, not on a cache hit
+
     timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg)
     n = timed.codes.shape[1]
     scores = np.full(timed.codes.shape, np.nan)
