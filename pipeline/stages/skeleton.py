@@ -3,10 +3,12 @@ then optional orientation, then the evidence table."""
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 import numpy as np
 import pandas as pd
@@ -99,6 +101,24 @@ def _resume(folder: Path, start: SearchState) -> tuple[SearchState, list[str]]:
         return start, []  # a checkpoint that does not fit this search: start over
 
 
+@contextlib.contextmanager
+def _cyclic_gc_paused() -> Iterator[None]:
+    """Pause Python's cycle collector while the search runs.
+
+    The search keeps one small result object per test, none of them in a reference cycle; the
+    collector would walk all of them again and again as they pile up (measured: about 15% of the
+    search's CPU at 30,000 tests, and growing with the tests). Reference counting still frees
+    everything; any cycle waits for the collector's next run after the search.
+    """
+    was_on = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_on:
+            gc.enable()
+
+
 def run(
     data: np.ndarray,
     names: list[str],
@@ -134,10 +154,11 @@ def run(
             _save_level(checkpoint, s, written[0], parts)
             written[0] = len(s.tests)
 
-    skeleton = pc_stable_skeleton(
-        data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
-        resume=state, on_level=save, progress=progress, extras=extras,
-    )
+    with _cyclic_gc_paused():
+        skeleton = pc_stable_skeleton(
+            data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
+            resume=state, on_level=save, progress=progress, extras=extras,
+        )
     orientation = None
     records = list(skeleton.tests)
     phases = ["battery" if r.level == 0 else "skeleton" for r in records]
