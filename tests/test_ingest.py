@@ -297,6 +297,7 @@ def test_fast_and_careful_csv_paths_agree(tmp_path, monkeypatch, body):
 
     path = _write(tmp_path, "x.csv", body)
     assert _data_read._quotes_close_on_each_line(body.encode(), '"') == ("y\nz" not in body)
+    monkeypatch.setattr(_data_read, "_THREADED_FROM_BYTES", 0)  # the threaded path for this small file too
     fast = _read(path)
     monkeypatch.setattr(_data_read, "_quotes_close_on_each_line", lambda data, quote: False)
     careful = _read(path)

@@ -317,6 +317,9 @@ def nonempty_lines(data: bytes) -> np.ndarray:
     return np.flatnonzero(length > 0).astype(np.int64) + 1
 
 
+_THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; the check would cost more
+
+
 def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
     """True when no line break falls inside quotes (every quoted value opens and closes on its
     line; a doubled quote inside a value flips the state twice). One pass over the bytes."""
@@ -469,7 +472,7 @@ def read_csv(
     column_types: dict[str, pa.DataType] = {}
     # Fast path: when no quoted value can span lines, parse in blocks on pyarrow's threads. Rows it
     # rejects may lack their numbers there, so any rejected row sends the file down the careful path.
-    fast = not quote or _quotes_close_on_each_line(data, quote)
+    fast = len(data) >= _THREADED_FROM_BYTES and (not quote or _quotes_close_on_each_line(data, quote))
     for _ in range(2 * len(names) + 2):
         rejected.clear()
         read_opts = pa_csv.ReadOptions(
