@@ -32,6 +32,7 @@ from .plan import STAGES, coded_matrix
 from .progress import Reporter
 from .runner import Runner
 from .runs import (
+    RunFolder,
     StageCache,
     atomic_write_bytes,
     atomic_write_json,
@@ -80,13 +81,12 @@ def evidence_graph(evidence: pd.DataFrame) -> nx.Graph:
 
 def load_run(run_dir: str | os.PathLike[str]) -> RunResult:
     """Load a finished run folder (or a `latest` link) back into a `RunResult`."""
-    d = Path(run_dir)
-    if not (d / "manifest.json").is_file():
-        raise DataError(f"`{d}` is not a finished edgeproof run folder (no manifest.json).")
-    manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
-    evidence = pd.read_parquet(d / "evidence.parquet")
-    tests = pd.read_parquet(d / "tests.parquet")
-    return RunResult(out_dir=d.resolve(), evidence=evidence, tests=tests, manifest=manifest, graph=evidence_graph(evidence))
+    run = RunFolder(run_dir)
+    if not run.has("manifest.json"):
+        raise DataError(f"`{run.path}` is not a finished edgeproof run folder (no manifest.json).")
+    evidence = run.table("evidence.parquet")
+    return RunResult(out_dir=run.path.resolve(), evidence=evidence, tests=run.table("tests.parquet"),
+                     manifest=run.json("manifest.json"), graph=evidence_graph(evidence))
 
 
 def _input_files(path: Path) -> list[Path]:

@@ -30,6 +30,7 @@ signal's mechanism test), ``diff.dot``, ``diff.svg`` and ``diff.html``.
 from __future__ import annotations
 
 import html
+import io
 import json
 import math
 import os
@@ -45,6 +46,8 @@ import pandas as pd
 from .change import ChangeTest, NightData, mechanism_change, pair_change, with_qvalues
 from .config import Config
 from .errors import EXIT_CHANGED, EXIT_OK, ConfigError, DataError
+from .pairs import pair_key
+from .runs import RunFolder, atomic_write_bytes, atomic_write_text
 
 __all__ = ["Comparison", "run", "confirm", "diff_evidence", "resolve_run", "compare_main", "DIFF_COLUMNS"]
 
@@ -516,26 +519,24 @@ def compare_main_quiet(run_a: Path, run_b: Path, cfg: Config, out: Path) -> dict
 
 def _load(folder: Path) -> dict[str, Any]:
     """Evidence, levels and the alpha settings of one run folder."""
+    run = RunFolder(folder)
     ev_path = folder / "evidence.parquet"
-    if not ev_path.is_file():
+    if not run.has("evidence.parquet"):
         raise DataError(
             f"Run folder `{folder}` has no `evidence.parquet`; give a finished run folder "
             f"(or `latest` / `previous` with --config)."
         )
-    try:
-        evidence = pd.read_parquet(ev_path)
-    except Exception as err:  # noqa: BLE001 - pyarrow raises several types
-        raise DataError(f"`{ev_path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    evidence = run.table("evidence.parquet")
     missing = {"var_a", "var_b", "linked", "pvalue"} - set(evidence.columns)
     if missing:
         raise DataError(f"`{ev_path}` lacks columns {sorted(missing)}; re-run that snapshot.")
-    levels = _read_json(folder / "levels.json")
-    manifest = _read_json(folder / "manifest.json")
+    levels = run.json("levels.json")
+    manifest = run.json("manifest.json")
     conf = manifest.get("config", {}) if isinstance(manifest, dict) else {}
     alpha = _float((conf.get("test") or {}).get("alpha"))
     factor = _float((conf.get("search") or {}).get("near_alpha_factor"))
     return {
-        "name": folder.resolve().name,
+        "name": run.name,
         "evidence": evidence,
         "levels": levels if isinstance(levels, dict) else {},
         "alpha": alpha if math.isfinite(alpha) else 0.05,
@@ -550,21 +551,15 @@ def _load_night(folder: Path, levels: dict[str, Any]) -> Optional[NightData]:
     (time order within the series) and the raw values of numeric signals under their own names.
     Without it the night is categorical with independent rows. None when the codes are missing.
     """
-    path = folder / "discretised.parquet"
-    if not path.is_file():
+    run = RunFolder(folder)
+    path, timeline = folder / "discretised.parquet", folder / "timeline.parquet"
+    if not run.has("discretised.parquet"):
         return None
-    try:
-        codes = pd.read_parquet(path)
-    except Exception as err:  # noqa: BLE001 - pyarrow raises several types
-        raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    codes = run.table("discretised.parquet")
     kinds = {str(k): str(v) for k, v in (levels.get("kinds") or {}).items()}
-    timeline = folder / "timeline.parquet"
-    if not timeline.is_file():
+    if not run.has("timeline.parquet"):
         return NightData(codes, kinds)
-    try:
-        tl = pd.read_parquet(timeline)
-    except Exception as err:  # noqa: BLE001
-        raise DataError(f"`{timeline}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+    tl = run.table("timeline.parquet")
     if len(tl) != len(codes):
         raise DataError(
             f"`{timeline}` has {len(tl)} rows but `{path}` has {len(codes)}; re-run that snapshot."
@@ -574,14 +569,6 @@ def _load_night(folder: Path, levels: dict[str, Any]) -> Optional[NightData]:
     order = tl[TIMELINE_ORDER].to_numpy(dtype=np.int64) if TIMELINE_ORDER in tl.columns else None
     values = tl[numeric].astype(float) if numeric else None
     return NightData(codes, kinds, values, series, order)
-
-
-def _read_json(path: Path) -> Any:
-    """A JSON file's content, or {} when it is missing or unreadable."""
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return {}
 
 
 def _category_warnings(a: dict[str, Any], b: dict[str, Any]) -> list[str]:
@@ -614,7 +601,7 @@ def _indexed(evidence: pd.DataFrame) -> dict[Pair, dict[str, Any]]:
     out: dict[Pair, dict[str, Any]] = {}
     for rec in evidence.to_dict("records"):
         a, b = str(rec["var_a"]), str(rec["var_b"])
-        out[(a, b) if a <= b else (b, a)] = rec
+        out[pair_key(a, b)] = rec
     return out
 
 
@@ -676,32 +663,27 @@ def _write(cmp: Comparison, out: Path) -> list[Path]:
     out.mkdir(parents=True, exist_ok=True)
     written = []
     parquet = out / "diff.parquet"
-    _atomic(parquet, lambda p: cmp.table.to_parquet(p, index=False))
+    buf = io.BytesIO()
+    cmp.table.to_parquet(buf, index=False)
+    atomic_write_bytes(parquet, buf.getvalue())
     csv = out / "diff.csv"
-    _atomic(csv, lambda p: cmp.table.to_csv(p, index=False))
+    atomic_write_text(csv, cmp.table.to_csv(index=False))
     mech = out / "mechanism.csv"
-    _atomic(mech, lambda p: cmp.mechanism.to_csv(p, index=False))
+    atomic_write_text(mech, cmp.mechanism.to_csv(index=False))
     written.append(mech)
     dot_source = _dot(cmp)
     dot = out / "diff.dot"
-    _atomic(dot, lambda p: Path(p).write_text(dot_source, encoding="utf-8"))
+    atomic_write_text(dot, dot_source)
     written += [parquet, csv, dot]
     svg_text = _render_svg(dot_source)
     if svg_text is not None:
         svg = out / "diff.svg"
-        _atomic(svg, lambda p: Path(p).write_text(svg_text, encoding="utf-8"))
+        atomic_write_text(svg, svg_text)
         written.append(svg)
     page = out / "diff.html"
-    _atomic(page, lambda p: Path(p).write_text(_html(cmp, svg_text), encoding="utf-8"))
+    atomic_write_text(page, _html(cmp, svg_text))
     written.append(page)
     return written
-
-
-def _atomic(path: Path, write: Any) -> None:
-    """Call ``write(tmp)`` and rename the temporary file over `path`."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    write(tmp)
-    os.replace(tmp, path)
 
 
 def _dot(cmp: Comparison) -> str:

@@ -28,6 +28,8 @@ import pandas as pd
 
 from .config import Config
 from .errors import EXIT_OK, ConfigError, DataError
+from .pairs import pair_key
+from .runs import RunFolder, atomic_write_text
 
 __all__ = ["History", "run", "at_root", "edge_history", "write_pages", "history_main"]
 
@@ -43,7 +45,7 @@ class History:
 
     def row(self, a: str, b: str) -> Optional[dict]:
         """The row of pair (a, b) in either order, or None when it was never linked."""
-        key = (a, b) if a <= b else (b, a)
+        key = pair_key(a, b)
         hit = self.table[(self.table["var_a"] == key[0]) & (self.table["var_b"] == key[1])]
         return None if hit.empty else hit.iloc[0].to_dict()
 
@@ -89,28 +91,22 @@ def at_root(root: Path, last: Optional[int] = None) -> History:
         )
     evidence, tested = [], {}
     for name in names:
-        tested[name] = _tested_flips(root / name / "changes.json")
-        path = root / name / "evidence.parquet"
-        try:
-            evidence.append((name, pd.read_parquet(path, columns=["var_a", "var_b", "linked", "pvalue", "cmi_bits"])))
-        except Exception as err:  # noqa: BLE001 - pyarrow raises several types
-            raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
+        run_folder = RunFolder(root / name)
+        tested[name] = _tested_flips(run_folder.json("changes.json", default=None))
+        evidence.append((name, run_folder.table("evidence.parquet",
+                                                columns=["var_a", "var_b", "linked", "pvalue", "cmi_bits"])))
     return edge_history(evidence, {k: v for k, v in tested.items() if v is not None})
 
 
-def _tested_flips(path: Path) -> Optional[dict[tuple[str, str], bool]]:
+def _tested_flips(data: Optional[dict]) -> Optional[dict[tuple[str, str], bool]]:
     """Pair -> supported? for the flips of a night's ``changes.json`` (written by nightly); None if absent."""
-    import json
-
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+    if data is None:
         return None
     out = {}
     for key, supported in (("added", True), ("removed", True), ("unconfirmed", False)):
         for item in data.get(key, []) or []:
             a, b = (str(v) for v in item["pair"])
-            out[(a, b) if a <= b else (b, a)] = supported
+            out[pair_key(a, b)] = supported
     return out
 
 
@@ -142,7 +138,7 @@ def edge_history(
         effect = ev["cmi_bits"] if "cmi_bits" in ev.columns else [float("nan")] * len(ev)
         for a, b, linked, p, c in zip(ev["var_a"], ev["var_b"], ev["linked"], ev["pvalue"], effect):
             a, b = str(a), str(b)
-            cells[(a, b) if a <= b else (b, a)] = (bool(linked), _float(p), _float(c))
+            cells[pair_key(a, b)] = (bool(linked), _float(p), _float(c))
         per_night.append(cells)
     edges = sorted({pair for cells in per_night for pair, (linked, _, _) in cells.items() if linked})
     rows = []
@@ -198,8 +194,8 @@ def write_pages(hist: History, out: Path) -> tuple[Path, Path]:
     """Write ``history.csv`` and ``history.html`` into `out` (atomically); their paths."""
     out.mkdir(parents=True, exist_ok=True)
     csv, page = out / "history.csv", out / "history.html"
-    _atomic_text(csv, hist.table.to_csv(index=False))
-    _atomic_text(page, _html(hist))
+    atomic_write_text(csv, hist.table.to_csv(index=False))
+    atomic_write_text(page, _html(hist))
     return csv, page
 
 
@@ -221,13 +217,6 @@ def _fmt_p(p: float) -> str:
     from .report._common import p_is
 
     return "" if not math.isfinite(p) else p_is(p)[2:]
-
-
-def _atomic_text(path: Path, text: str) -> None:
-    """Write to a temporary sibling and rename over `path`."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, path)
 
 
 def _text(hist: History) -> str:

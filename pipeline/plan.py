@@ -15,17 +15,18 @@ Each stage function takes a `StageCall` and returns ``{artifact: value}``; the w
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
-from .independence.engine import EngineSettings
 from .runner import Stage, StageCall
-from .search.skeleton import SignalExtras
-from .stages import battery, clean, discretise, ingest, skeleton, stability, timeline
-from .stages._evidence import records_from_part, tests_part
-from .stages.skeleton import state_doc, state_from
+
+# Each stage function imports its own module, so a run that finds every stage in the cache does not
+# load the test engine, numba or scipy at all.
+if TYPE_CHECKING:
+    from .independence.engine import EngineSettings
+    from .search.skeleton import SignalExtras
 
 __all__ = ["STAGES", "coded_matrix"]
 
@@ -40,6 +41,8 @@ def coded_matrix(codes: pd.DataFrame) -> np.ndarray:
 
 
 def _ingest(call: StageCall) -> dict[str, Any]:
+    from .stages import ingest
+
     res = ingest.run(call["input"], call.cfg.input, call.cfg.limits)
     return {
         "ingest.parquet": res.table,
@@ -49,6 +52,8 @@ def _ingest(call: StageCall) -> dict[str, Any]:
 
 
 def _clean(call: StageCall) -> dict[str, Any]:
+    from .stages import clean, ingest
+
     meta = call["ingest.json"]
     ingested = ingest.Ingested(
         table=call["ingest.parquet"], rejected=call["ingest-rejected.parquet"],
@@ -70,6 +75,8 @@ def _clean(call: StageCall) -> dict[str, Any]:
 
 
 def _discretise(call: StageCall) -> dict[str, Any]:
+    from .stages import clean, discretise
+
     meta = call["clean-meta.json"]
     cleaned = clean.Cleaned(
         table=call["clean.parquet"], kinds=meta["kinds"], columns=meta["columns"],
@@ -90,6 +97,8 @@ def _timeline(call: StageCall) -> dict[str, Any]:
     levels = call["levels.json"]
     codes = call["discretised.parquet"]
     cards = {c: max(1, len(levels["levels"][c])) for c in codes.columns}
+    from .stages import timeline  # loads scipy.stats (rank scores): only when the stage runs, not on a cache hit
+
     methods = {c: v.get("method") for c, v in (call["discretise.json"].get("columns") or {}).items()}
     timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg,
                          methods)
@@ -113,6 +122,8 @@ def _timeline(call: StageCall) -> dict[str, Any]:
 
 def search_extras(call: StageCall) -> SignalExtras | None:
     """Numeric scores and previous windows for the search, or None when codes on independent rows suffice."""
+    from .search.skeleton import SignalExtras
+
     doc = call["timeline.json"]
     numeric = tuple(bool(v) for v in doc["numeric"])
     if not doc["timed"] and not any(numeric):
@@ -123,10 +134,16 @@ def search_extras(call: StageCall) -> SignalExtras | None:
 
 
 def _settings(call: StageCall) -> EngineSettings:
+    from .independence.engine import EngineSettings
+
     return EngineSettings.from_config(call.cfg)
 
 
 def _battery(call: StageCall) -> dict[str, Any]:
+    from .stages import battery
+    from .stages._evidence import tests_part
+    from .stages.skeleton import state_doc
+
     sig = call["signals"]
     marginal = battery.run(call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
                            call.env["workers"], extras=search_extras(call))
@@ -135,6 +152,10 @@ def _battery(call: StageCall) -> dict[str, Any]:
 
 
 def _skeleton(call: StageCall) -> dict[str, Any]:
+    from .stages import skeleton
+    from .stages._evidence import records_from_part
+    from .stages.skeleton import state_from
+
     sig, cfg, rep = call["signals"], call.cfg, call.env["reporter"]
     state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
     call.inputs.pop("marginal-part.parquet")
@@ -149,6 +170,8 @@ def _skeleton(call: StageCall) -> dict[str, Any]:
 
 
 def _stability(call: StageCall) -> dict[str, Any]:
+    from .stages import stability
+
     sig, cfg, evidence = call["signals"], call.cfg, call["evidence.parquet"]
     res = stability.run(
         call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],

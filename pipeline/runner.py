@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
 
-from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, stable_hash
+from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, json_text, stable_hash
 
 __all__ = ["Stage", "StageCall", "Runner", "encode", "decode"]
 
@@ -77,7 +77,7 @@ def encode(name: str, value: Any) -> bytes:
         pq.write_table(table, buf, compression="zstd")
         return buf.getvalue()
     if name.endswith(".json"):
-        return (json.dumps(value, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n").encode("utf-8")
+        return json_text(value).encode("utf-8")
     if name.endswith(".npy"):
         import numpy as np
 

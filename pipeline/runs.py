@@ -28,6 +28,8 @@ __all__ = [
     "atomic_write_text",
     "atomic_write_json",
     "atomic_write_parquet",
+    "json_text",
+    "RunFolder",
     "fingerprint_paths",
     "stable_hash",
     "output_root",
@@ -86,9 +88,22 @@ def atomic_write_text(path: str | os.PathLike[str], text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
+_INDENT_UP_TO = 64 * 1024  # JSON longer than this (compact) is written compact: indenting runs in pure Python
+
+
+def json_text(data: Any) -> str:
+    """Sorted-key JSON (no NaN) with a final newline: indented for reading, or compact when it is
+    long (indenting takes json's pure-Python encoder, seconds for a large search state). The same
+    data always gives the same text."""
+    compact = json.dumps(data, sort_keys=True, default=str, allow_nan=False, separators=(",", ":"))
+    if len(compact) > _INDENT_UP_TO:
+        return compact + "\n"
+    return json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n"
+
+
 def atomic_write_json(path: str | os.PathLike[str], data: Any) -> Path:
-    """Write JSON (sorted keys, indented, no NaN) atomically."""
-    return atomic_write_text(path, json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n")
+    """Write JSON (sorted keys, no NaN; see `json_text`) atomically."""
+    return atomic_write_text(path, json_text(data))
 
 
 def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> Path:
@@ -410,6 +425,40 @@ def publish_run(partial: Path, final: Path) -> None:
 ADHOC_FOLDER = "adhoc"  # ad-hoc runs under an output root: never part of the nightly history
 PARTIAL_MARKER = ".edgeproof-partial"  # written into every `.NAME.partial` folder edgeproof starts
 NIGHTLY_MARKERS = ("nightly-state.json", "nightly.log")  # files only `edgeproof nightly` writes
+
+
+class RunFolder:
+    """One run folder read back (by `load_run`, `compare` and `history`): its JSON files and its
+    Parquet tables, with one wording for a table that cannot be read."""
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self.path = Path(path)
+
+    @property
+    def name(self) -> str:
+        """The folder's own name (a `latest` link resolved)."""
+        return self.path.resolve().name
+
+    def has(self, name: str) -> bool:
+        return (self.path / name).is_file()
+
+    def json(self, name: str, default: Any = "{}") -> Any:
+        """The content of a JSON file of the run, or `default` (an empty dict unless given) when it
+        is missing or unreadable."""
+        try:
+            return json.loads((self.path / name).read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return {} if default == "{}" else default
+
+    def table(self, name: str, columns: list[str] | None = None) -> pd.DataFrame:
+        """A Parquet table of the run; `DataError` naming the file when it cannot be read."""
+        from .errors import DataError
+
+        path = self.path / name
+        try:
+            return pd.read_parquet(path, columns=columns)
+        except Exception as err:  # noqa: BLE001 - pyarrow raises several types
+            raise DataError(f"`{path}` cannot be read ({type(err).__name__}); re-run that snapshot.") from err
 
 
 def is_run_folder(folder: str | os.PathLike[str]) -> bool:

@@ -283,3 +283,23 @@ def test_no_header_names_columns_by_position(tmp_path):
     got = _read(path, header=False)
     assert list(got.table.columns) == ["column_1", "column_2"]
     assert got.table["column_1"].tolist() == [1, 2, 3] and got.table.index.tolist() == [1, 2, 3]
+
+
+@pytest.mark.parametrize("body", [
+    'a,b,c\n"x",1,true\n"y, z",2,false\n"w ""q""",3,true\n',  # quotes close on each line: threaded blocks
+    'a,b,c\n"x",1,true\n"y\nz",2,false\n"w",3,true\n',  # a value spans two lines: the careful parser
+    'a,b,c\n"x",1,true\n"y",2\n"w",3,true,9\n"v",4,false\n',  # ragged rows: careful retry with line numbers
+])
+def test_fast_and_careful_csv_paths_agree(tmp_path, monkeypatch, body):
+    """The threaded block parser (used when no quoted value spans lines) reads the same table, line
+    numbers and rejected rows as the careful one-thread parser (invented rows)."""
+    from pipeline.stages import _data_read
+
+    path = _write(tmp_path, "x.csv", body)
+    assert _data_read._quotes_close_on_each_line(body.encode(), '"') == ("y\nz" not in body)
+    monkeypatch.setattr(_data_read, "_THREADED_FROM_BYTES", 0)  # the threaded path for this small file too
+    fast = _read(path)
+    monkeypatch.setattr(_data_read, "_quotes_close_on_each_line", lambda data, quote: False)
+    careful = _read(path)
+    pd.testing.assert_frame_equal(fast.table, careful.table)
+    pd.testing.assert_frame_equal(fast.rejected, careful.rejected)

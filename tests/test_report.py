@@ -150,11 +150,35 @@ def test_rows_are_in_the_page_linked_first_and_tests_embedded(report_dir):
     assert ids[:4] == [3, 0, 5, 2]  # linked, by p-value: 1e-12, 0.003, 0.01, 0.2
     data = _embedded(text)
     assert sum(len(v) for v in data["tests"].values()) == len(_tests())
-    assert len(data["tests"]["0"]) == 3  # EVIL-alpha tests, one written as (alpha, EVIL)
-    assert data["tests"]["0"][2]["given_text"] == "{beta, " + QUOTY + "}"
+    assert len(data["tests"]["0"]) == 3 and data["counts"]["0"] == 3  # EVIL-alpha, one written as (alpha, EVIL)
+    given = data["fields"].index("given_text")
+    assert data["tests"]["0"][2][given] == "{beta, " + QUOTY + "}"
     separated = rows[ids.index(1)]
     assert "separated: no evidence of dependence given {alpha} (p = 0.410" in separated
     assert "independent" not in re.sub(r"<[^>]+>", "", separated)
+
+
+def test_page_carries_at_most_a_few_tests_per_pair():
+    """A pair with 500 tests carries TESTS_PER_PAIR of them in the page (the first, the last before
+    orientation, the largest p-values) and its count; a pair with few carries all (invented tables)."""
+    from pipeline.report._html import TESTS_PER_PAIR, tests_data
+
+    ev = pd.DataFrame({"var_a": ["a", "a"], "var_b": ["b", "c"]})
+    rng = np.random.default_rng(3)
+    p = rng.random(500)
+    many = pd.DataFrame({"test_id": np.arange(500), "var_a": "b", "var_b": "a", "given": "c", "level": 1,
+                         "statistic": 1.0, "dof": 1, "pvalue": p, "n": 10, "method": "g", "independent": p > 0.05,
+                         "sparse": False, "degenerate": False, "policy_applied": False, "policy": "flag",
+                         "phase": ["skeleton"] * 499 + ["orientation"]})
+    few = many.iloc[:3].assign(var_a="a", var_b="c", test_id=[500, 501, 502], phase="battery")
+    data = tests_data(ev, pd.concat([many, few], ignore_index=True))
+    shown = data["tests"]["0"]
+    ids = [t[data["fields"].index("test_id")] for t in shown]
+    assert len(shown) == TESTS_PER_PAIR and data["counts"] == {"0": 500, "1": 3}
+    assert ids == sorted(ids) and ids[0] == 0 and 498 in ids  # first, and last before orientation
+    top = set(np.argsort(-p, kind="stable")[: TESTS_PER_PAIR - 2].tolist())
+    assert top <= set(ids)
+    assert [t[0] for t in data["tests"]["1"]] == [500, 501, 502]
 
 
 def test_honest_numbers_floor_near_alpha_and_labels(tmp_path):

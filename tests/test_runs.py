@@ -87,3 +87,38 @@ def test_publish_replaces_only_when_complete(tmp_path):
     publish_run(partial, final)
     assert sorted(os.listdir(final)) == ["new.txt"]
     assert not partial.exists()
+
+
+def test_pair_keys_agree_with_pair_key():
+    """The column form of the pair key gives, row by row, what `pair_key` gives (invented names)."""
+    from pipeline.pairs import pair_key, pair_keys
+
+    a, b = ["b", "a", "x", "Z", "same"], ["a", "b", "y", "a", "same"]
+    lo, hi = pair_keys(a, b)
+    assert list(zip(lo.tolist(), hi.tolist())) == [pair_key(x, y) for x, y in zip(a, b)]
+
+
+def test_run_folder_reads_json_and_names_an_unreadable_table(tmp_path):
+    """A missing JSON file reads as {} (or the default given); a damaged Parquet file is a DataError naming it."""
+    from pipeline.errors import DataError
+    from pipeline.runs import RunFolder
+
+    (tmp_path / "manifest.json").write_text('{"status": "ok"}', encoding="utf-8")
+    (tmp_path / "evidence.parquet").write_bytes(b"not parquet")
+    run = RunFolder(tmp_path)
+    assert run.json("manifest.json") == {"status": "ok"}
+    assert run.json("levels.json") == {} and run.json("changes.json", default=None) is None
+    with pytest.raises(DataError, match="evidence.parquet` cannot be read"):
+        run.table("evidence.parquet")
+
+
+def test_json_text_indents_short_documents_and_keeps_long_ones_compact():
+    """Short JSON is indented for reading; long JSON is one compact line; both read back the same."""
+    import json
+
+    from pipeline.runs import json_text
+
+    short = {"b": 1, "a": [1, 2]}
+    long = {"edges": [[f"s{i}", f"s{i + 1}"] for i in range(20_000)]}
+    assert json_text(short) == json.dumps(short, indent=2, sort_keys=True) + "\n"
+    assert json_text(long).count("\n") == 1 and json.loads(json_text(long)) == long

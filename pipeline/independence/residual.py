@@ -48,7 +48,6 @@ from typing import Sequence
 import numpy as np
 from scipy.special import chdtrc as _chdtrc
 from scipy.special import ndtri as _ndtri
-from scipy.stats import rankdata
 
 __all__ = ["Timeline", "normal_scores", "ResidualTester", "hac_covariance", "wald"]
 
@@ -83,6 +82,8 @@ class Timeline:
 
 def normal_scores(values: np.ndarray) -> np.ndarray:
     """Normal scores ``ndtri(rank / (n + 1))`` of the present values (ties share their mean rank); NaN stays."""
+    from scipy.stats import rankdata  # scipy.stats costs about a second to import: only when scores are needed
+
     v = np.asarray(values, dtype=np.float64)
     out = np.full(v.shape, np.nan)
     ok = np.isfinite(v)

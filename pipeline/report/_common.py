@@ -8,6 +8,8 @@ from typing import Any
 
 import pandas as pd
 
+from ..pairs import pair_key
+
 __all__ = [
     "compare_truth",
     "direction",
@@ -21,11 +23,6 @@ __all__ = [
     "plain",
     "signal_names",
 ]
-
-
-def pair_key(a: str, b: str) -> tuple[str, str]:
-    """The unordered pair as a sorted tuple."""
-    return (a, b) if a <= b else (b, a)
 
 
 def plain(value: Any) -> Any:

@@ -113,12 +113,32 @@ def evidence_csv(evidence: pd.DataFrame, levels: Mapping[str, Sequence[str]]) ->
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\r\n", quoting=csv.QUOTE_MINIMAL)
     writer.writerow([neutralise(h) for h in header])
-    for row in evidence.to_dict("records"):
-        cells = [_cell(c, row[c]) for c in head]
-        cells += [str(plain(row.get("review_verdict")) or ""), str(plain(row.get("review_comment")) or "")]
-        cells += [_cell(c, row[c]) for c in rest]
-        cells += [" | ".join(map(str, levels.get(str(row[v]), []))) for v in ("var_a", "var_b")]
-        writer.writerow([neutralise(c) for c in cells])
+    n = len(evidence)
+
+    def column(name: str, cell: Any) -> list[str]:
+        """One CSV column, each distinct value formatted once."""
+        if name not in evidence.columns:
+            return [neutralise(cell(None))] * n
+        memo: dict[Any, str] = {}
+        out = []
+        for v in evidence[name].tolist():
+            try:
+                text = memo.get(v)
+                if text is None:
+                    text = memo[v] = neutralise(cell(v))
+            except TypeError:  # an unhashable value
+                text = neutralise(cell(v))
+            out.append(text)
+        return out
+
+    def levels_of(v: Any) -> str:
+        return " | ".join(map(str, levels.get(str(v), [])))
+
+    columns = [column(c, lambda v, c=c: _cell(c, v)) for c in head]
+    columns += [column(c, lambda v: str(plain(v)) if plain(v) else "") for c in ("review_verdict", "review_comment")]
+    columns += [column(c, lambda v, c=c: _cell(c, v)) for c in rest]
+    columns += [column(v, levels_of) for v in ("var_a", "var_b")]
+    writer.writerows(zip(*columns))
     return buf.getvalue().encode("utf-8")
 
 
@@ -146,9 +166,8 @@ def build_nx_graph(
     g = nx.Graph()
     for name in names:
         g.add_node(str(name), levels=" | ".join(map(str, levels.get(name, []))))
-    for _, row in evidence.iterrows():
-        if not bool(row["linked"]):
-            continue
+    linked = evidence[evidence["linked"].astype(bool).to_numpy()] if len(evidence) else evidence
+    for _, row in linked.iterrows():  # the linked pairs only: a few among thousands of pairs
         attrs = {k: _attr(row[k]) for k in _EDGE_ATTRS if k in evidence.columns}
         for k in ("orientation", "given", "method", "knowledge", "flags", "explanation"):
             if k in attrs and isinstance(attrs[k], float) and math.isnan(attrs[k]):

@@ -9,14 +9,17 @@ written as ``\\u003c`` etc., and the script places them with ``textContent`` onl
 from __future__ import annotations
 
 import json
+import math
 import re
 from collections.abc import Mapping, Sequence
 from importlib import metadata, resources
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
-from ._common import fmt_num, fmt_p, given_text, p_is, pair_key, plain
+from ..pairs import pair_keys
+from ._common import fmt_num, fmt_p, given_text, p_is, plain
 from ._page import GLOSSARY, LineSample, e, line_key, page_css, terms_list
 from ._review import VERDICTS
 
@@ -423,38 +426,98 @@ def _row_html(i: int, row: Mapping[str, Any], cols: Sequence[tuple[str, str, str
             + "".join(tds) + "</tr>")
 
 
-def _test_notes(t: Mapping[str, Any]) -> str:
-    notes = []
-    if bool(plain(t.get("sparse"))):
-        notes.append("sparse table")
-    if bool(plain(t.get("degenerate"))):
-        notes.append("degenerate table")
-    if bool(plain(t.get("policy_applied"))):
-        notes.append(f"policy: {plain(t.get('policy'))}")
-    return "; ".join(notes)
+# The tests of each pair travel as arrays in this field order (one array per test, not one object).
+TEST_FIELDS = ("test_id", "level", "given_text", "statistic", "dof", "pvalue", "n", "method", "independent", "notes")
+TESTS_PER_PAIR = 12  # report.html carries at most this many tests per pair; tests.parquet holds them all
 
 
-def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, list[dict]]:
-    """Each pair's tests (keyed by the pair's row number in `evidence`), for the expand buttons."""
-    index = {pair_key(str(a), str(b)): i for i, (a, b) in enumerate(zip(evidence["var_a"], evidence["var_b"]))}
-    by_pair: dict[str, list[dict]] = {}
-    for t in tests.to_dict("records"):
-        key = pair_key(str(t["var_a"]), str(t["var_b"]))
-        if key not in index:
-            continue
-        by_pair.setdefault(str(index[key]), []).append({
-            "test_id": plain(t.get("test_id")),
-            "level": plain(t.get("level", t.get("given_size"))),
-            "given_text": given_text(t.get("given")),
-            "statistic": plain(t.get("statistic")),
-            "dof": plain(t.get("dof")),
-            "pvalue": plain(t.get("pvalue")),
-            "n": plain(t.get("n")),
-            "method": str(plain(t.get("method")) or ""),
-            "independent": bool(plain(t.get("independent"))),
-            "notes": _test_notes(t),
-        })
-    return by_pair
+def _column(tests: pd.DataFrame, name: str, default: Any) -> pd.Series:
+    return tests[name] if name in tests.columns else pd.Series(default, index=tests.index)
+
+
+def _json_values(values: pd.Series) -> list:
+    """Plain JSON values of a column: NaN and NA as null, numpy scalars unwrapped."""
+    out = values.astype(object).where(values.notna(), None).tolist()
+    return [v.item() if hasattr(v, "item") else v for v in out]
+
+
+def _shown(tests: pd.DataFrame, pair: pd.Series) -> pd.Series:
+    """Which tests a pair's list in the page shows: all of them when there are at most
+    `TESTS_PER_PAIR`, else its first test, its last test before orientation (a separated pair's
+    deciding test), and the ones with the largest p-values (a linked pair's deciding test first)."""
+    order = pd.DataFrame({"pair": pair.to_numpy(), "row": np.arange(len(tests))})
+    size = order.groupby("pair")["row"].transform("size").to_numpy()
+    keep = size <= TESTS_PER_PAIR
+    if keep.all():
+        return pd.Series(keep, index=tests.index)
+    searched = ~_column(tests, "phase", "").astype(str).eq("orientation").to_numpy()
+    first = ~order.duplicated("pair", keep="first").to_numpy()
+    last = np.zeros(len(tests), dtype=bool)
+    last_rows = order[searched].drop_duplicates("pair", keep="last")["row"].to_numpy()
+    last[last_rows] = True
+    p = pd.to_numeric(_column(tests, "pvalue", np.nan), errors="coerce").fillna(-1.0).to_numpy()
+    ranked = pd.DataFrame({"pair": order["pair"], "p": -p, "row": order["row"]}).sort_values(
+        ["pair", "p", "row"], kind="stable")
+    rank = np.empty(len(tests), dtype=np.int64)
+    rank[ranked["row"].to_numpy()] = ranked.groupby("pair").cumcount().to_numpy()
+    keep |= first | last | (rank < TESTS_PER_PAIR - 2)
+    return pd.Series(keep, index=tests.index)
+
+
+def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, Any]:
+    """Each pair's tests for the expand buttons, keyed by the pair's row number in `evidence`:
+    ``{"fields": TEST_FIELDS, "tests": {row: [[...], ...]}, "counts": {row: tests run}}``.
+
+    At most `TESTS_PER_PAIR` tests per pair (see `_shown`), so the page grows with the pairs and
+    not with the tests; ``counts`` says how many the pair had. Built column by column.
+    """
+    empty: dict[str, Any] = {"fields": list(TEST_FIELDS), "tests": {}, "counts": {}, "limit": TESTS_PER_PAIR}
+    if tests is None or len(tests) == 0 or len(evidence) == 0:
+        return empty
+    lo_e, hi_e = pair_keys(evidence["var_a"], evidence["var_b"])
+    index = pd.Series(np.arange(len(evidence)), index=pd.MultiIndex.from_arrays([lo_e, hi_e]))
+    index = index[~index.index.duplicated(keep="last")]
+    lo, hi = pair_keys(tests["var_a"], tests["var_b"])
+    row = index.reindex(pd.MultiIndex.from_arrays([lo, hi])).to_numpy()
+    found = ~pd.isna(row)
+    t = tests.loc[found].reset_index(drop=True)
+    pair = pd.Series(row[found].astype(np.int64))
+    if len(t) == 0:
+        return empty
+    counts = pair.value_counts(sort=False)
+    keep = _shown(t, pair).to_numpy()
+    t, pair = t.loc[keep].reset_index(drop=True), pair[keep].reset_index(drop=True)
+    given = _column(t, "given", "").fillna("").astype(str)
+    notes = pd.Series("", index=t.index)
+    for word, text in (("sparse", "sparse table"), ("degenerate", "degenerate table")):
+        on = _column(t, word, False).fillna(False).astype(bool)
+        notes = notes.where(~on, notes.where(notes.eq(""), notes + "; ") + text)
+    applied = _column(t, "policy_applied", False).fillna(False).astype(bool)
+    policy = "policy: " + _column(t, "policy", "").fillna("").astype(str)
+    notes = notes.where(~applied, notes.where(notes.eq(""), notes + "; ") + policy)
+    level = _column(t, "level", np.nan)
+    if "level" not in t.columns and "given_size" in t.columns:
+        level = t["given_size"]
+    columns = {
+        "test_id": _json_values(_column(t, "test_id", np.nan)),
+        "level": _json_values(level),
+        "given_text": ("{" + given.str.split(";").map(lambda g: ", ".join(p for p in g if p)) + "}").tolist(),
+        "statistic": _json_values(pd.to_numeric(_column(t, "statistic", np.nan), errors="coerce")),
+        "dof": _json_values(_column(t, "dof", np.nan)),
+        "pvalue": _json_values(pd.to_numeric(_column(t, "pvalue", np.nan), errors="coerce")),
+        "n": _json_values(_column(t, "n", np.nan)),
+        "method": _column(t, "method", "").fillna("").astype(str).tolist(),
+        "independent": _column(t, "independent", False).fillna(False).astype(bool).tolist(),
+        "notes": notes.tolist(),
+    }
+    out: dict[str, list] = {}
+    for i, values in zip(pair.tolist(), zip(*(columns[f] for f in TEST_FIELDS))):
+        out.setdefault(str(i), []).append([_finite(v) for v in values])
+    return {**empty, "tests": out, "counts": {str(k): int(v) for k, v in counts.items()}}
+
+
+def _finite(v: Any) -> Any:
+    return None if isinstance(v, float) and not math.isfinite(v) else v
 
 
 def default_order(evidence: pd.DataFrame) -> list[int]:
@@ -506,7 +569,7 @@ def build_html(
         "EVIDENCE_HEAD": head,
         "EVIDENCE_ROWS": rows,
         "N_PAIRS": str(len(evidence)),
-        "DATA": json_for_script({"alpha": ctx.alpha, "tests": tests_data(evidence, tests)}),
+        "DATA": json_for_script({"alpha": ctx.alpha, **tests_data(evidence, tests)}),
         "JS": _asset("report.js"),
     }
     return _PLACEHOLDER.sub(lambda m: values[m.group(1)], _asset("template.html"))

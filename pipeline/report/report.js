@@ -66,14 +66,30 @@
     return c !== 0 ? c * state.dir : order.indexOf(x) - order.indexOf(y);
   }
 
+  function testList(key) {
+    /* each test travels as an array in the order of data.fields */
+    return (tests[key] || []).map(function (values) {
+      var t = {};
+      data.fields.forEach(function (f, i) { t[f] = values[i]; });
+      return t;
+    });
+  }
+
   function testTable(tr) {
-    var list = tests[tr.getAttribute("data-pair")] || [];
+    var key = tr.getAttribute("data-pair");
+    var list = testList(key);
+    var total = data.counts[key] || list.length;
     var wrap = el("div");
     if (!list.length) {
       wrap.appendChild(el("p", "No test was run on this pair (forbidden by the configuration)."));
       return wrap;
     }
-    wrap.appendChild(el("p", list.length + (list.length === 1 ? " test" : " tests") + " run on this pair, in the order they were run:"));
+    if (total > list.length) {
+      wrap.appendChild(el("p", total + " tests run on this pair; shown here, in the order they were run: the first, " +
+        "the deciding one and those with the largest p-values (" + list.length + "). Every test is in tests.parquet."));
+    } else {
+      wrap.appendChild(el("p", list.length + (list.length === 1 ? " test" : " tests") + " run on this pair, in the order they were run:"));
+    }
     var table = el("table", null, "tests");
     var head = el("tr");
     ["#", "set size", "conditioning set", "statistic", "dof", "p-value", "rows", "test", "reading", "notes"].forEach(function (h) {

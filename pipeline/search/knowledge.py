@@ -7,12 +7,12 @@ from dataclasses import dataclass, field
 from typing import Iterable, Sequence
 
 from ..errors import ConfigError
+from ..pairs import pair_key
 
 __all__ = ["Knowledge"]
 
 
-def _pair(a: str, b: str) -> tuple[str, str]:
-    return (a, b) if a <= b else (b, a)
+_pair = pair_key
 
 
 @dataclass(frozen=True)

@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from itertools import combinations
 from typing import Callable, Sequence
 
+from ..pairs import pair_key
 from .knowledge import Knowledge
 
 __all__ = ["Orientation", "orient"]
@@ -45,14 +46,13 @@ class Orientation:
             return f"{a} -> {b}"
         if (b, a) in self.directed:
             return f"{b} -> {a}"
-        p = (a, b) if a <= b else (b, a)
+        p = pair_key(a, b)
         if p in self.ambiguous_edges:
             return "ambiguous"
         return f"{p[0]} -- {p[1]}"
 
 
-def _pair(a: str, b: str) -> Pair:
-    return (a, b) if a <= b else (b, a)
+_pair = pair_key
 
 
 def orient(

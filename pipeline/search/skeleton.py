@@ -20,18 +20,20 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from itertools import combinations
-from typing import Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 
 from ..independence._kernels import HAVE_NUMBA
 from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
-from ..independence.mixed import MixedEngine
-from ..independence.residual import Timeline
 from ..independence.result import CITestResult
+from ..pairs import pair_key
 from ..parallel import ParallelContext
 from .knowledge import Knowledge
+
+if TYPE_CHECKING:  # the mixed engine (and scipy.stats under it) loads only when numeric or timed signals need it
+    from ..independence.mixed import MixedEngine
 
 __all__ = ["TestRecord", "SkeletonResult", "SignalExtras", "pc_stable_skeleton", "candidate_sets"]
 
@@ -81,8 +83,7 @@ class SearchState:
     disagreements: set[Pair] = field(default_factory=set)
 
 
-def _pair(a: str, b: str) -> Pair:
-    return (a, b) if a <= b else (b, a)
+_pair = pair_key
 
 
 def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) -> list[tuple[str, ...]]:
@@ -118,6 +119,9 @@ class SignalExtras:
     own_past: tuple[bool, ...]
 
     def engine(self, data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> MixedEngine:
+        from ..independence.mixed import MixedEngine
+        from ..independence.residual import Timeline
+
         timeline = None if self.prev is None else Timeline(prev=np.asarray(self.prev), series_length=self.series_length)
         scores = [np.asarray(self.scores[i]) if num else None for i, num in enumerate(self.numeric)]
         return MixedEngine(data, names, cards, settings, scores=scores, timeline=timeline,

@@ -361,9 +361,13 @@ def decide(
 def _count(kind: str, values: pd.Series) -> tuple[int, int]:
     """Missing and distinct counts, computed the cheap way for each kind."""
     if kind == "numeric":
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
         arr = values.to_numpy(dtype=float)
         nan = np.isnan(arr)
-        return int(nan.sum()), int(pd.unique(arr[~nan]).size)
+        # Arrow's hash count (a few times quicker than pandas' unique); + 0.0 makes -0.0 count as 0.0
+        return int(nan.sum()), int(pc.count_distinct(pa.array(arr[~nan] + 0.0)).as_py())
     try:
         codes, uniques = pd.factorize(values, use_na_sentinel=True)
     except TypeError:

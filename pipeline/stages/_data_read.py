@@ -317,6 +317,40 @@ def nonempty_lines(data: bytes) -> np.ndarray:
     return np.flatnonzero(length > 0).astype(np.int64) + 1
 
 
+_THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; the check would cost more
+
+
+def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
+    """True when no line break falls inside quotes (every quoted value opens and closes on its
+    line; a doubled quote inside a value flips the state twice). One pass over the bytes."""
+    q = quote.encode("utf-8")
+    if len(q) != 1:
+        return False
+    if q not in data:
+        return True
+    b = np.frombuffer(data, dtype=np.uint8)
+    if _break_in_quotes is not None:
+        return not _break_in_quotes(b, q[0])
+    quotes_before = np.cumsum(b == q[0], dtype=np.int64)  # without numba: one big array
+    return not bool((quotes_before[b == 10] & 1).any())
+
+
+try:  # pragma: no cover - depends on the install
+    from numba import njit
+
+    @njit(cache=True, nogil=True)
+    def _break_in_quotes(b: np.ndarray, q: int) -> bool:
+        inside = False
+        for x in b:
+            if x == q:
+                inside = not inside
+            elif x == 10 and inside:
+                return True
+        return False
+except ImportError:  # pragma: no cover
+    _break_in_quotes = None
+
+
 def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarray:
     """Start line of each record when quoted values span lines (slow path, csv module)."""
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, quotechar=quote_char)
@@ -436,17 +470,20 @@ def read_csv(
         return "skip"
 
     column_types: dict[str, pa.DataType] = {}
-    for _ in range(len(names) + 1):
+    # Fast path: when no quoted value can span lines, parse in blocks on pyarrow's threads. Rows it
+    # rejects may lack their numbers there, so any rejected row sends the file down the careful path.
+    fast = len(data) >= _THREADED_FROM_BYTES and (not quote or _quotes_close_on_each_line(data, quote))
+    for _ in range(2 * len(names) + 2):
         rejected.clear()
         read_opts = pa_csv.ReadOptions(
-            use_threads=False,
+            use_threads=fast,
             column_names=None if settings.header else raw_names,
             encoding="utf8",
         )
         parse_opts = pa_csv.ParseOptions(
             delimiter=delimiter,
             quote_char=quote if quote else False,
-            newlines_in_values=True,
+            newlines_in_values=not fast,
             invalid_row_handler=on_invalid,
         )
         conv_opts = pa_csv.ConvertOptions(
@@ -460,6 +497,9 @@ def read_csv(
         )
         try:
             table = pa_csv.read_csv(pa.BufferReader(data), read_opts, parse_opts, conv_opts)
+            if fast and rejected:
+                fast = False
+                continue
             break
         except pa.ArrowInvalid as err:
             m = re.search(r"In CSV column #(\d+): CSV conversion error", str(err))

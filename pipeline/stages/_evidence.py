@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..independence.result import CITestResult
+from ..pairs import pair_key
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
@@ -149,7 +150,7 @@ def evidence_frame(
     by_pair: dict[tuple[str, str], list[int]] = {}
     for i, rec in enumerate(skeleton.tests):
         r = rec.result
-        key = (r.x, r.y) if r.x <= r.y else (r.y, r.x)
+        key = pair_key(r.x, r.y)
         by_pair.setdefault(key, []).append(i)
     rows = []
     for a, b in combinations(sorted(skeleton.names), 2):

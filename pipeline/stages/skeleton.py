@@ -3,10 +3,12 @@ then optional orientation, then the evidence table."""
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 import numpy as np
 import pandas as pd
@@ -61,17 +63,17 @@ def state_from(doc: dict[str, Any], records: list[TestRecord]) -> SearchState:
 _STATE = "state.json"
 
 
-def _save_level(folder: Path, state: SearchState, first_new: int) -> None:
+def _save_level(folder: Path, state: SearchState, first_new: int, parts: list[str]) -> None:
     """Checkpoint after a level: the level's tests as one Parquet part, then the state naming every
-    part so far (written last: a state file only ever names parts that are complete)."""
+    part so far (`parts`, extended here; written last: a state file only ever names parts that are
+    complete)."""
     import pyarrow.parquet as pq
 
     part = f"level-{state.level - 1:04d}.parquet"
     tmp = folder / f".{part}.tmp"
     pq.write_table(tests_part(state.tests[first_new:]), tmp, compression="zstd")
     tmp.replace(folder / part)
-    previous = _read_doc(folder)
-    parts = [*(previous or {}).get("parts", []), part] if previous else [part]
+    parts.append(part)
     atomic_write_json(folder / _STATE, {**state_doc(state), "parts": parts})
 
 
@@ -82,20 +84,39 @@ def _read_doc(folder: Path) -> dict[str, Any] | None:
         return None
 
 
-def _resume(folder: Path, start: SearchState) -> SearchState:
-    """The state of the last checkpointed level, or `start` when there is none (or it does not fit)."""
+def _resume(folder: Path, start: SearchState) -> tuple[SearchState, list[str]]:
+    """The state of the last checkpointed level and the parts it names, or `start` and no parts
+    when there is none (or it does not fit)."""
     import pyarrow.parquet as pq
 
     doc = _read_doc(folder)
     if doc is None:
-        return start
+        return start, []
     try:
         records = list(start.tests)
         for part in doc["parts"]:
             records.extend(records_from_part(pq.read_table(folder / part)))
-        return state_from(doc, records)
+        return state_from(doc, records), list(doc["parts"])
     except (OSError, ValueError, KeyError, TypeError):
-        return start  # a checkpoint that does not fit this search: start over
+        return start, []  # a checkpoint that does not fit this search: start over
+
+
+@contextlib.contextmanager
+def _cyclic_gc_paused() -> Iterator[None]:
+    """Pause Python's cycle collector while the search runs.
+
+    The search keeps one small result object per test, none of them in a reference cycle; the
+    collector would walk all of them again and again as they pile up (measured: about 15% of the
+    search's CPU at 30,000 tests, and growing with the tests). Reference counting still frees
+    everything; any cycle waits for the collector's next run after the search.
+    """
+    was_on = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_on:
+            gc.enable()
 
 
 def run(
@@ -126,17 +147,18 @@ def run(
     save = None
     if checkpoint is not None:
         checkpoint.mkdir(parents=True, exist_ok=True)
-        state = _resume(checkpoint, state)
+        state, parts = _resume(checkpoint, state)
         written = [len(state.tests)]
 
         def save(s: SearchState) -> None:
-            _save_level(checkpoint, s, written[0])
+            _save_level(checkpoint, s, written[0], parts)
             written[0] = len(s.tests)
 
-    skeleton = pc_stable_skeleton(
-        data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
-        resume=state, on_level=save, progress=progress, extras=extras,
-    )
+    with _cyclic_gc_paused():
+        skeleton = pc_stable_skeleton(
+            data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
+            resume=state, on_level=save, progress=progress, extras=extras,
+        )
     orientation = None
     records = list(skeleton.tests)
     phases = ["battery" if r.level == 0 else "skeleton" for r in records]

@@ -26,6 +26,7 @@ import numpy as np
 
 from ..errors import ConfigError, DataError
 from ..independence.engine import CIEngine, EngineSettings
+from ..pairs import pair_key
 from ..parallel import ParallelContext, share_array
 from ..search.knowledge import Knowledge
 from ..search.orient import orient
@@ -65,7 +66,7 @@ class StabilityResult:
 
     def stability(self, a: str, b: str) -> float:
         """Share of resamples in which the pair was linked (order of the names does not matter)."""
-        return self.linked[(a, b) if a <= b else (b, a)]
+        return self.linked[pair_key(a, b)]
 
 
 def _draw_rows(child: np.random.SeedSequence, n_rows: int, take: int, method: str) -> np.ndarray:
