@@ -140,15 +140,15 @@ def _homogeneous_dof(t: np.ndarray) -> int:
     _k, ni, nj, nl = t.shape
     for s in t:
         xy, xn, yn = s.sum(axis=2) > 0, s.sum(axis=1) > 0, s.sum(axis=0) > 0
-        cells = [(i, j, l) for i in range(ni) for j in range(nj) for l in range(nl)
-                 if xy[i, j] and xn[i, l] and yn[j, l]]
+        cells = [(i, j, k) for i in range(ni) for j in range(nj) for k in range(nl)
+                 if xy[i, j] and xn[i, k] and yn[j, k]]
         if not cells:
             continue
         design = np.zeros((len(cells), ni * nj + ni * nl + nj * nl))
-        for r, (i, j, l) in enumerate(cells):
+        for r, (i, j, k) in enumerate(cells):
             design[r, i * nj + j] = 1
-            design[r, ni * nj + i * nl + l] = 1
-            design[r, ni * nj + ni * nl + j * nl + l] = 1
+            design[r, ni * nj + i * nl + k] = 1
+            design[r, ni * nj + ni * nl + j * nl + k] = 1
         total += len(cells) - int(np.linalg.matrix_rank(design))
     return total
 

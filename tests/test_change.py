@@ -19,8 +19,8 @@ import statsmodels.formula.api as smf
 from statsmodels.stats.contingency_tables import StratifiedTable
 
 from pipeline import compare
-from pipeline.simulate import nightly_logs
 from pipeline.change import NightData, homogeneous_association_lr, mechanism_change, pair_change
+from pipeline.simulate import nightly_logs
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 import _nights  # noqa: E402
