@@ -308,3 +308,44 @@ def test_evidence_explains_numeric_links_and_separations(triad_csv, tmp_path):
     assert "residual correlation r = " in link["explanation"]
     apart = ev.loc[("gc_pause_ms", "latency_ms")]
     assert not apart["linked"] and "is unrelated" in apart["explanation"]
+
+
+# -- a generated extract with numeric common causes --------------------------------------------------------
+
+
+def _extract_links(rows: int, tmp_path, seed: int = 0) -> tuple[set, set, set]:
+    """A real run with default settings on `smooth_extract(rows, seed)` (16 columns, 18 true links):
+    (false links, true links found, true links)."""
+    from pipeline.api import run_pipeline
+    from pipeline.config import load_config
+    from pipeline.simulate import smooth_extract
+
+    ex = smooth_extract(rows, seed, columns=16)
+    path = tmp_path / "extract.parquet"
+    ex.frame.to_parquet(path, index=False)
+    res = run_pipeline(load_config(None, []), path, tmp_path / "run")
+    ev = res.evidence[res.evidence["linked"]]
+    found = {tuple(sorted(p)) for p in zip(ev["var_a"], ev["var_b"])}
+    truth = {tuple(sorted(e)) for e in ex.edges}
+    return found - truth, found & truth, truth
+
+
+_EXTRACT_10K = pytest.mark.xfail(strict=True, reason=(
+    "measured at seed 0: every true link (18/18) but 2 false links, c03-c11 (separating set {c07, m02}: "
+    "p = 0.010 and 0.020 with m16) and c05-m09 (every set with m01: p = 0.017-0.046); the binned G-test "
+    "(test.method=g) gives 6 false links on the same extract. See bench/results/numeric.md"))
+
+
+@_EXTRACT_10K
+def test_generated_extract_10k_rows_at_most_one_false_link(tmp_path):
+    """Issue 14's target on an extract with numeric common causes and smooth mechanisms (invented,
+    `pipeline.simulate.smooth_extract`, seed 0, 10,000 rows): every true link and at most 1 false link."""
+    false, found, truth = _extract_links(10_000, tmp_path)
+    assert found == truth and len(false) <= 1, sorted(false)
+
+
+@pytest.mark.slow
+def test_generated_extract_100k_rows_at_most_one_false_link(tmp_path):
+    """The same at 100,000 rows (the binned G-test's false links grow with the rows)."""
+    false, found, truth = _extract_links(100_000, tmp_path)
+    assert found == truth and len(false) <= 1, sorted(false)
