@@ -159,6 +159,12 @@ class CIEngine:
             cards = [int(max(int(row.max(initial=-1)) + 1, 1)) for row in data]
         self.cards = [int(c) for c in cards]
         self.settings = settings or EngineSettings()
+        if self.settings.method in ("auto", "gcm"):
+            # this engine only counts codes: `auto` (and `gcm` on codes alone) run the G-test here, and the
+            # results say so (`method` = "g"), as the G-test is what ran
+            from dataclasses import replace
+
+            self.settings = replace(self.settings, method="g")
         st = self.settings
         if weights is not None:
             weights = np.asarray(weights)
