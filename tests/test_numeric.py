@@ -114,6 +114,27 @@ def test_size_with_categorical_children_10k(mechanism):
     assert auto_rate <= SIZE_BOUND, (auto_rate, g_rate)
 
 
+@pytest.mark.xfail(strict=True, reason=(
+    "outside the method's reach: the regressions shift one shared curve per category level (strata enter "
+    "as intercepts only), so a curve whose shape depends on the level is not removed; measured 100/100 "
+    "rejections at 5,000 rows (and 200/200 at 10,000 rows, seeds [trial, 16])"))
+def test_size_when_the_curve_depends_on_a_category_of_the_conditioning_set():
+    """x and y independent given {z, c}: both are sign(c) * tanh(1.5 z) + noise (z numeric, c a 2-level
+    category). A correct test rejects in at most 8% of 100 trials (binomial standard error 2.2% at 5%)."""
+    n, hits = 5000, 0
+    for trial in range(100):
+        rng = np.random.default_rng([trial, 16])
+        z, c = rng.standard_normal(n), rng.integers(0, 2, n)
+        sign = np.where(c == 1, 1.0, -1.0)
+        x = sign * np.tanh(1.5 * z) + rng.standard_normal(n)
+        y = sign * np.tanh(1.5 * z) + rng.standard_normal(n)
+        eng = MixedEngine(np.vstack([np.zeros((3, n), np.int8), c.astype(np.int8)]), ["x", "y", "z", "c"],
+                          [1, 1, 1, 2], EngineSettings(method="auto"),
+                          scores=[normal_scores(x), normal_scores(y), normal_scores(z), None])
+        hits += eng.test("x", "y", ["z", "c"]).pvalue < ALPHA
+    assert hits / 100 <= SIZE_BOUND, hits
+
+
 # -- power ----------------------------------------------------------------------------------------------
 
 
