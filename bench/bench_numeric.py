@@ -37,7 +37,7 @@ REPO = HERE.parent
 sys.path.insert(0, str(REPO))
 sys.path.insert(0, str(HERE))
 
-from _common import emit, machine  # noqa: E402
+from _common import RESULTS, emit, machine  # noqa: E402
 
 CASES = {"before: `test.method=g`, 4 bins": ["test.method=g"], "after: default (`auto`)": []}
 GB = 1024**3
@@ -164,21 +164,32 @@ def main(argv: list[str] | None = None) -> int:
                     f"| {rows:,} | {columns} | {label}{' (2 workers)' if extra else ''} | {seeds} "
                     f"| {', '.join(str(d['false']) for d in docs)} | {100 * found:.1f}% "
                     f"| {np.mean([d['seconds'] for d in docs]):.1f} | {max(d['peak_rss'] for d in docs) / GB:.2f} GB |")
-                print(lines[-1], flush=True)
+                _write(lines, [], partial=True)
                 for d in docs:
                     print(f"  false: {d['false_pairs']} missed: {d['missed']}", file=sys.stderr, flush=True)
     cost = ["", "| rows | numeric test (ms per test) | G-test on 4 bins (ms per test) | ratio |", "|---:|---:|---:|---:|"]
     for rows in [10_000] + ([] if args.quick or args.skip_million else [1_000_000]):
         gcm, g = cost_per_test(rows)
         cost.append(f"| {rows:,} | {1000 * gcm:.1f} | {1000 * g:.1f} | {gcm / g:.1f} |")
-        print(cost[-1], flush=True)
+        _write(lines, cost, partial=True)
+    _write(lines, cost, partial=False)
+    return 0
+
+
+def _write(lines: list[str], cost: list[str], partial: bool) -> None:
+    """The table so far in bench/results/numeric.md (rewritten after every row: long runs leave their rows)."""
     text = "\n".join([
         f"Machine: {machine()}; BLAS threads: {os.environ.get('OPENBLAS_NUM_THREADS', 'library default')}.",
         "Generated extracts `pipeline.simulate.smooth_extract(rows, seed, columns)` (seeds 0, 1, ...); real runs "
         "with default settings apart from the case; seconds = `run_pipeline` in its own process; peak memory = "
-        "that process's maximum resident set (`os.wait4`).", "", *lines, *cost, ""])
-    emit("numeric", text)
-    return 0
+        "that process's maximum resident set with its reaped workers (`os.wait4`: the largest one, not the sum).",
+        *(["", "**Partial: the script was still running.**"] if partial else []), "", *lines, *cost, ""])
+    if partial:
+        (RESULTS / "numeric.md").parent.mkdir(parents=True, exist_ok=True)
+        (RESULTS / "numeric.md").write_text(text, encoding="utf-8")
+        print((lines + cost)[-1], flush=True)
+    else:
+        emit("numeric", text)
 
 
 if __name__ == "__main__":
