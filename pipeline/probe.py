@@ -1,4 +1,5 @@
-"""One test on demand, through the same ingest, clean and discretise stages as a run."""
+"""One test on demand, through the same ingest, clean, discretise and timeline stages as a run (so the
+same test runs: `test.method: auto` picks the numeric test when a numeric signal is involved)."""
 
 from __future__ import annotations
 
@@ -24,7 +25,12 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
     ing = ingest.run(Path(input_path), cfg.input, cfg.limits)
     cl = clean.run(ing, cfg)
     disc = discretise.run(cl, cfg, None)
-    names = [str(c) for c in disc.codes.columns]
+    # the same timeline as a run: rows in time order within series, previous windows, numeric scores
+    all_cards = {str(c): max(1, len(disc.levels[c])) for c in disc.codes.columns}
+    probe_time = cfg.time.model_copy(update={"test_series": True, "lags": 0})
+    timed = timeline.run(cl.table, cl.times, disc.kinds, disc.codes, all_cards, cfg.model_copy(update={"time": probe_time}),
+                         {c: v.get("method") for c, v in (disc.summary.get("columns") or {}).items()})
+    names = list(timed.names)
     for n in (x, y, *given):
         if n not in names:
             close = difflib.get_close_matches(n, names, n=3)
@@ -32,10 +38,6 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
             raise ConfigError(f"`{n}` is not a usable signal of this extract{hint}; see cleaning.json of a run for dropped columns.")
     if len({x, y, *given}) != 2 + len(given):
         raise ConfigError("x, y and the --given signals must all be different.")
-    # the same timeline as a run: rows in time order within series, previous windows, numeric scores
-    timed = timeline.run(cl.table, cl.times, cl.kinds, disc.codes,
-                         {n: max(1, len(disc.levels[n])) for n in names}, cfg.model_copy(update={"time": cfg.time.model_copy(update={"test_series": True, "lags": 0})}),
-                         {c: v.get("method") for c, v in (disc.summary.get("columns") or {}).items()})
     n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
     cfg, _ = resolve_auto(cfg, n_info, [c for c, s in zip(timed.cards, timed.scores) if s is None])
     settings = EngineSettings.from_config(cfg)
@@ -62,13 +64,27 @@ def plain_words(result: dict[str, Any]) -> str:
         outcome = f"dependent given {given} ({p_is(result['pvalue'])} \u2264 alpha = {alpha:g})"
     if result.get("policy_applied"):
         outcome += f"; decided by the sparse-table policy `{result.get('policy')}`, not by the p-value"
-    lines = [
-        f"{result['x']} and {result['y']}: {outcome}.",
-        f"Test: {result['method']}, statistic {fmt_num(result['statistic'])} on {result['dof']} degrees of freedom, "
-        f"{result['n']} rows.",
-        f"Effect given the set: {fmt_num(result['cmi_bits'])} bits (conditional mutual information); "
-        f"association ignoring other signals: Cram\u00e9r's V {fmt_num(result['cramers_v'])}.",
-    ]
+    lines = [f"{result['x']} and {result['y']}: {outcome}."]
+    if result["method"] == "gcm":
+        past = result.get("correction", "none") != "none"
+        sources = ([given] if result["given"] else []) + (["its own previous window"] if past else [])
+        predicted = " and ".join(sources) if sources else "nothing (no conditioning set)"
+        lines += [
+            f"Test: residual correlation (generalised covariance measure). Each of the two was predicted from "
+            f"{predicted} (numbers by their ranks, along flexible curves; a separate level for every combination "
+            f"of the categories held fixed), and what is left of {result['x']} was compared with what is left of "
+            f"{result['y']}. \"Dependent\" means the two leftovers still move together: the predictions do not "
+            "explain the association.",
+            f"Statistic {fmt_num(result['statistic'])} on {result['dof']} degrees of freedom (chi-square), "
+            f"{result['n']} rows; residual correlation r = {fmt_num(result.get('effect_r', float('nan')))}.",
+        ]
+    else:
+        lines += [
+            f"Test: {result['method']}, statistic {fmt_num(result['statistic'])} on {result['dof']} degrees of freedom, "
+            f"{result['n']} rows.",
+            f"Effect given the set: {fmt_num(result['cmi_bits'])} bits (conditional mutual information); "
+            f"association ignoring other signals: Cram\u00e9r's V {fmt_num(result['cramers_v'])}.",
+        ]
     if result.get("flags"):
         lines.append("Read with care: " + ", ".join(str(f) for f in result["flags"]) + ".")
     return "\n".join(lines)

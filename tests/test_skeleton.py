@@ -40,15 +40,18 @@ def test_chi2_skeleton_equals_reference(name):
     np.testing.assert_array_equal(res.adjacency(), ref | ref.T)
 
 
+@pytest.mark.parametrize("method", ["g", "auto"])
 @pytest.mark.parametrize("name", SETS)  # causal-learn takes 0.04 s (asia) to 2.4 s (insurance) here
-def test_g_skeleton_equals_causal_learn(name):
-    """G, alpha 0.05: exactly the skeleton of causal-learn's pc(data, 0.05, "gsq", stable=True) computed here."""
+def test_g_skeleton_equals_causal_learn(name, method):
+    """G (and the default `auto`, which runs the G-test on categorical signals with independent rows), alpha
+    0.05: exactly the skeleton of causal-learn's pc(data, 0.05, "gsq", stable=True) computed here."""
     from causallearn.search.ConstraintBased.PC import pc
 
     _, _, _, raw = _load(name)
     cg = pc(raw.astype(float), 0.05, "gsq", stable=True, show_progress=False)
     theirs = cg.G.graph != 0
-    res = _run(name, "g")
+    res = _run(name, method)
+    assert {rec.result.method for rec in res.tests} == {"g"}
     np.testing.assert_array_equal(res.adjacency(), theirs | theirs.T)
 
 

@@ -186,6 +186,7 @@ def evidence_frame(
             data_disagrees=pair in skeleton.disagreements,
             orientation=orientation.label(a, b) if (orientation is not None and linked) else "",
             stability=(stability or {}).get(pair, np.nan),
+            correction=deciding.correction if deciding else "none",  # for the wording only, not a column
         )
         flags = []
         for word in ("sparse", "degenerate", "policy_applied", "data_disagrees"):
@@ -215,7 +216,37 @@ def evidence_frame(
     )
 
 
+def _residual_words(row: dict[str, object], alpha: float) -> str:
+    """The outcome of a pair decided by the numeric test (``gcm``) in plain words: what each signal was
+    predicted from, and how much the two still move together after that (the residual correlation)."""
+    a, b = row["var_a"], row["var_b"]
+    given = str(row["given"])
+    past = str(row.get("correction", "none")) != "none"
+    bits = float(row["cmi_bits"])  # type: ignore[arg-type]
+    r = float(np.sqrt(max(0.0, 1.0 - 2.0 ** (-2.0 * bits)))) if bits == bits else float("nan")
+    p = p_is(float(row["pvalue"]))  # type: ignore[arg-type]
+    sources = ([_set_text(given)] if given else []) + (["its own previous window"] if past else [])
+    if row["linked"]:
+        n_tests = int(row["n_tests"])  # type: ignore[call-overload]
+        tried = "the test" if n_tests == 1 else f"each of the {n_tests} conditioning sets tried"
+        if sources:
+            moved = f"still move together after each was predicted from {' and '.join(sources)}"
+            return f"linked: dependent under {tried}; the weakest: {a} and {b} {moved} (residual correlation r = {r:.2f}, {p})."
+        return f"linked: dependent under {tried}: {a} and {b} move together (correlation of their rank scores r = {r:.2f}, {p})."
+    if sources:
+        return (f"separated: what is left of {a} and of {b} after each was predicted from {' and '.join(sources)} "
+                f"is unrelated (residual correlation r = {r:.2f}, {p} > alpha = {alpha:g}).")
+    return (f"separated: {a} and {b} show no association (correlation of their rank scores r = {r:.2f}, "
+            f"{p} > alpha = {alpha:g}).")
+
+
 def _explain(row: dict[str, object], alpha: float) -> str:
+    if row.get("method") == "gcm" and not row["knowledge"]:
+        return _residual_words(row, alpha)
+    return _explain_outcome(row, alpha)
+
+
+def _explain_outcome(row: dict[str, object], alpha: float) -> str:
     n_tests = int(row["n_tests"])  # type: ignore[call-overload]
     p = float(row["pvalue"])  # type: ignore[arg-type]
     given = _set_text(str(row["given"]))
