@@ -144,6 +144,12 @@ class NightlyLogs:
     notes: dict[str, object] = field(default_factory=dict)
 
 
+def _z(v: np.ndarray) -> np.ndarray:
+    """Standardised over the whole sample (only for samples of independent rows, one population)."""
+    s = v.std()
+    return (v - v.mean()) / (s if s > 0 else 1.0)
+
+
 def _flag(rng: np.random.Generator, n: int, stay: float, on_share: float) -> np.ndarray:
     """An on/off flag that switches rarely (mean run of 1/(1-stay) windows) and is on `on_share` of the time."""
     out = np.empty(n, dtype=np.int64)
