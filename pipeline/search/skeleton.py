@@ -101,7 +101,7 @@ def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) 
     return out
 
 
-_WORKER_ENGINES: dict[Any, CIEngine] = {}
+_WORKER_ENGINES: dict[Any, "CIEngine | MixedEngine"] = {}
 
 
 @dataclass(frozen=True)

@@ -348,7 +348,7 @@ try:  # pragma: no cover - depends on the install
                 return True
         return False
 except ImportError:  # pragma: no cover
-    _break_in_quotes = None
+    _break_in_quotes = None  # type: ignore[assignment]
 
 
 def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarray:
