@@ -462,8 +462,11 @@ class ResidualTester:
         b = b - b.mean(axis=0)
         var = np.maximum((a * a).mean(axis=0), 1e-300)
         rho = np.clip((a * b).mean(axis=0) / var, -0.97, 0.97)
-        num = np.sum(4.0 * rho**2 * var**2 / ((1.0 - rho) ** 6 * (1.0 + rho) ** 2))
-        den = np.sum(var**2 / (1.0 - rho) ** 4)
+        weight = (var / var.max()) ** 2  # scaled, so that tiny variances do not underflow
+        num = np.sum(4.0 * rho**2 * weight / ((1.0 - rho) ** 6 * (1.0 + rho) ** 2))
+        den = np.sum(weight / (1.0 - rho) ** 4)
+        if not (np.isfinite(num) and np.isfinite(den) and den > 0):
+            return rule
         plug_in = 1.1447 * (float(num / den) * prod.shape[0]) ** (1.0 / 3.0)
         cap = max(1, int(self.timeline.series_length // 2)) if self.timeline is not None else rule
         return int(min(cap, max(rule, math.ceil(plug_in))))
