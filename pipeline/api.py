@@ -398,7 +398,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                 "timings": timings,
                 "time": manifest["time"],
             },
-            levels=levels_doc["levels"],
+            levels={k: v for k, v in levels_doc["levels"].items() if k in names},  # the signals tested
             alpha=float(cfg.test.alpha),
             orient=cfg.search.orient,
             truth_edges=_truth_edges(cfg, source),

@@ -172,6 +172,8 @@ def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> Re
     d = Path(run_dir)
     manifest = json.loads((d / "manifest.json").read_text(encoding="utf-8"))
     levels = json.loads((d / "levels.json").read_text(encoding="utf-8")).get("levels", {})
+    tested = set((manifest.get("columns") or {}).get("tested") or levels)
+    levels = {k: v for k, v in levels.items() if k in tested}  # series columns are not drawn
     cfg = manifest.get("config") or {}
     section = lambda name: cfg.get(name) or {}  # noqa: E731
     truth = None
