@@ -40,7 +40,7 @@ from ._kernels import (
 )
 from .counting import compress_rows, count_flat, count_table, stratum_codes
 from .permutation import permutation_pvalue
-from .result import CITestResult
+from .result import CITestResult, decide
 
 __all__ = ["EngineSettings", "CIEngine"]
 
@@ -373,12 +373,7 @@ class CIEngine:
             statistic = chi2_stat if method == "chi2" else g_stat
             pvalue = float(_chdtrc(dof, statistic))
         sparse = n < st.min_rows_per_cell * possible
-        independent = pvalue > st.alpha
-        policy_applied = False
-        if sparse and st.sparse_policy != "flag":
-            decided = st.sparse_policy == "independent"
-            policy_applied = decided != independent
-            independent = decided
+        independent, policy_applied = decide(pvalue, st.alpha, sparse, st.sparse_policy)
         if gi:
             cramers_v = _NAN
         else:

@@ -29,7 +29,7 @@ import numpy as np
 from .engine import CIEngine, EngineSettings
 from .permutation import permutation_pvalue
 from .residual import ResidualTester, Timeline, hac_covariance
-from .result import CITestResult
+from .result import CITestResult, decide
 from .statistics import contingency_statistics
 
 __all__ = ["MixedEngine", "choose_method"]
@@ -132,12 +132,7 @@ class MixedEngine:
         degenerate = dof == 0
         if degenerate:
             statistic, pvalue = 0.0, 1.0
-        independent = pvalue > st.alpha
-        policy_applied = False
-        if sparse and st.sparse_policy != "flag":
-            decided = st.sparse_policy == "independent"
-            policy_applied = decided != independent
-            independent = decided
+        independent, policy_applied = decide(pvalue, st.alpha, sparse, st.sparse_policy)
         return CITestResult(
             self.names[xi], self.names[yi], tuple(self.names[g] for g in gi), float(statistic), int(dof),
             float(pvalue), int(n), method, float(bits), float(cramers_v), bool(sparse), bool(degenerate),

@@ -6,7 +6,7 @@ import math
 from dataclasses import asdict, dataclass
 from typing import Any
 
-__all__ = ["CITestResult"]
+__all__ = ["CITestResult", "decide"]
 
 
 @dataclass(frozen=True)
@@ -60,3 +60,14 @@ class CITestResult:
         d = asdict(self)
         d["given"] = list(self.given)
         return d
+
+
+def decide(pvalue: float, alpha: float, sparse: bool, policy: str) -> tuple[bool, bool]:
+    """(independent, policy_applied): ``pvalue > alpha``, unless the table is sparse and the data-sufficiency
+    policy (``independent`` or ``dependent``; ``flag`` keeps the p-value's word) decides otherwise."""
+    independent = pvalue > alpha
+    if sparse and policy != "flag":
+        decided = policy == "independent"
+        return decided, decided != independent
+    return independent, False
+
