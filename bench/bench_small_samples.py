@@ -1,7 +1,7 @@
 """Which test settings serve small extracts: adjacency F1 by alpha, test, sparse policy and order cap.
 
 On seeded subsamples of 300 and 1,000 rows (and the full 10,000 rows) of the four shared benchmark
-sets (../shared/benchmarks: asia, child, insurance, alarm), run PC-stable (pipeline.search) with every
+sets (tests/data/benchmarks: asia, child, insurance, alarm), run PC-stable (pipeline.search) with every
 combination of
 
 * alpha: 0.01, 0.05, 0.1, 0.2
@@ -226,7 +226,7 @@ def main(argv: list[str] | None = None) -> str:
     text = "\n".join([
         "# Test settings for small extracts: adjacency F1 against the true graph",
         "",
-        (f"Sets: {', '.join(SETS)} (../shared/benchmarks). Sizes {args.sizes}; {seeds} seeded subsamples "
+        (f"Sets: {', '.join(SETS)} (tests/data/benchmarks). Sizes {args.sizes}; {seeds} seeded subsamples "
         f"(without replacement, seed offset {args.seed_offset}) per size below 10,000, the full sample "
         "at 10,000. Codes from the levels present in each subsample. F1 is the mean over the four sets "
         "of the mean over the subsamples. `n/f`: an uncapped search stopped for needing more than "

@@ -1,7 +1,7 @@
 """Single-run graph against the stable graph (edges linked in >= threshold of the resamples) on CHILD.
 
 Prints a Markdown table of adjacency precision / recall / F1 against the true graph
-(../shared/benchmarks/child/truth.graph.txt) and writes it to bench/results/stability.md.
+(tests/data/benchmarks/child/truth.graph.txt) and writes it to bench/results/stability.md.
 
     .venv/bin/python bench/bench_stability.py                  # B = 20, fraction 0.5, threshold 0.6
     .venv/bin/python bench/bench_stability.py --resamples 50 --jobs 2
