@@ -72,7 +72,7 @@ def main(argv: list[str] | None = None) -> str:
     lines = [
         "# Edge stability on CHILD: single run against the stable graph",
         "",
-        (f"Data: `../shared/benchmarks/child` (CHILD network, Spiegelhalter & Cowell 1992; {len(names)} "
+        (f"Data: `tests/data/benchmarks/child` (CHILD network, Spiegelhalter & Cowell 1992; {len(names)} "
         f"variables, {len(truth)} true edges), first `rows` rows. G-test, no order cap. Stable graph: pairs "
         f"linked in at least {args.threshold} of B = {args.resamples} subsamples of {args.fraction} of the "
         f"rows drawn without replacement (seed {args.seed}); jobs = {args.jobs}."),
