@@ -170,9 +170,9 @@ class MixedEngine:
             cov0 = hac_covariance(prod)
             cov = hac_covariance(prod, rt.partners_for(rows))
             inflation = max(1.0, float(np.trace(cov)) / max(float(np.trace(cov0)), 1e-300))
-        # the asymptotic chi-square is unreliable on these sparse strata (measured: 23-37% rejections
-        # of true nulls at alpha 0.05 for persistent chains, bench/results/timeseries.md), so the
-        # p-value comes from permutations of y within the strata, which keep every stratum's margins
+        # the asymptotic chi-square is unreliable on these sparse strata (tests/test_timeseries.py::
+        # test_asymptotic_g_on_past_strata_misses_its_size_so_permutations_are_used), so the p-value
+        # comes from permutations of y within the strata, which keep every stratum's margins
         permutations = 0
         pvalue = 1.0
         if stats.dof > 0:
