@@ -62,3 +62,28 @@ def emit(name: str, text: str) -> None:
     RESULTS.mkdir(parents=True, exist_ok=True)
     (RESULTS / f"{name}.md").write_text(text)
     sys.stdout.write(text)
+
+
+def run_child(cmd: list[str], log: Path) -> tuple[dict, float, object]:
+    """Run a bench child process from the repository root (stderr to `log`): the JSON document on its last
+    stdout line, its wall seconds and the resource usage of exactly that child (``os.wait4``; Linux gives
+    ``ru_maxrss`` in kilobytes). Raises with the log's tail when it fails."""
+    import json
+    import os
+    import subprocess
+    import time
+
+    repo = Path(__file__).resolve().parents[1]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in [str(repo), os.environ.get("PYTHONPATH", "")] if p))
+    log.parent.mkdir(parents=True, exist_ok=True)
+    t0 = time.perf_counter()
+    with open(log, "wb") as err, subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=err, cwd=repo, env=env) as proc:
+        assert proc.stdout is not None
+        stdout = proc.stdout.read()
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+    wall = time.perf_counter() - t0
+    if proc.returncode != 0:
+        raise RuntimeError(f"{cmd[1:4]} failed (exit {proc.returncode}); log {log}:\n{log.read_text(errors='replace')[-2000:]}")
+    return json.loads(stdout.decode().strip().splitlines()[-1]), wall, usage
+

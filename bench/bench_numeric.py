@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -37,7 +36,7 @@ REPO = HERE.parent
 sys.path.insert(0, str(REPO))
 sys.path.insert(0, str(HERE))
 
-from _common import RESULTS, emit, machine  # noqa: E402
+from _common import RESULTS, emit, machine, run_child  # noqa: E402
 
 CASES = {"before: `test.method=g`, 4 bins": ["test.method=g"], "after: default (`auto`)": []}
 GB = 1024**3
@@ -77,18 +76,8 @@ def run_case(rows: int, columns: int, seed: int, overrides: list[str], work: Pat
            "--out", str(out)]
     for item in overrides:
         cmd += ["--set", item]
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in [str(REPO), os.environ.get("PYTHONPATH", "")] if p))
-    log = work / f"{out.name}.log"
-    t0 = time.perf_counter()
-    with open(log, "wb") as err, subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=err, cwd=REPO, env=env) as proc:
-        assert proc.stdout is not None
-        stdout = proc.stdout.read()
-        _, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
-    if proc.returncode != 0:
-        raise RuntimeError(f"run failed (exit {proc.returncode}):\n{log.read_text(errors='replace')[-2000:]}")
-    doc = json.loads(stdout.decode().strip().splitlines()[-1])
-    doc["wall"] = time.perf_counter() - t0
+    doc, wall, usage = run_child(cmd, work / f"{out.name}.log")
+    doc["wall"] = wall
     doc["peak_rss"] = usage.ru_maxrss * 1024  # Linux reports kilobytes
     return doc
 

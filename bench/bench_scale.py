@@ -19,7 +19,6 @@ import json
 import os
 import shutil
 import statistics
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -30,6 +29,7 @@ HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 sys.path.insert(0, str(HERE))
 import gen_extract  # noqa: E402 - beside this script
+from _common import run_child  # noqa: E402
 
 SIZES = [10_000, 100_000, 1_000_000, 10_000_000]
 QUICK_SIZES = [10_000, 100_000]
@@ -74,21 +74,7 @@ def _run(input_path: Path, config: Path, out: Path, overrides: list[str]) -> dic
            "--config", str(config), "--out", str(out)]
     for item in overrides:
         cmd += ["--set", item]
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join(p for p in [str(REPO), os.environ.get("PYTHONPATH", "")] if p)
-    log = out.parent / f"{out.name}.log"
-    log.parent.mkdir(parents=True, exist_ok=True)
-    t0 = time.perf_counter()
-    with open(log, "wb") as err, subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=err, cwd=REPO, env=env) as proc:
-        assert proc.stdout is not None
-        stdout = proc.stdout.read()
-        _, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
-    wall = time.perf_counter() - t0
-    if proc.returncode != 0:
-        tail = log.read_text(errors="replace")[-2000:]
-        raise RuntimeError(f"run on {input_path} failed (exit {proc.returncode}); log {log}:\n{tail}")
-    doc = json.loads(stdout.decode().strip().splitlines()[-1])
+    doc, wall, usage = run_child(cmd, out.parent / f"{out.name}.log")
     doc["wall_seconds"] = round(wall, 3)
     doc["peak_rss_bytes"] = int(usage.ru_maxrss) * 1024  # Linux reports kilobytes
     doc["cpu_seconds"] = round(usage.ru_utime + usage.ru_stime, 3)  # with its reaped worker processes
@@ -100,10 +86,10 @@ def _warm_speedup(run_dir: Path, config: Path, repeats: int) -> dict[int, list[f
     sys.path.insert(0, str(REPO))
     import pandas as pd
 
-    from pipeline.api import _coded_matrix
     from pipeline.config import load_config
     from pipeline.independence.engine import EngineSettings
     from pipeline.parallel import parallel_context, share_array
+    from pipeline.plan import coded_matrix
     from pipeline.search.knowledge import Knowledge
     from pipeline.stages import battery, skeleton
 
@@ -119,7 +105,7 @@ def _warm_speedup(run_dir: Path, config: Path, repeats: int) -> dict[int, list[f
     except ImportError:
         pass
     settings, knowledge = EngineSettings.from_config(cfg), Knowledge.build(names)
-    data = share_array(_coded_matrix(codes))
+    data = share_array(coded_matrix(codes))
     out: dict[int, list[float]] = {1: [], 2: []}
     for _ in range(repeats):
         for jobs in (1, 2):

@@ -28,7 +28,7 @@ from . import __version__
 from .config import Config, resolve_auto
 from .errors import ConfigError, DataError
 from .parallel import parallel_context
-from .plan import STAGES, coded_matrix
+from .plan import STAGES
 from .progress import Reporter
 from .runner import Runner
 from .runs import (
@@ -162,7 +162,6 @@ def _truth_edges(cfg: Config, input_path: Path) -> list[tuple[str, str]] | None:
     return read_truth_edges(p, input_path)
 
 
-_coded_matrix = coded_matrix  # the probe command codes its table the same way
 
 
 def _input_root(source: Path) -> Path:
