@@ -16,12 +16,12 @@ import os
 import platform
 import shutil
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from functools import cached_property
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import networkx as nx
 import pandas as pd
 
 from . import __version__
@@ -51,8 +51,10 @@ from .runs import (
 )
 from .search.knowledge import Knowledge
 from .stages import report
-from .stages._evidence import with_effect_r
 from .stages.timeline import orient_lagged, time_tiers
+
+if TYPE_CHECKING:  # networkx loads when a graph is asked for, not on every command
+    import networkx as nx
 
 __all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
 
@@ -67,11 +69,17 @@ class RunResult:
     evidence: pd.DataFrame
     tests: pd.DataFrame
     manifest: dict[str, Any]
-    graph: nx.Graph = field(repr=False)
+
+    @cached_property
+    def graph(self) -> nx.Graph:
+        """The linked pairs as a networkx graph with the evidence on its edges (built when first asked for)."""
+        return evidence_graph(self.evidence)
 
 
 def evidence_graph(evidence: pd.DataFrame) -> nx.Graph:
     """The linked pairs of an evidence table as a networkx graph with the evidence on its edges."""
+    import networkx as nx
+
     g = nx.Graph()
     g.add_nodes_from(sorted(set(evidence["var_a"]) | set(evidence["var_b"])))
     for row in evidence[evidence["linked"]].to_dict("records"):
@@ -86,7 +94,7 @@ def load_run(run_dir: str | os.PathLike[str]) -> RunResult:
         raise DataError(f"`{run.path}` is not a finished edgeproof run folder (no manifest.json).")
     evidence = run.table("evidence.parquet")
     return RunResult(out_dir=run.path.resolve(), evidence=evidence, tests=run.table("tests.parquet"),
-                     manifest=run.json("manifest.json"), graph=evidence_graph(evidence))
+                     manifest=run.json("manifest.json"))
 
 
 def _input_files(path: Path) -> list[Path]:
@@ -344,6 +352,8 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         stability_info = runner.get("stability.json")
         evidence = _with_stability(evidence, shares, stability_info)
         atomic_write_parquet(out / "stability.parquet", shares)
+    from .stages._evidence import with_effect_r
+
     evidence, tests = with_effect_r(orient_lagged(evidence)), with_effect_r(tests)
     atomic_write_parquet(out / "evidence.parquet", evidence)
     atomic_write_parquet(out / "tests.parquet", tests)

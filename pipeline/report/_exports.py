@@ -14,12 +14,14 @@ import json
 import math
 import re
 from collections.abc import Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import networkx as nx
 import pandas as pd
 
 from ._common import direction, plain
+
+if TYPE_CHECKING:  # networkx loads when a graph file is written
+    import networkx as nx
 
 __all__ = [
     "CSV_COLUMNS",
@@ -163,6 +165,8 @@ def build_nx_graph(
     evidence: pd.DataFrame, names: Sequence[str], levels: Mapping[str, Sequence[str]]
 ) -> nx.Graph:
     """The linked pairs as a networkx Graph, evidence on the edges, levels on the nodes."""
+    import networkx as nx
+
     g = nx.Graph()
     for name in names:
         g.add_node(str(name), levels=" | ".join(map(str, levels.get(name, []))))
@@ -182,6 +186,8 @@ def build_nx_graph(
 
 def graphml_bytes(g: nx.Graph) -> bytes:
     """The graph as GraphML."""
+    import networkx as nx
+
     return ("\n".join(nx.generate_graphml(g, prettyprint=True)) + "\n").encode("utf-8")
 
 
@@ -195,5 +201,7 @@ def _json_safe(obj: Any) -> Any:
 
 def node_link_json(g: nx.Graph) -> bytes:
     """The graph as node-link JSON (networkx layout, ``edges`` key), NaN written as null."""
+    import networkx as nx
+
     data = _json_safe(nx.node_link_data(g, edges="edges"))
     return (json.dumps(data, indent=2, sort_keys=True, allow_nan=False) + "\n").encode("utf-8")

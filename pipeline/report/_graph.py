@@ -17,7 +17,7 @@ import pandas as pd
 from ..errors import EdgeproofError
 from ._common import compare_truth, direction, edge_classes, fmt_num, fmt_p, given_text, pair_key
 
-__all__ = ["build_graph", "build_truth_graph", "layout_engine", "render"]
+__all__ = ["build_graph", "build_truth_graph", "layout_engine", "render", "render_formats"]
 
 _FONT = "Helvetica"
 _INSTALL_HINT = "install Graphviz (`apt-get install graphviz`) so that `dot` is on PATH"
@@ -169,6 +169,35 @@ def build_truth_graph(
                tooltip=_esc_string(f"{a} \u2014 {b}: recovered but not in the known graph"))
     # the key is on the page (`pipeline.report._html._truth_key`)
     return g
+
+
+def render_formats(graph: graphviz.Digraph, fmts: Sequence[str], what: str | None = None) -> dict[str, bytes]:
+    """Render `graph` to several formats with one layout: one Graphviz process given one ``-T`` and
+    ``-o`` per format (the layout is the slow part; two processes would lay the graph out twice)."""
+    import subprocess
+    import tempfile
+    from pathlib import Path
+
+    if len(fmts) == 1:
+        return {fmts[0]: render(graph, fmts[0], what)}
+    with tempfile.TemporaryDirectory(prefix="edgeproof-graph-") as tmp:
+        outs = {f: Path(tmp) / f"graph.{f}" for f in fmts}
+        cmd = [graph.engine] + [a for f in fmts for a in (f"-T{f}", f"-o{outs[f]}")]
+        try:
+            proc = subprocess.run(cmd, input=graph.source.encode("utf-8"), capture_output=True, check=False)
+        except FileNotFoundError as err:
+            raise EdgeproofError(
+                f"Graphviz program `{graph.engine}` was not found while drawing {what or 'the graph'}; "
+                f"{_INSTALL_HINT}."
+            ) from err
+        if proc.returncode != 0:
+            detail = proc.stderr.decode("utf-8", "replace").strip().splitlines()
+            first = detail[0] if detail else f"exit status {proc.returncode}"
+            raise EdgeproofError(
+                f"Graphviz failed to draw {what or 'the graph'} as {'/'.join(fmts)}: {first}; "
+                "check the Graphviz installation (`dot -V`)."
+            )
+        return {f: outs[f].read_bytes() for f in fmts}
 
 
 def render(graph: graphviz.Digraph, fmt: str, what: str | None = None) -> bytes:

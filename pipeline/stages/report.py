@@ -132,13 +132,14 @@ def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out
     ev = _prepared(evidence, context)
     names = signal_names(ev, context.levels)
     graph = _graph.build_graph(ev, names, context.levels, context.alpha, context.orient)
-    svg = _graph.render(graph, "svg", "graph.svg")
+    drawn = _graph.render_formats(graph, ("svg", "png") if context.png else ("svg",), "graph.svg and graph.png")
+    svg = drawn["svg"]
     files = {
         "graph.dot": atomic_write_text(out / "graph.dot", graph.source),
         "graph.svg": atomic_write_bytes(out / "graph.svg", svg),
     }
     if context.png:
-        files["graph.png"] = atomic_write_bytes(out / "graph.png", _graph.render(graph, "png", "graph.png"))
+        files["graph.png"] = atomic_write_bytes(out / "graph.png", drawn["png"])
     files["evidence.csv"] = atomic_write_bytes(out / "evidence.csv", _exports.evidence_csv(ev, context.levels))
     nxg = _exports.build_nx_graph(ev, names, context.levels)
     files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", _exports.graphml_bytes(nxg))
