@@ -19,14 +19,16 @@ knows a later copy cannot cause an earlier one.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from ..config import Config
 from ..errors import ConfigError, DataError
-from ..independence.residual import Timeline, normal_scores
+
+if TYPE_CHECKING:  # the residual test's module (and scipy under it) loads when a stage runs, not on import
+    from ..independence.residual import Timeline
 
 __all__ = ["Timed", "run", "persistence", "lag_name", "lag_of", "time_tiers", "orient_lagged", "HIGH_PERSISTENCE"]
 
@@ -240,6 +242,8 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
         series_id, t = series_id[order], t[order]
         prev, window, gaps = _previous(series_id, t, cfg.time.window_seconds)
         counts = np.bincount(series_id) if n else np.zeros(0, dtype=np.int64)
+        from ..independence.residual import Timeline
+
         timeline = Timeline(prev=prev, series_length=float(np.median(counts)) if counts.size else 0.0)
         summary.update(series=series, window_seconds=window, gaps=gaps, series_count=int(counts.size),
                        rows_without_previous=int(np.sum(prev < 0)))
@@ -258,6 +262,8 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
     binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
     as_numbers = cfg.discretise.default == "auto"
     methods = methods or {}
+    from ..independence.residual import normal_scores
+
     base_scores = [normal_scores(table[c].to_numpy(dtype=np.float64)[order])
                    if kinds.get(c) == "numeric" and as_numbers and c not in binned
                    and methods.get(c, "quantile") != "categorical" else None for c in signals]
