@@ -60,6 +60,8 @@ CASES = {
                                                                        "time.test_series=true"],
     "auto tests, no time declared (rows independent)": ["test.method=auto", "time.serial=off"],
     "default + time and series declared": ["time.column=window_start", "time.series=[node]"],
+    "time and series declared, `test.alpha=0.02`": ["time.column=window_start", "time.series=[node]",
+                                                     "test.alpha=0.02"],
 }
 
 
