@@ -247,7 +247,9 @@ def run_pipeline(
         start_partial(partial)
         par = cfg.parallel
         # the workers start in the background while the data stages run
-        with parallel_context(par.jobs, par.backend, par.scheduler) as workers:
+        from .search.warm import warm_worker
+
+        with parallel_context(par.jobs, par.backend, par.scheduler, warm_up=warm_worker) as workers:
             runner = Runner(list(STAGES), cache, cfg, __version__, env={"workers": workers, "reporter": rep}, on_event=rep.event)
             manifest = _run_plan(runner, source, files, partial, rep, run_name)
         manifest.update(started=started, finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -352,7 +354,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         stability_info = runner.get("stability.json")
         evidence = _with_stability(evidence, shares, stability_info)
         atomic_write_parquet(out / "stability.parquet", shares)
-    from .stages._evidence import with_effect_r
+    from .independence.result import with_effect_r
 
     evidence, tests = with_effect_r(orient_lagged(evidence)), with_effect_r(tests)
     atomic_write_parquet(out / "evidence.parquet", evidence)

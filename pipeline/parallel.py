@@ -52,11 +52,34 @@ class ParallelContext:
     _client: Any = None
     _scattered: list[tuple[Any, Any]] = field(default_factory=list)  # (object, future); kept alive
     _warming: threading.Thread | None = None
+    _stack: contextlib.ExitStack | None = None  # the local pool, opened on first need (`prepare`)
+    warm_up: Callable[[Any, int], Any] | None = None  # run once in each local worker when the pool opens
+
+    def prepare(self) -> None:
+        """Open the local pool and start its workers in the background (imports, compiled kernels),
+        once; a run calls it when a stage has work to do, so a run whose stages are all reused
+        never starts a worker."""
+        if self.backend != "local" or self._parallel is not None:
+            return
+        from joblib import Parallel
+
+        self._stack = contextlib.ExitStack()
+        self._parallel = self._stack.enter_context(Parallel(n_jobs=self.jobs, backend="loky", batch_size=1))
+        self._start_warm_up()
+
+    def close(self) -> None:
+        """Wait for the warm-up and close the local pool (if it was opened)."""
+        self._finish_warm_up()
+        if self._stack is not None:
+            self._stack.close()
+            self._stack = None
+            self._parallel = None
 
     def map(self, fn: Callable[[Any, Any], Any], shared: Any, tasks: Sequence[Any]) -> list[Any]:
         """Apply `fn` to each task with the shared payload; results in task order."""
         if not tasks:
             return []
+        self.prepare()
         if self._parallel is None and self._client is None:
             return [fn(shared, t) for t in tasks]
         if self._client is not None:
@@ -69,12 +92,16 @@ class ParallelContext:
         return list(self._parallel(delayed(fn)(shared, t) for t in tasks))
 
     def _start_warm_up(self) -> None:
-        """Start the local workers (imports, compiled kernels) in the background while the caller goes on."""
+        """Start the local workers and run `warm_up` in each, in the background while the caller goes on."""
         from joblib import delayed
+
+        fn = self.warm_up
+        if fn is None:
+            return
 
         def warm() -> None:
             with contextlib.suppress(Exception):  # best effort: a real failure shows in the first map
-                self._parallel(delayed(_warm_worker)(None, i) for i in range(self.jobs))
+                self._parallel(delayed(fn)(None, i) for i in range(self.jobs))
 
         self._warming = threading.Thread(target=warm, name="edgeproof-warm-up", daemon=True)
         self._warming.start()
@@ -115,8 +142,13 @@ class ParallelContext:
 
 
 @contextlib.contextmanager
-def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | None = None) -> Iterator[ParallelContext]:
-    """Open the workers once for a whole run (a local process pool or a dask client)."""
+def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | None = None,
+                     warm_up: Callable[[Any, int], Any] | None = None) -> Iterator[ParallelContext]:
+    """Open the workers once for a whole run (a local process pool or a dask client).
+
+    `warm_up(None, i)` runs once in each local worker when the pool opens (the caller's imports and
+    compiled code), so the pool itself knows nothing of what its tasks do.
+    """
     if backend == "dask":
         if not scheduler:
             raise ConfigError(
@@ -143,29 +175,8 @@ def parallel_context(jobs: int = 1, backend: str = "local", scheduler: str | Non
     if n <= 1:
         yield ParallelContext(jobs=1, backend="serial")
         return
-    from joblib import Parallel
-
-    with Parallel(n_jobs=n, backend="loky", batch_size=1) as par:
-        ctx = ParallelContext(jobs=n, backend="local", _parallel=par)
-        ctx._start_warm_up()
-        try:
-            yield ctx
-        finally:
-            ctx._finish_warm_up()
-
-
-def _warm_worker(_shared: Any, task: int) -> int:
-    """Import the test engine and load its compiled kernels in a worker (one tiny test per set size)."""
-    from .independence.engine import CIEngine, EngineSettings
-    from .search.skeleton import pc_stable_skeleton
-
-    rng = np.random.default_rng(task)
-    data = rng.integers(0, 2, size=(5, 256)).astype(np.int8)
-    names = ["a", "b", "c", "d", "e"]
-    engine = CIEngine(data, names, [2] * 5)
-    for given in ((), ("c",), ("c", "d"), ("c", "d", "e")):
-        engine.test("a", "b", given)
-    # the kernels a search level uses, over distinct weighted rows and over plain rows
-    for compress in (True, False):
-        pc_stable_skeleton(data, names, [2] * 5, EngineSettings(compress_rows=compress))
-    return task
+    ctx = ParallelContext(jobs=n, backend="local", warm_up=warm_up)  # the pool opens when a stage first has work (`prepare`)
+    try:
+        yield ctx
+    finally:
+        ctx.close()

@@ -238,6 +238,9 @@ class Runner:
 
     def _run(self, stage: Stage, key: str) -> None:
         """Pull the stage's inputs, run it under its entry's lock and write its entry."""
+        workers = self.env.get("workers")
+        if workers is not None and hasattr(workers, "prepare"):
+            workers.prepare()  # local workers warm up in the background while this stage runs
         inputs = {name: self.get(name, before=stage) for name in stage.reads}
         carried = {name: self._bytes(name, before=stage) for name in stage.carries}
         self._fresh = {}

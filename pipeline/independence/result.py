@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-__all__ = ["CITestResult", "decide"]
+if TYPE_CHECKING:
+    import pandas as pd
+
+__all__ = ["CITestResult", "decide", "with_effect_r"]
 
 
 @dataclass(frozen=True)
@@ -71,3 +74,16 @@ def decide(pvalue: float, alpha: float, sparse: bool, policy: str) -> tuple[bool
         return decided, decided != independent
     return independent, False
 
+
+def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
+    """`frame` with ``effect_r`` beside ``cmi_bits``: the partial correlation a Gaussian pair with that much
+    information would have, ``sqrt(1 - 2 ** (-2 * bits))``, an effect size read the same way whichever
+    test ran (G-test, chi-square, permutation or residual covariance)."""
+    if "cmi_bits" not in frame.columns or "effect_r" in frame.columns:
+        return frame
+    import numpy as np
+
+    bits = frame["cmi_bits"].to_numpy(dtype=np.float64)
+    out = frame.copy()
+    out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0)))
+    return out

@@ -10,7 +10,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from ..independence.result import CITestResult
+from ..independence.result import CITestResult, with_effect_r
 from ..pairs import pair_key
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
@@ -66,18 +66,6 @@ def records_from_part(table) -> list[TestRecord]:
         TestRecord(level=lv, result=CITestResult(**dict(zip(names, values))))
         for lv, values in zip(levels, zip(*(cols[n] for n in names)))
     ]
-
-
-def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
-    """`frame` with ``effect_r`` beside ``cmi_bits``: the partial correlation a Gaussian pair with that much
-    information would have, ``sqrt(1 - 2 ** (-2 * bits))``, an effect size read the same way whichever
-    test ran (G-test, chi-square, permutation or residual covariance)."""
-    if "cmi_bits" not in frame.columns or "effect_r" in frame.columns:
-        return frame
-    bits = frame["cmi_bits"].to_numpy(dtype=np.float64)
-    out = frame.copy()
-    out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0)))
-    return out
 
 
 def tests_frame(records: Sequence[TestRecord], phases: Sequence[str] | None = None) -> pd.DataFrame:
