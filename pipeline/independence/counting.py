@@ -236,11 +236,17 @@ def count_flat(
 
 
 _HASH_MULT = np.uint64(0x9E3779B97F4A7C15)
+# numpy hashes about 100 million cells a second here; loading the compiled kernel costs 0.1-0.5 s
+_COMPILED_HASH_CELLS = 20_000_000
 
 
 def _row_hash(data: np.ndarray) -> np.ndarray:
-    """A 64-bit hash of each column of `data` (each row of the table), mixing one variable at a time."""
-    fast = row_hash(data)
+    """A 64-bit hash of each column of `data` (each row of the table), mixing one variable at a time.
+
+    Below `_COMPILED_HASH_CELLS` cells numpy's pass is cheaper than loading the compiled twin into a
+    process that has no other use for it (the main process of a run whose tests run in workers).
+    """
+    fast = row_hash(data) if data.size >= _COMPILED_HASH_CELLS else None
     if fast is not None:
         return fast
     h = np.full(data.shape[1], 0x243F6A8885A308D3, dtype=np.uint64)
