@@ -156,3 +156,15 @@ def test_tables_above_the_dense_cap_fall_back_to_the_sparse_count():
     ref = contingency_statistics(count_table(data, cards, 0, 1, (2, 3, 4, 5)).counts)
     assert res[0].statistic == pytest.approx(ref.g, rel=1e-12) and res[0].dof == ref.dof
     assert res[0].n == 3001 and res[1] == eng.test(0, 1)
+
+
+def test_row_hash_numpy_pass_equals_compiled_kernel():
+    """The numpy pass of the row hash (small tables) gives exactly the compiled kernel's values (large ones)."""
+    from pipeline.independence import counting
+    from pipeline.independence._kernels import HAVE_NUMBA, row_hash
+
+    if not HAVE_NUMBA:
+        pytest.skip("numba is not installed")
+    data = np.random.default_rng(3).integers(-1, 7, size=(9, 5_000)).astype(np.int8)
+    assert data.size < counting._COMPILED_HASH_CELLS
+    np.testing.assert_array_equal(counting._row_hash(data), row_hash(data))
