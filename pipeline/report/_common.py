@@ -27,6 +27,11 @@ __all__ = [
 
 def plain(value: Any) -> Any:
     """A JSON-able Python scalar: numpy types unwrapped, NaN and NA as None."""
+    kind = type(value)
+    if kind is str or kind is bool or kind is int:  # the common cases first (called per cell)
+        return value
+    if kind is float:
+        return value if math.isfinite(value) else None
     if value is None or value is pd.NA:
         return None
     if hasattr(value, "item") and not isinstance(value, (str, bytes)):

@@ -540,7 +540,8 @@ def build_html(
     """The whole page as a string."""
     has_stability = "stability" in evidence.columns and evidence["stability"].notna().any()
     cols = _columns(ctx.orient, bool(has_stability))
-    records = evidence.to_dict("records")
+    # plain Python values once per column (NaN and NA as None), not once per cell in the row builder
+    records = evidence.astype(object).where(evidence.notna(), None).to_dict("records")
     rows = "\n".join(_row_html(i, records[i], cols, ctx.alpha) for i in default_order(evidence))
     n_links = int(evidence["linked"].astype(bool).sum()) if len(evidence) else 0
     head = "".join(
