@@ -317,6 +317,13 @@ def nonempty_lines(data: bytes) -> np.ndarray:
     return np.flatnonzero(length > 0).astype(np.int64) + 1
 
 
+def _line_count(data: bytes) -> int:
+    """The number of lines, blank ones included (a last line without a line break counts)."""
+    if not data:
+        return 0
+    return data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
+
+
 _THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; the check would cost more
 
 
@@ -454,8 +461,11 @@ def read_csv(
             f"{delimiter!r}; set `input.delimiter` to the character between the fields."
         )
     _check_columns(names, path, limits, wanted)
-    records = nonempty_lines(data)
-    _check_rows(len(records) - int(settings.header), rows_before, path, limits)
+    n_lines = _line_count(data)
+    records: np.ndarray | None = None  # the record lines, found only when not every line is one record
+    if n_lines - int(settings.header) + rows_before > limits.max_rows:  # the count of lines bounds it
+        records = nonempty_lines(data)
+        _check_rows(len(records) - int(settings.header), rows_before, path, limits)
 
     raw_by_name = dict(zip(names, raw_names))
     include = [raw_by_name[n] for n in names if wanted is None or n in wanted]
@@ -513,8 +523,14 @@ def read_csv(
     frame.columns = [n for n in names if wanted is None or n in wanted]
 
     n_records = len(frame) + len(rejected) + int(settings.header)
-    if n_records != len(records) or any(r[0] < 0 for r in rejected):
-        records = _record_start_lines(data.decode("utf-8", "replace"), delimiter, quote or '"')
+    if n_records == n_lines and b"\r" not in data and not any(r[0] < 0 for r in rejected):
+        # every line is one record (a blank line or a value spanning lines would leave fewer records
+        # than lines, and without carriage returns no line holds two)
+        records = np.arange(1, n_lines + 1, dtype=np.int64)
+    else:
+        records = nonempty_lines(data) if records is None else records
+        if n_records != len(records) or any(r[0] < 0 for r in rejected):
+            records = _record_start_lines(data.decode("utf-8", "replace"), delimiter, quote or '"')
     header_rec = 1 if settings.header else 0
     bad_rec = np.asarray([r[0] for r in rejected], dtype=np.int64)
     keep = np.ones(len(records), dtype=bool)
