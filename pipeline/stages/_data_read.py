@@ -519,7 +519,7 @@ def read_csv(
                     "check `input.delimiter` and `input.quote_char`."
                 ) from err
             column_types[include[int(m.group(1))]] = pa.string()
-    frame = table.to_pandas()
+    frame = table.to_pandas(split_blocks=True)  # one block per column: numbers are not copied again
     frame.columns = [n for n in names if wanted is None or n in wanted]
 
     n_records = len(frame) + len(rejected) + int(settings.header)
@@ -664,7 +664,7 @@ def _arrow_frame(table: pa.Table) -> pd.DataFrame:
     one type each, so only the nested ones are looked at value by value."""
     while any(pa.types.is_struct(t) for t in table.schema.types):
         table = table.flatten()
-    frame = table.to_pandas()
+    frame = table.to_pandas(split_blocks=True)  # one block per column: numbers are not copied again
     for name, typ in zip(table.column_names, table.schema.types):
         if pa.types.is_nested(typ) or (pa.types.is_dictionary(typ) and pa.types.is_nested(typ.value_type)):
             frame[name] = frame[name].map(_as_text)
