@@ -8,13 +8,14 @@ from __future__ import annotations
 
 import codecs
 import csv
+import functools
 import glob
 import io
 import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 from urllib.parse import unquote
 
 import numpy as np
@@ -336,26 +337,40 @@ def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
     if q not in data:
         return True
     b = np.frombuffer(data, dtype=np.uint8)
-    if _break_in_quotes is not None:
-        return not _break_in_quotes(b, q[0])
-    quotes_before = np.cumsum(b == q[0], dtype=np.int64)  # without numba: one big array
-    return not bool((quotes_before[b == 10] & 1).any())
+    kernel = _quote_kernel()
+    if kernel is not None:
+        return not kernel(b, q[0])
+    # without numba: the parity of the quotes before each line break, a block at a time
+    inside = False
+    for start in range(0, b.size, 1 << 22):
+        block = b[start:start + (1 << 22)]
+        parity = np.logical_xor.accumulate(block == q[0])
+        if inside:
+            parity = ~parity
+        if parity[block == 10].any():
+            return False
+        inside = bool(parity[-1])
+    return True
 
 
-try:  # pragma: no cover - depends on the install
-    from numba import njit
+def _break_in_quotes(b: np.ndarray, q: int) -> bool:
+    inside = False
+    for x in b:
+        if x == q:
+            inside = not inside
+        elif x == 10 and inside:
+            return True
+    return False
 
-    @njit(cache=True, nogil=True)
-    def _break_in_quotes(b: np.ndarray, q: int) -> bool:
-        inside = False
-        for x in b:
-            if x == q:
-                inside = not inside
-            elif x == 10 and inside:
-                return True
-        return False
-except ImportError:  # pragma: no cover
-    _break_in_quotes = None  # type: ignore[assignment]
+
+@functools.lru_cache(maxsize=1)
+def _quote_kernel() -> Callable[[np.ndarray, int], bool] | None:
+    """`_break_in_quotes` compiled (numba is loaded only when a large file holds quotes)."""
+    try:
+        from numba import njit
+    except ImportError:  # pragma: no cover - numba is a dependency
+        return None
+    return njit(cache=True, nogil=True)(_break_in_quotes)  # type: ignore[no-any-return]
 
 
 def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarray:

@@ -91,15 +91,28 @@ class Timed:
     timeline: Timeline | None
     frame: pd.DataFrame
     summary: dict[str, Any] = field(default_factory=dict)
+    # the numeric columns of `frame` in file order (as cleaned), so `aligned_frame` need not reorder them
+    file_values: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
 
     def aligned_frame(self) -> pd.DataFrame:
         """``timeline.parquet``: one row per coded row in file order (as ``discretised.parquet``) with
         ``series`` and ``order`` (window number within the series; consecutive windows differ by 1) when
         a time column is known, and the raw values of the numeric signals."""
+        kept = [c for c in self.frame.columns if c not in ("row", "series", "time", "previous")]
+        if set(kept) != set(self.file_values):  # a frame built by hand: put every column back in file order
+            return self._aligned_by_reordering()
         if self.timeline is None:  # rows in file order already: the numeric columns as they are
-            kept = [c for c in self.frame.columns if c not in ("row", "series", "time", "previous")]
-            if np.array_equal(self.order, np.arange(self.order.size)):
-                return pd.DataFrame({c: self.frame[c].to_numpy() for c in kept}, copy=False)
+            return pd.DataFrame({c: self.file_values[c] for c in kept}, copy=False)
+        back = np.empty_like(self.order)
+        back[self.order] = np.arange(self.order.size)
+        when = pd.DataFrame({"series": self.frame["series"].to_numpy()[back], "time": self.frame["time"].to_numpy()[back]})
+        window_ns = max(float(self.summary.get("window_seconds") or 0.0), 1e-9) * 1e9
+        first = when.groupby("series")["time"].transform("min")
+        order = np.round((when["time"] - first) / window_ns).astype(np.int64)
+        columns = {"order": order.to_numpy(), "series": when["series"].to_numpy(), "time": when["time"].to_numpy()}
+        return pd.DataFrame({**columns, **{c: self.file_values[c] for c in kept}}, copy=False)
+
+    def _aligned_by_reordering(self) -> pd.DataFrame:
         back = np.empty_like(self.order)
         back[self.order] = np.arange(self.order.size)
         out = self.frame.iloc[back].reset_index(drop=True)
@@ -281,7 +294,9 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
     binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
     as_numbers = cfg.discretise.default == "auto"
     methods = methods or {}
-    base_scores = [normal_scores(in_order(table[c].to_numpy(dtype=np.float64)))
+    in_file_order = {c: table[c].to_numpy(dtype=np.float64) for c in signals if kinds.get(c) == "numeric"}
+    values = {c: in_order(v) for c, v in in_file_order.items()}  # each numeric column put in order once
+    base_scores = [normal_scores(values[c])
                    if kinds.get(c) == "numeric" and as_numbers and c not in binned
                    and methods.get(c, "quantile") != "categorical" else None for c in signals]
     per_signal = {}
@@ -317,10 +332,9 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
                 lags.append(k)
     columns = {"row": order.astype(np.int64), "series": series_id.astype(np.int64), "time": t,
                "previous": (prev if timed_on else np.full(n, -1)).astype(np.int64)}
-    columns.update({name: in_order(table[name].to_numpy(dtype=np.float64)) for name in signals
-                    if kinds.get(name) == "numeric"})
+    columns.update(values)
     frame = pd.DataFrame(columns, copy=False)
     stacked = np.vstack(all_codes) if all_codes else np.zeros((0, n), dtype=np.int8)
     return Timed(order=order, codes=stacked, scores=all_scores, names=names,
                  cards=[int(cards[s]) for s in source], source=source, lag=lags, timeline=timeline,
-                 frame=frame, summary=summary)
+                 frame=frame, summary=summary, file_values=in_file_order)
