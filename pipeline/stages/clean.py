@@ -213,8 +213,8 @@ def _apply_rules(
     kinds: dict[str, str] = {}
     records: list[dict[str, Any]] = []
     has_features = bool(derived)
+    every_row = bool(keep.all())
     for name, col in list(typed.items()) + list(derived.items()):
-        every_row = keep.all()
         values = col.values if every_row else col.values[keep]
         values = values.reset_index(drop=True)
         codes = None if col.codes is None else (col.codes if every_row else col.codes[keep])

@@ -120,7 +120,7 @@ def run(cleaned: Cleaned, cfg: Config, reuse: dict | None = None) -> Discretised
         "unknown_levels": {n: i["unknown"] for n, i in info.items() if i.get("unknown")},
         "not_in_data": sorted(set(known["levels"]) - set(cleaned.table.columns)),
     }
-    table = pd.DataFrame(codes, index=cleaned.table.index)
+    table = pd.DataFrame(codes, index=cleaned.table.index, copy=False)  # one block per column: no stacking copy
     return Discretised(table, levels, edges, dict(cleaned.kinds), summary)
 
 
