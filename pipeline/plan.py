@@ -6,7 +6,7 @@ keys of what it reads). Values the plan provides itself (not made by a stage):
 
 ``input``         the input path (key: content fingerprint with partition folder names)
 ``reuse_levels``  the levels of an earlier run named by ``discretise.reuse_from``, or None
-``signals``       ``{"names", "cards"}`` of the kept signals, in the order of ``codes.npy``
+``signals``       ``{"names", "cards"}`` of the variables tested, in the order of ``search-codes.npy``
 ``knowledge``     the `Knowledge` (required / forbidden pairs, tiers) after the review file
 
 Each stage function takes a `StageCall` and returns ``{artifact: value}``; the work itself is in
@@ -46,6 +46,8 @@ def _ingest(call: StageCall) -> dict[str, Any]:
     res = ingest.run(call["input"], call.cfg.input, call.cfg.limits)
     return {
         "ingest.parquet": res.table,
+        # the table's index (each row's line in its file) beside it: the Parquet file keeps no index
+        "ingest-lines.npy": res.table.index.to_numpy(dtype=np.int64),
         "ingest-rejected.parquet": res.rejected,
         "ingest.json": {"rows_read": res.rows_read, "sources": res.sources, "summary": res.summary},
     }
@@ -55,8 +57,10 @@ def _clean(call: StageCall) -> dict[str, Any]:
     from .stages import clean, ingest
 
     meta = call["ingest.json"]
+    table = call["ingest.parquet"]
+    table.index = pd.Index(np.array(call["ingest-lines.npy"], dtype=np.int64), name="line")
     ingested = ingest.Ingested(
-        table=call["ingest.parquet"], rejected=call["ingest-rejected.parquet"],
+        table=table, rejected=call["ingest-rejected.parquet"],
         rows_read=meta["rows_read"], sources=meta["sources"], summary=meta["summary"],
     )
     call.inputs.clear()  # the stage holds the only reference: the raw table goes with `ingested`
@@ -87,7 +91,6 @@ def _discretise(call: StageCall) -> dict[str, Any]:
     disc = discretise.run(cleaned, call.cfg, reuse_levels)
     return {
         "discretised.parquet": disc.codes,
-        "codes.npy": coded_matrix(disc.codes),
         "levels.json": {"levels": disc.levels, "edges": disc.edges, "kinds": disc.kinds},
         "discretise.json": disc.summary,
     }
@@ -103,7 +106,10 @@ def _timeline(call: StageCall) -> dict[str, Any]:
     timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg,
                          methods)
     n = timed.codes.shape[1]
-    scores = np.full(timed.codes.shape, np.nan)
+    # one row per variable (NaN rows for those tested on codes); no columns at all when none is numeric,
+    # since the search then never reads a row
+    numeric = [s is not None for s in timed.scores]
+    scores = np.full(timed.codes.shape if any(numeric) else (len(numeric), 0), np.nan)
     for i, s in enumerate(timed.scores):
         if s is not None:
             scores[i] = s
@@ -114,7 +120,7 @@ def _timeline(call: StageCall) -> dict[str, Any]:
         "search-scores.npy": scores,
         "search-prev.npy": prev,
         "timeline.json": {**timed.summary, "names": timed.names, "cards": timed.cards, "source": timed.source,
-                          "lag": timed.lag, "numeric": [s is not None for s in timed.scores],
+                          "lag": timed.lag, "numeric": numeric,
                           "timed": timed.timeline is not None,
                           "series_length": timed.timeline.series_length if timed.timeline is not None else 0.0},
     }
@@ -201,14 +207,14 @@ _SEARCH_DATA = ("search-codes.npy", "search-scores.npy", "search-prev.npy", "tim
 # The stages in order. A new stage is one entry here plus its function above (see DEVELOPERS.md).
 STAGES: tuple[Stage, ...] = (
     Stage("ingest", _ingest, reads=("input",), settings=("input", "limits"),
-          writes=("ingest.parquet", "ingest-rejected.parquet", "ingest.json")),
-    Stage("clean", _clean, reads=("ingest.parquet", "ingest-rejected.parquet", "ingest.json"),
+          writes=("ingest.parquet", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json")),
+    Stage("clean", _clean, reads=("ingest.parquet", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json"),
           settings=("clean", "columns"),
           writes=("clean.parquet", "clean-times.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("discretise", _discretise,
           reads=("clean.parquet", "quarantined.parquet", "clean-meta.json", "cleaning.json", "reuse_levels"),
           settings=("discretise", "test.missing"),
-          writes=("discretised.parquet", "codes.npy", "levels.json", "discretise.json"),
+          writes=("discretised.parquet", "levels.json", "discretise.json"),
           carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("timeline", _timeline,
           reads=("clean.parquet", "clean-times.parquet", "discretised.parquet", "levels.json", "discretise.json"),

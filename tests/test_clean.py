@@ -308,3 +308,17 @@ def test_summaries_are_plain_json(tmp_path):
     got = clean.run(ing, _cfg(clean={"timestamp_features": True}))
     assert json.loads(json.dumps(got.summary))["rows"]["quarantined"] == 2
     assert json.loads(json.dumps(ing.summary))["rows_read"] == N
+
+
+def test_quarantined_rows_keep_their_file_lines_when_the_ingest_entry_is_reused(tmp_path):
+    """A second run that reuses the cached ingest stage but re-cleans reports the same file lines."""
+    from pipeline.api import run_pipeline
+
+    path = tmp_path / "extract.csv"
+    _with_text().to_csv(path, index=False)
+    first = run_pipeline(_cfg(), path, tmp_path / "runs" / "a")
+    second = run_pipeline(_cfg(clean={"duplicates": "drop"}), path, tmp_path / "runs" / "b")
+    assert second.manifest["stages"]["ingest"]["reused"] and not second.manifest["stages"]["clean"]["reused"]
+    for run in (first, second):
+        lines = pd.read_parquet(run.out_dir / "rejected.parquet")["line"].tolist()
+        assert lines == [5, 15]  # rows 3 and 13 sit on lines 5 and 15 of the file (line 1 is the header)

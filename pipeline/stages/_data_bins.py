@@ -58,9 +58,9 @@ def fresh(
     if kind == "categorical":
         _refuse_binning(name, kind, method)
         return _text_levels(name, values, max_levels, order_hint)
-    x = values.to_numpy(dtype=float, na_value=np.nan)
-    present = x[np.isfinite(x)]
+    x = values.to_numpy() if values.dtype == np.float64 else values.to_numpy(dtype=float, na_value=np.nan)
     method = method or settings.default  # type: ignore[assignment]
+    present = x[np.isfinite(x)] if method != "fixed" else x  # fixed cut points need no look at the values
     uniques = None
     if method == "auto":
         method = "quantile"
@@ -137,7 +137,12 @@ def _quantile_cuts(present: np.ndarray, bins: int) -> list[float]:
 
 def apply_cuts(x: np.ndarray, cuts: list[float]) -> np.ndarray:
     """Bin index of each value (-1 for missing) for the cut points `cuts`."""
-    codes = np.searchsorted(np.asarray(cuts, dtype=float), x, side="right").astype(np.int64)
+    if len(cuts) <= 8:  # the number of cut points at or below each value, one comparison per cut point
+        codes = np.zeros(x.shape, dtype=np.int64)
+        for c in cuts:
+            codes += x >= float(c)
+    else:
+        codes = np.searchsorted(np.asarray(cuts, dtype=float), x, side="right").astype(np.int64)
     codes[~np.isfinite(x)] = -1
     return codes
 

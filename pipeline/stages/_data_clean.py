@@ -44,6 +44,10 @@ class Typed:
     bad_values: list = field(default_factory=list)
     non_finite: int = 0
     notes: list = field(default_factory=list)
+    # a column read from text: the code of each row's distinct text (-1: no value) and the label of
+    # each code (None: missing); its values are ``labels[codes]``, counted without hashing them again
+    codes: np.ndarray | None = None
+    labels: np.ndarray | None = None
 
 
 # ----------------------------------------------------------------------------- inference
@@ -80,7 +84,10 @@ def _from_bool(name: str, series: pd.Series, declared: str | None) -> Typed:
 
 
 def _from_number(name: str, series: pd.Series, declared: str | None) -> Typed:
-    arr = series.to_numpy(dtype=float, na_value=np.nan)
+    if series.dtype == np.float64:  # NaN already marks a missing value: no filled copy
+        arr = series.to_numpy()
+    else:
+        arr = series.to_numpy(dtype=float, na_value=np.nan)
     infinite = np.isinf(arr)
     non_finite = int(infinite.sum())
     if non_finite:
@@ -213,7 +220,8 @@ def _from_text(
     labels = np.asarray(text, dtype=object).copy()
     labels[missing] = None
     values = pd.Series(_take(labels, codes, None), index=series.index, dtype=object)
-    typed = Typed(name, "categorical", values, declared is not None, non_finite=non_finite)
+    typed = Typed(name, "categorical", values, declared is not None, non_finite=non_finite,
+                  codes=codes, labels=labels)
     if nul:  # a NUL byte is never part of a level: it would break every text format downstream
         typed.notes.append("NUL bytes removed from its values")
     return typed
@@ -291,11 +299,17 @@ def time_features(typed: Typed) -> list[tuple[Typed, list[str]]]:
 
 
 def decide(
-    typed: Typed, values: pd.Series, settings: CleanSettings, has_features: bool
+    typed: Typed, values: pd.Series, settings: CleanSettings, has_features: bool,
+    codes: np.ndarray | None = None,
 ) -> tuple[str | None, pd.Series, dict[str, Any]]:
-    """The drop reason (None: kept), the final values and the facts for the column summary."""
+    """The drop reason (None: kept), the final values and the facts for the column summary.
+
+    `codes`: ``typed.codes`` on the same rows as `values`, when the column was read from text."""
     n = len(values)
-    missing, distinct = _count(typed.kind, values)
+    if codes is not None and typed.labels is not None and typed.kind == "categorical":
+        missing, distinct = _count_codes(codes, typed.labels)
+    else:
+        missing, distinct = _count(typed.kind, values)
     facts: dict[str, Any] = {"missing": missing, "distinct": distinct, "pooled_levels": 0}
     if typed.kind == "ignore":
         return "declared `type: ignore` in `columns:`", values, facts
@@ -358,16 +372,25 @@ def decide(
     return None, values, facts
 
 
+def _count_codes(codes: np.ndarray, labels: np.ndarray) -> tuple[int, int]:
+    """Missing and distinct counts of ``labels[codes]`` from the codes (one count per code)."""
+    counts = np.bincount(codes + 1, minlength=len(labels) + 1)  # codes[i] == -1: no value
+    no_label = np.fromiter((lv is None for lv in labels), dtype=bool, count=len(labels))
+    missing = int(counts[0]) + int(counts[1:][no_label].sum())
+    return missing, len(set(labels[(counts[1:] > 0) & ~no_label].tolist()))
+
+
 def _count(kind: str, values: pd.Series) -> tuple[int, int]:
     """Missing and distinct counts, computed the cheap way for each kind."""
     if kind == "numeric":
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
         arr = values.to_numpy(dtype=float)
         nan = np.isnan(arr)
-        # Arrow's hash count (a few times quicker than pandas' unique); + 0.0 makes -0.0 count as 0.0
-        return int(nan.sum()), int(pc.count_distinct(pa.array(arr[~nan] + 0.0)).as_py())
+        n_nan = int(nan.sum())
+        # distinct values of a sorted copy (-0.0 equals 0.0): numpy's vectorised sort is quicker than
+        # hashing a million floats with Arrow or pandas
+        ordered = np.sort(arr[~nan] if n_nan else arr)
+        distinct = int(ordered.size > 0) + int(np.count_nonzero(ordered[1:] != ordered[:-1]))
+        return n_nan, distinct
     try:
         codes, uniques = pd.factorize(values, use_na_sentinel=True)
     except TypeError:

@@ -8,13 +8,14 @@ from __future__ import annotations
 
 import codecs
 import csv
+import functools
 import glob
 import io
 import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 from urllib.parse import unquote
 
 import numpy as np
@@ -317,6 +318,13 @@ def nonempty_lines(data: bytes) -> np.ndarray:
     return np.flatnonzero(length > 0).astype(np.int64) + 1
 
 
+def _line_count(data: bytes) -> int:
+    """The number of lines, blank ones included (a last line without a line break counts)."""
+    if not data:
+        return 0
+    return data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
+
+
 _THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; the check would cost more
 
 
@@ -329,26 +337,40 @@ def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
     if q not in data:
         return True
     b = np.frombuffer(data, dtype=np.uint8)
-    if _break_in_quotes is not None:
-        return not _break_in_quotes(b, q[0])
-    quotes_before = np.cumsum(b == q[0], dtype=np.int64)  # without numba: one big array
-    return not bool((quotes_before[b == 10] & 1).any())
+    kernel = _quote_kernel()
+    if kernel is not None:
+        return not kernel(b, q[0])
+    # without numba: the parity of the quotes before each line break, a block at a time
+    inside = False
+    for start in range(0, b.size, 1 << 22):
+        block = b[start:start + (1 << 22)]
+        parity = np.logical_xor.accumulate(block == q[0])
+        if inside:
+            parity = ~parity
+        if parity[block == 10].any():
+            return False
+        inside = bool(parity[-1])
+    return True
 
 
-try:  # pragma: no cover - depends on the install
-    from numba import njit
+def _break_in_quotes(b: np.ndarray, q: int) -> bool:
+    inside = False
+    for x in b:
+        if x == q:
+            inside = not inside
+        elif x == 10 and inside:
+            return True
+    return False
 
-    @njit(cache=True, nogil=True)
-    def _break_in_quotes(b: np.ndarray, q: int) -> bool:
-        inside = False
-        for x in b:
-            if x == q:
-                inside = not inside
-            elif x == 10 and inside:
-                return True
-        return False
-except ImportError:  # pragma: no cover
-    _break_in_quotes = None  # type: ignore[assignment]
+
+@functools.lru_cache(maxsize=1)
+def _quote_kernel() -> Callable[[np.ndarray, int], bool] | None:
+    """`_break_in_quotes` compiled (numba is loaded only when a large file holds quotes)."""
+    try:
+        from numba import njit
+    except ImportError:  # pragma: no cover - numba is a dependency
+        return None
+    return njit(cache=True, nogil=True)(_break_in_quotes)  # type: ignore[no-any-return]
 
 
 def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarray:
@@ -454,8 +476,11 @@ def read_csv(
             f"{delimiter!r}; set `input.delimiter` to the character between the fields."
         )
     _check_columns(names, path, limits, wanted)
-    records = nonempty_lines(data)
-    _check_rows(len(records) - int(settings.header), rows_before, path, limits)
+    n_lines = _line_count(data)
+    records: np.ndarray | None = None  # the record lines, found only when not every line is one record
+    if n_lines - int(settings.header) + rows_before > limits.max_rows:  # the count of lines bounds it
+        records = nonempty_lines(data)
+        _check_rows(len(records) - int(settings.header), rows_before, path, limits)
 
     raw_by_name = dict(zip(names, raw_names))
     include = [raw_by_name[n] for n in names if wanted is None or n in wanted]
@@ -509,12 +534,18 @@ def read_csv(
                     "check `input.delimiter` and `input.quote_char`."
                 ) from err
             column_types[include[int(m.group(1))]] = pa.string()
-    frame = table.to_pandas()
+    frame = table.to_pandas(split_blocks=True)  # one block per column: numbers are not copied again
     frame.columns = [n for n in names if wanted is None or n in wanted]
 
     n_records = len(frame) + len(rejected) + int(settings.header)
-    if n_records != len(records) or any(r[0] < 0 for r in rejected):
-        records = _record_start_lines(data.decode("utf-8", "replace"), delimiter, quote or '"')
+    if n_records == n_lines and b"\r" not in data and not any(r[0] < 0 for r in rejected):
+        # every line is one record (a blank line or a value spanning lines would leave fewer records
+        # than lines, and without carriage returns no line holds two)
+        records = np.arange(1, n_lines + 1, dtype=np.int64)
+    else:
+        records = nonempty_lines(data) if records is None else records
+        if n_records != len(records) or any(r[0] < 0 for r in rejected):
+            records = _record_start_lines(data.decode("utf-8", "replace"), delimiter, quote or '"')
     header_rec = 1 if settings.header else 0
     bad_rec = np.asarray([r[0] for r in rejected], dtype=np.int64)
     keep = np.ones(len(records), dtype=bool)
@@ -648,7 +679,7 @@ def _arrow_frame(table: pa.Table) -> pd.DataFrame:
     one type each, so only the nested ones are looked at value by value."""
     while any(pa.types.is_struct(t) for t in table.schema.types):
         table = table.flatten()
-    frame = table.to_pandas()
+    frame = table.to_pandas(split_blocks=True)  # one block per column: numbers are not copied again
     for name, typ in zip(table.column_names, table.schema.types):
         if pa.types.is_nested(typ) or (pa.types.is_dictionary(typ) and pa.types.is_nested(typ.value_type)):
             frame[name] = frame[name].map(_as_text)

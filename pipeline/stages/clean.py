@@ -213,10 +213,12 @@ def _apply_rules(
     kinds: dict[str, str] = {}
     records: list[dict[str, Any]] = []
     has_features = bool(derived)
+    every_row = bool(keep.all())
     for name, col in list(typed.items()) + list(derived.items()):
-        values = col.values if keep.all() else col.values[keep]
+        values = col.values if every_row else col.values[keep]
         values = values.reset_index(drop=True)
-        reason, values, facts = _rules.decide(col, values, cfg.clean, has_features)
+        codes = None if col.codes is None else (col.codes if every_row else col.codes[keep])
+        reason, values, facts = _rules.decide(col, values, cfg.clean, has_features, codes)
         action = "dropped" if reason else ("derived" if name in derived else "kept")
         if reason is None:
             if col.kind == "categorical" and facts["distinct"] > cfg.limits.max_levels:
@@ -225,7 +227,7 @@ def _apply_rules(
                     f"{cfg.limits.max_levels}; declare it `type: ignore` in `columns:`, raise the limit, "
                     "or pool rare levels with `clean.rare_level_min_count`."
                 )
-            out[name] = _final_dtype(col.kind, values)
+            out[name] = _final_dtype(col.kind, values, none_for_missing=col.labels is not None)
             kinds[name] = col.kind
             how = "declared in `columns:`" if col.declared else "inferred from the values"
             reason = "; ".join([f"{col.kind}, {how}"] + col.notes)
@@ -247,11 +249,14 @@ def _apply_rules(
     return out, kinds, records
 
 
-def _final_dtype(kind: str, values: pd.Series) -> pd.Series:
+def _final_dtype(kind: str, values: pd.Series, none_for_missing: bool = False) -> pd.Series:
+    """`none_for_missing`: the values are labels already, None where missing (as read from text)."""
     if kind == "numeric":
         return values.astype("float64")
     if kind == "boolean":
         return values.astype("boolean")
+    if none_for_missing and values.dtype == object:
+        return values
     return values.astype(object).where(values.notna(), None)
 
 

@@ -97,7 +97,11 @@ def run(cleaned: Cleaned, cfg: Config, reuse: dict | None = None) -> Discretised
                 cfg.limits.max_levels,
                 hints.get(name),
             )
-        coded = _bins.attach_missing(coded, values.notna().to_numpy(), cfg.test.missing)
+        if kind in ("categorical", "boolean") and name not in known["levels"]:
+            present = coded.codes >= 0  # fresh levels code exactly the missing values -1
+        else:
+            present = values.notna().to_numpy()
+        coded = _bins.attach_missing(coded, present, cfg.test.missing)
         _bins.check_levels(name, len(coded.levels), cfg.limits.max_levels)
         codes[name] = coded.codes.astype(smallest_int_dtype(len(coded.levels)))
         levels[name], edges[name] = coded.levels, coded.edges
@@ -116,7 +120,7 @@ def run(cleaned: Cleaned, cfg: Config, reuse: dict | None = None) -> Discretised
         "unknown_levels": {n: i["unknown"] for n, i in info.items() if i.get("unknown")},
         "not_in_data": sorted(set(known["levels"]) - set(cleaned.table.columns)),
     }
-    table = pd.DataFrame(codes, index=cleaned.table.index)
+    table = pd.DataFrame(codes, index=cleaned.table.index, copy=False)  # one block per column: no stacking copy
     return Discretised(table, levels, edges, dict(cleaned.kinds), summary)
 
 

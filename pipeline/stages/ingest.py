@@ -105,7 +105,7 @@ def _read_one(
     fmt = _read.detect_format(path, raw[:4096], settings)
     if fmt == "parquet":
         return _read.read_parquet(path, settings, limits, wanted, rows_before)
-    if not raw.strip():
+    if not raw or raw.isspace():  # empty or blank (without copying the bytes)
         raise DataError(f"`{path}` has no data rows (it is empty); check the extract.")
     if fmt == "jsonl":
         return _read.read_jsonl(path, raw, settings, limits, wanted, rows_before)
@@ -124,7 +124,9 @@ def _package(
     _read.check_wanted(wanted, available)
     frames = [p.table for p in parts]
     table = frames[0] if len(frames) == 1 else pd.concat(frames, axis=0, join="outer", sort=False)
-    table = table[[c for c in seen if wanted is None or c in wanted]]
+    columns = [c for c in seen if wanted is None or c in wanted]
+    if columns != list(table.columns):  # no copy of the table when nothing is dropped or reordered
+        table = table[columns]
     rejected = rejected_frame([row for p in parts for row in p.rejected])
     if len(table) == 0:
         first = (

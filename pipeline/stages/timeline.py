@@ -93,11 +93,28 @@ class Timed:
     timeline: Timeline | None
     frame: pd.DataFrame
     summary: dict[str, Any] = field(default_factory=dict)
+    # the numeric columns of `frame` in file order (as cleaned), so `aligned_frame` need not reorder them
+    file_values: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
 
     def aligned_frame(self) -> pd.DataFrame:
         """``timeline.parquet``: one row per coded row in file order (as ``discretised.parquet``) with
         ``series`` and ``order`` (window number within the series; consecutive windows differ by 1) when
         a time column is known, and the raw values of the numeric signals."""
+        kept = [c for c in self.frame.columns if c not in ("row", "series", "time", "previous")]
+        if set(kept) != set(self.file_values):  # a frame built by hand: put every column back in file order
+            return self._aligned_by_reordering()
+        if self.timeline is None:  # rows in file order already: the numeric columns as they are
+            return pd.DataFrame({c: self.file_values[c] for c in kept}, copy=False)
+        back = np.empty_like(self.order)
+        back[self.order] = np.arange(self.order.size)
+        when = pd.DataFrame({"series": self.frame["series"].to_numpy()[back], "time": self.frame["time"].to_numpy()[back]})
+        window_ns = max(float(self.summary.get("window_seconds") or 0.0), 1e-9) * 1e9
+        first = when.groupby("series")["time"].transform("min")
+        order = np.round((when["time"] - first) / window_ns).astype(np.int64)
+        columns = {"order": order.to_numpy(), "series": when["series"].to_numpy(), "time": when["time"].to_numpy()}
+        return pd.DataFrame({**columns, **{c: self.file_values[c] for c in kept}}, copy=False)
+
+    def _aligned_by_reordering(self) -> pd.DataFrame:
         back = np.empty_like(self.order)
         back[self.order] = np.arange(self.order.size)
         out = self.frame.iloc[back].reset_index(drop=True)
@@ -118,15 +135,24 @@ def persistence(codes: np.ndarray, scores: np.ndarray | None, prev: np.ndarray) 
     """Lag-1 persistence of one signal: the autocorrelation of its normal scores for a numeric signal,
     Cohen's kappa of a window against the previous one for a categorical signal."""
     ok = prev >= 0
+    return _pair_persistence(codes, scores, np.flatnonzero(ok), prev[ok])
+
+
+def _pair_persistence(codes: np.ndarray, scores: np.ndarray | None, here: Any, before: Any) -> float:
+    """`persistence` over the row pairs (``here``, ``before``): index arrays, or two slices when each
+    row's previous window is the row before it (no copy then)."""
     if scores is not None:
-        a, b = scores[ok], scores[prev[ok]]
+        a, b = scores[here], scores[before]
         good = np.isfinite(a) & np.isfinite(b)
-        if good.sum() < 3 or a[good].std() == 0 or b[good].std() == 0:
+        if not good.all():
+            a, b = a[good], b[good]
+        if a.size < 3 or a.std() == 0 or b.std() == 0:
             return float("nan")
-        return float(np.corrcoef(a[good], b[good])[0, 1])
-    a, b = codes[ok], codes[prev[ok]]
+        return float(np.corrcoef(a, b)[0, 1])
+    a, b = codes[here], codes[before]
     good = (a >= 0) & (b >= 0)
-    a, b = a[good], b[good]
+    if not good.all():
+        a, b = a[good], b[good]
     if a.size < 3:
         return float("nan")
     k = int(max(a.max(), b.max())) + 1
@@ -255,8 +281,18 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
         # file order stands in for time when measuring persistence (a warning sign only)
         prev = np.arange(n, dtype=np.int64) - 1
         timeline = None
+
+    def in_order(values: np.ndarray) -> np.ndarray:
+        return values[order] if timed_on else values  # untimed rows stay in file order: no copy
+
+    # the pairs (row, its previous window) that persistence compares: two views when untimed
+    if timed_on:
+        here: Any = np.flatnonzero(prev >= 0)
+        before: Any = prev[here]
+    else:
+        here, before = slice(1, None), slice(0, max(n - 1, 0))
     signals = [c for c in codes.columns if cfg.time.test_series or c not in series]
-    base_codes = [codes[c].to_numpy()[order] for c in signals]
+    base_codes = [in_order(codes[c].to_numpy()) for c in signals]
     # a numeric signal is tested on its values, unless the configuration asks for bins or the data
     # hold a few whole numbers coded level by level (codes of a category, as in the benchmark sets)
     binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
@@ -264,12 +300,14 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
     methods = methods or {}
     from ..independence.residual import normal_scores
 
-    base_scores = [normal_scores(table[c].to_numpy(dtype=np.float64)[order])
+    in_file_order = {c: table[c].to_numpy(dtype=np.float64) for c in signals if kinds.get(c) == "numeric"}
+    values = {c: in_order(v) for c, v in in_file_order.items()}  # each numeric column put in order once
+    base_scores = [normal_scores(values[c])
                    if kinds.get(c) == "numeric" and as_numbers and c not in binned
                    and methods.get(c, "quantile") != "categorical" else None for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
-        rho = persistence(c, s, prev)
+        rho = _pair_persistence(c, s, here, before)
         per_signal[name] = {"persistence": None if np.isnan(rho) else round(rho, 4),
                             "n_effective": None if np.isnan(rho) else round(n * (1 - max(rho, 0)) / (1 + max(rho, 0)), 1)}
     summary["signals"] = per_signal
@@ -298,12 +336,11 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
                 all_scores.append(ls)
                 source.append(name)
                 lags.append(k)
-    frame = pd.DataFrame({"row": order.astype(np.int64), "series": series_id.astype(np.int64), "time": t,
-                          "previous": (prev if timed_on else np.full(n, -1)).astype(np.int64)})
-    for name in signals:
-        if kinds.get(name) == "numeric":
-            frame[name] = table[name].to_numpy(dtype=np.float64)[order]
+    columns = {"row": order.astype(np.int64), "series": series_id.astype(np.int64), "time": t,
+               "previous": (prev if timed_on else np.full(n, -1)).astype(np.int64)}
+    columns.update(values)
+    frame = pd.DataFrame(columns, copy=False)
     stacked = np.vstack(all_codes) if all_codes else np.zeros((0, n), dtype=np.int8)
     return Timed(order=order, codes=stacked, scores=all_scores, names=names,
                  cards=[int(cards[s]) for s in source], source=source, lag=lags, timeline=timeline,
-                 frame=frame, summary=summary)
+                 frame=frame, summary=summary, file_values=in_file_order)
