@@ -42,6 +42,8 @@ class Stage:
         needs no earlier entry at all.
     resumable : the stage keeps per-level parts in ``call.work``; an interrupted attempt leaves them
         for the next attempt with the same key.
+    workers : the stage maps work to the pool (``call.env["workers"]``); the pool opens, and its
+        workers warm up, when the first such stage runs (not while the data stages use the cores).
     """
 
     name: str
@@ -51,6 +53,7 @@ class Stage:
     settings: tuple[str, ...] = ()
     carries: tuple[str, ...] = ()
     resumable: bool = False
+    workers: bool = False
 
 
 @dataclass
@@ -141,7 +144,7 @@ class Runner:
         return doc[key] if key else doc
 
     def key(self, stage: Stage) -> str:
-        """hash(version, name, settings slice, keys of what the stage reads)."""
+        """hash(version, name, settings slice, keys of what the stage reads, the files it writes)."""
         if stage.name not in self._keys:
             read_keys = {}
             for name in (*stage.reads, *stage.carries):
@@ -150,7 +153,8 @@ class Runner:
                 else:
                     read_keys[name] = self.key(self._producer_of(name, before=stage))
             self._keys[stage.name] = stable_hash(
-                [self.version, stage.name, {s: self._setting(s) for s in stage.settings}, read_keys]
+                [self.version, stage.name, {s: self._setting(s) for s in stage.settings}, read_keys,
+                 list(stage.writes) + list(stage.carries)]  # an entry made with other files is another entry
             )
         return self._keys[stage.name]
 
@@ -238,10 +242,10 @@ class Runner:
 
     def _run(self, stage: Stage, key: str) -> None:
         """Pull the stage's inputs, run it under its entry's lock and write its entry."""
-        workers = self.env.get("workers")
-        if workers is not None and hasattr(workers, "prepare"):
-            workers.prepare()  # local workers warm up in the background while this stage runs
         inputs = {name: self.get(name, before=stage) for name in stage.reads}
+        workers = self.env.get("workers")
+        if stage.workers and workers is not None and hasattr(workers, "prepare"):
+            workers.prepare()  # local workers warm up in the background while the stage starts
         carried = {name: self._bytes(name, before=stage) for name in stage.carries}
         self._fresh = {}
         with self._timed(stage.name) as rec, self.cache.writing(stage.name, key, resume=stage.resumable) as work:
