@@ -141,23 +141,22 @@ def _settings(call: StageCall) -> EngineSettings:
 
 def _battery(call: StageCall) -> dict[str, Any]:
     from .stages import battery
-    from .stages._evidence import tests_part
     from .stages.skeleton import state_doc
 
     sig = call["signals"]
     marginal = battery.run(call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
                            call.env["workers"], extras=search_extras(call))
     return {"marginal.parquet": marginal.tests, "state.json": state_doc(marginal.state),
-            "marginal-part.parquet": tests_part(marginal.state.tests)}
+            "marginal-part.parquet": marginal.state.tests.columns().to_arrow()}
 
 
 def _skeleton(call: StageCall) -> dict[str, Any]:
+    from .independence.columns import TestColumns
     from .stages import skeleton
-    from .stages._evidence import records_from_part
     from .stages.skeleton import state_from
 
     sig, cfg, rep = call["signals"], call.cfg, call.env["reporter"]
-    state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
+    state = state_from(call["state.json"], TestColumns.from_arrow(call["marginal-part.parquet"]))
     call.inputs.pop("marginal-part.parquet")
     outcome = skeleton.run(
         call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,

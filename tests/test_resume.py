@@ -11,10 +11,9 @@ import pyarrow.parquet as pq
 from _shared import benchmark_path
 
 from pipeline.independence import EngineSettings
+from pipeline.independence.columns import TestColumns
 from pipeline.search import Knowledge
 from pipeline.stages import battery, skeleton
-from pipeline.stages._evidence import records_from_part
-from pipeline.stages._evidence import tests_part as columns_of  # (not collected as a test)
 from pipeline.stages.skeleton import state_doc, state_from
 
 
@@ -70,6 +69,6 @@ def test_state_round_trips_through_its_document_and_part():
     codes, names, cards = _child()
     marginal = battery.run(codes, names, cards, EngineSettings(), Knowledge())
     doc = json.loads(json.dumps(state_doc(marginal.state)))
-    back = state_from(doc, records_from_part(columns_of(marginal.state.tests)))
+    back = state_from(doc, TestColumns.from_arrow(marginal.state.tests.columns().to_arrow()))
     assert back.edges == marginal.state.edges and back.level == marginal.state.level
-    assert [t.result for t in back.tests] == [t.result for t in marginal.state.tests]
+    assert back.tests.columns().results(names) == marginal.state.tests.columns().results(names)
