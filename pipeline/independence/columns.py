@@ -276,7 +276,8 @@ def _replace(t: TestColumns, **changes: Any) -> TestColumns:
 
 
 class TestLog:
-    """The tests of a search so far: tables appended level by level (no copy until `columns`)."""
+    """The tests of a search: tables appended level by level, never copied into one (a 10,000,000-test
+    search would need twice its memory for that). Reads go field by field (`field`, `text`)."""
 
     __test__ = False  # not a pytest class
 
@@ -302,11 +303,47 @@ class TestLog:
         return TestColumns.concat(out)
 
     def copy(self) -> "TestLog":
+        """A new log over the same (never changed) tables."""
         return TestLog(self.parts)
 
     def columns(self) -> TestColumns:
-        """Every test as one table."""
+        """Every test as one table (a copy: for small searches and checks)."""
         return TestColumns.concat(self.parts)
+
+    def field(self, name: str) -> np.ndarray:
+        """One field of every test: ``x``, ``y``, ``level``, ``phase``, ``given_sizes`` or a numeric field."""
+        if not self.parts:
+            return getattr(TestColumns.empty(), name) if name in _DIRECT else TestColumns.empty().values[name]
+        if name in _DIRECT:
+            return np.concatenate([getattr(p, name) for p in self.parts])
+        return np.concatenate([p.values[name] for p in self.parts])
+
+    @property
+    def given_sizes(self) -> np.ndarray:
+        return self.field("given_sizes")
+
+    def text(self, name: str) -> np.ndarray:
+        """A text field of every test as strings (object array)."""
+        if not self.parts:
+            return np.zeros(0, dtype=object)
+        return np.concatenate([p.text(name) for p in self.parts])
+
+    def given(self, i: int) -> tuple[int, ...]:
+        """The conditioning set of test `i` as indices."""
+        ends = np.cumsum([len(p) for p in self.parts])
+        k = int(np.searchsorted(ends, i, side="right"))
+        return self.parts[k].given(i - (int(ends[k - 1]) if k else 0))
+
+    def results(self, names: Sequence[str]) -> list[CITestResult]:
+        """Every test as a result object (checks and one-off callers; never the search)."""
+        return [r for p in self.parts for r in p.results(names)]
+
+    def equals(self, other: "TestLog | TestColumns") -> bool:
+        """The same tests with the same values (see `TestColumns.equals`)."""
+        return self.columns().equals(other.columns() if isinstance(other, TestLog) else other)
+
+
+_DIRECT = ("x", "y", "level", "phase", "given_sizes")
 
 
 def _slice(t: TestColumns, a: int, b: int) -> TestColumns:

@@ -51,7 +51,7 @@ class SkeletonResult:
     edges: frozenset[Pair]
     separating_sets: dict[Pair, tuple[str, ...]]
     removed_by: dict[Pair, int]  # pair -> row of `tests` of the test that removed it
-    tests: TestColumns  # every test, in the order decided; variables as indices into `names`
+    tests: TestLog  # every test, in the order decided (one table per chunk); variables as indices into `names`
     levels: int  # number of levels run
     disagreements: frozenset[Pair] = frozenset()  # required pairs some test separated; rejected pairs none did
     forbidden: frozenset[Pair] = frozenset()
@@ -303,7 +303,7 @@ def pc_stable_skeleton(
         edges=frozenset(state.edges - rejected),
         separating_sets=dict(state.separating_sets),
         removed_by=dict(state.removed_by),
-        tests=state.tests.columns(),
+        tests=state.tests.copy(),
         levels=state.level,
         disagreements=frozenset(state.disagreements | (state.edges & rejected)),
         forbidden=forbidden,

@@ -10,14 +10,14 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from ..independence.columns import LABELLED, PHASES, TestColumns
+from ..independence.columns import LABELLED, PHASES, TestColumns, TestLog
 from ..independence.result import CITestResult
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
 from ..search.skeleton import SkeletonResult
 
-__all__ = ["with_effect_r", "tests_frame", "tests_table", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS",
+__all__ = ["with_effect_r", "tests_frame", "tests_table", "tests_parquet", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS",
            "TEST_COLUMNS"]
 
 # Fields of a test result kept out of tests.parquet: the pair and set have their own columns, and the
@@ -29,9 +29,9 @@ TEST_COLUMNS = ["test_id", "phase", "level", "var_a", "var_b", "given", "given_s
 ]
 
 
-def tests_table(tests: TestColumns, names: Sequence[str]) -> Any:
+def tests_table(tests: TestColumns, names: Sequence[str], first_id: int = 0) -> Any:
     """The tests as the Arrow table of tests.parquet (`TEST_COLUMNS`): names put in place of the
-    indices and the sets joined with ``;``, column by column."""
+    indices and the sets joined with ``;``, column by column; ``test_id`` counts from `first_id`."""
     import pyarrow as pa
     import pyarrow.compute as pc
 
@@ -42,7 +42,7 @@ def tests_table(tests: TestColumns, names: Sequence[str]) -> Any:
     given = pa.ListArray.from_arrays(pa.array((tests.given_offsets - start).astype(np.int32)), members)
     labels = pa.array(list(tests.labels), type=pa.string())
     cols: dict[str, Any] = {
-        "test_id": pa.array(np.arange(n, dtype=np.int64)),
+        "test_id": pa.array(np.arange(first_id, first_id + n, dtype=np.int64)),
         "phase": pc.take(pa.array(list(PHASES), type=pa.string()), pa.array(tests.phase)),
         "level": pa.array(tests.level.astype(np.int64)),
         "var_a": pc.take(names_arr, pa.array(tests.x)),
@@ -55,9 +55,30 @@ def tests_table(tests: TestColumns, names: Sequence[str]) -> Any:
     return pa.table(cols)
 
 
-def tests_frame(tests: TestColumns, names: Sequence[str]) -> pd.DataFrame:
+def tests_frame(tests: TestColumns | TestLog, names: Sequence[str]) -> pd.DataFrame:
     """One row per test, in the order the tests were decided (`tests_table` as a DataFrame)."""
-    return tests_table(tests, names).to_pandas()
+    return tests_table(tests.columns() if isinstance(tests, TestLog) else tests, names).to_pandas()
+
+
+def tests_parquet(parts: Sequence[TestColumns], names: Sequence[str]) -> bytes:
+    """The bytes of tests.parquet, written table by table (a search level's tests are one row group or
+    more): only the compressed file and one table's text columns are in memory at a time."""
+    import io
+
+    import pyarrow.parquet as pq
+
+    buf = io.BytesIO()
+    first = 0
+    writer = None
+    for part in [p for p in parts if len(p)] or [TestColumns.empty()]:
+        table = tests_table(part, names, first)
+        if writer is None:
+            writer = pq.ParquetWriter(buf, table.schema, compression="zstd")
+        writer.write_table(table)
+        first += len(part)
+    assert writer is not None
+    writer.close()
+    return buf.getvalue()
 
 
 def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
@@ -138,11 +159,12 @@ def evidence_frame(
     pairs, rows = _pair_rows(names)
     n_pairs = len(pairs)
     t = skeleton.tests
-    pid = rows[t.x, t.y] if len(t) else np.zeros(0, dtype=np.int64)
-    v = t.values
+    pid = rows[t.field("x"), t.field("y")]
+    v = {k: t.field(k) for k in ("pvalue", "statistic", "dof", "n", "cmi_bits", "cramers_v", "sparse", "degenerate",
+                                 "policy_applied")}
     pvalue = v["pvalue"]
     n_tests = np.bincount(pid, minlength=n_pairs)
-    sizes = t.given_sizes
+    sizes = t.field("given_sizes")
     max_size = np.full(n_pairs, -1, dtype=np.int64)
     np.maximum.at(max_size, pid, sizes)
     deciding = _first_per_group(pid, -pvalue, n_pairs)  # the first of the largest p-values
@@ -164,7 +186,7 @@ def evidence_frame(
     degenerate, applied = any_of(v["degenerate"]), any_of(v["policy_applied"])
     has = deciding >= 0
     d = np.where(has, deciding, 0)
-    method, correction = t.text("method") if len(t) else np.zeros(0, dtype=object), t.text("correction") if len(t) else np.zeros(0, dtype=object)
+    method, correction = t.text("method"), t.text("correction")
 
     def at(values: np.ndarray, missing: Any) -> list[Any]:
         return np.where(has, values[d], missing).tolist() if len(t) else [missing] * n_pairs

@@ -19,18 +19,19 @@ from ..runs import atomic_write_json
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation, orient
 from ..search.skeleton import SearchState, SignalExtras, SkeletonResult, pc_stable_skeleton
-from ._evidence import evidence_frame, tests_frame
+from ._evidence import evidence_frame, tests_parquet
 
 __all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
 
 
 @dataclass(frozen=True)
 class SearchOutcome:
-    """The skeleton, its orientation and the two tables that explain them."""
+    """The skeleton, its orientation and the two tables that explain them (the tests as the bytes of
+    tests.parquet, written from the search's tables without one table of every test in memory)."""
 
     skeleton: SkeletonResult
     orientation: Orientation | None
-    tests: pd.DataFrame
+    tests: bytes
     evidence: pd.DataFrame
 
 
@@ -161,6 +162,6 @@ def run(
         )
     oriented = TestColumns.from_results(asked_tests, {n: i for i, n in enumerate(names)},
                                         phase=PHASES.index("orientation"))
-    tests = tests_frame(TestColumns.concat([skeleton.tests, oriented]), names)
+    tests = tests_parquet([*skeleton.tests.parts, oriented], names)
     evidence = evidence_frame(skeleton, knowledge, settings.alpha, orientation, stability)
     return SearchOutcome(skeleton=skeleton, orientation=orientation, tests=tests, evidence=evidence)
