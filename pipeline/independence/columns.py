@@ -237,6 +237,10 @@ class TestColumns:
 
         if not isinstance(table, pa.Table):  # a pandas DataFrame: the stage cache hands Parquet back so
             table = _frame_to_arrow(table)
+        for k in LABELLED:  # text first (a part's row groups may each have their own dictionary)
+            col = table.column(k)
+            if pa.types.is_dictionary(col.type):
+                table = table.set_column(table.schema.get_field_index(k), k, col.cast(pa.string()))
         table = table.combine_chunks()
         given = table.column("given").chunk(0) if table.num_rows else pa.array([], type=pa.list_(pa.int32()))
         offsets = given.offsets.to_numpy().astype(np.int64)
@@ -245,10 +249,7 @@ class TestColumns:
         offsets = offsets - offsets[0]
         text = {}
         for k in LABELLED:
-            col = table.column(k)
-            if pa.types.is_dictionary(col.type):
-                col = col.cast(pa.string())
-            text[k] = pc.fill_null(col, "").to_numpy(zero_copy_only=False)
+            text[k] = pc.fill_null(table.column(k), "").to_numpy(zero_copy_only=False)
         return cls.build(table.column("x").to_numpy(), table.column("y").to_numpy(), offsets, flat,
                          {k: table.column(k).to_numpy(zero_copy_only=False) for k in VALUE_TYPES}, text,
                          level=table.column("level").to_numpy(), phase=table.column("phase").to_numpy())
@@ -293,14 +294,14 @@ class TestLog:
             self.parts.append(table)
             self._n += len(table)
 
-    def since(self, start: int) -> TestColumns:
-        """The tests from row `start` on, as one table (the new part of a checkpoint)."""
+    def since(self, start: int) -> list[TestColumns]:
+        """The tables of the tests from row `start` on (the new tests of a checkpoint), not copied."""
         out, seen = [], 0
         for p in self.parts:
             if seen + len(p) > start:
                 out.append(p if seen >= start else _slice(p, start - seen, len(p)))
             seen += len(p)
-        return TestColumns.concat(out)
+        return out
 
     def copy(self) -> "TestLog":
         """A new log over the same (never changed) tables."""
@@ -333,6 +334,20 @@ class TestLog:
         ends = np.cumsum([len(p) for p in self.parts])
         k = int(np.searchsorted(ends, i, side="right"))
         return self.parts[k].given(i - (int(ends[k - 1]) if k else 0))
+
+    def take(self, name: str, rows: np.ndarray) -> np.ndarray:
+        """One field (as in `field`, or a text field) at the given rows of the whole log."""
+        rows = np.asarray(rows, dtype=np.int64)
+        ends = np.cumsum([len(p) for p in self.parts], dtype=np.int64)
+        part_of = np.searchsorted(ends, rows, side="right")
+        def column(p: TestColumns) -> np.ndarray:
+            return p.text(name) if name in LABELLED else getattr(p, name) if name in _DIRECT else p.values[name]
+
+        out = np.empty(rows.size, dtype=column(self.parts[0] if self.parts else TestColumns.empty()).dtype)
+        for k in np.unique(part_of).tolist():
+            sel = part_of == k
+            out[sel] = column(self.parts[k])[rows[sel] - (ends[k - 1] if k else 0)]
+        return out
 
     def results(self, names: Sequence[str]) -> list[CITestResult]:
         """Every test as a result object (checks and one-off callers; never the search)."""

@@ -143,6 +143,8 @@ def level_candidates(pairs: Sequence[tuple[int, int]], adjacency: np.ndarray, ra
     )
 
 
+_CHUNK_SETS = 250_000  # candidate sets per task at most: a task's arrays stay small however big the level
+
 _WORKER_ENGINES: dict[Any, "CIEngine | MixedEngine"] = {}
 
 
@@ -271,7 +273,8 @@ def pc_stable_skeleton(
             break
         if progress is not None:
             progress(level, len(work))
-        chunks = work.split(1 if width <= 1 else min(len(work), 4 * width))
+        n_sets = int(work.bounds[-1])
+        chunks = work.split(max(1 if width <= 1 else min(len(work), 4 * width), -(-n_sets // _CHUNK_SETS)))
         del work
         if context is None:
             outcome = [_battery_worker(shared, c) for c in chunks]

@@ -159,44 +159,55 @@ def evidence_frame(
     pairs, rows = _pair_rows(names)
     n_pairs = len(pairs)
     t = skeleton.tests
-    pid = rows[t.field("x"), t.field("y")]
-    v = {k: t.field(k) for k in ("pvalue", "statistic", "dof", "n", "cmi_bits", "cramers_v", "sparse", "degenerate",
-                                 "policy_applied")}
-    pvalue = v["pvalue"]
-    n_tests = np.bincount(pid, minlength=n_pairs)
-    sizes = t.field("given_sizes")
+    # one pass over the search's tables (one at a time: no column of every test is made)
+    n_tests = np.zeros(n_pairs, dtype=np.int64)
     max_size = np.full(n_pairs, -1, dtype=np.int64)
-    np.maximum.at(max_size, pid, sizes)
-    deciding = _first_per_group(pid, -pvalue, n_pairs)  # the first of the largest p-values
+    deciding = np.full(n_pairs, -1, dtype=np.int64)  # the first of the largest p-values
+    best = np.full(n_pairs, -np.inf)
+    marginal = np.full(n_pairs, -1, dtype=np.int64)
+    seen = {k: np.zeros(n_pairs, dtype=bool) for k in ("sparse_above", "sparse_below", "degenerate", "policy_applied")}
+    base = 0
+    for part in t.parts:
+        pid = rows[part.x, part.y]
+        v = part.values
+        sizes = part.given_sizes
+        n_tests += np.bincount(pid, minlength=n_pairs)
+        np.maximum.at(max_size, pid, sizes)
+        first = _first_per_group(pid, -v["pvalue"], n_pairs)
+        found = first >= 0
+        p_here = np.where(found, v["pvalue"][np.maximum(first, 0)], -np.inf)
+        better = found & ((deciding < 0) | (p_here > best))
+        deciding[better], best[better] = base + first[better], p_here[better]
+        empty = np.flatnonzero(sizes == 0)
+        if empty.size:
+            first0 = _first_per_group(pid[empty], None, n_pairs)
+            new = (marginal < 0) & (first0 >= 0)
+            marginal[new] = base + empty[first0[new]]
+        above = v["pvalue"] > alpha
+        for key, flag in (("sparse_above", v["sparse"] & above), ("sparse_below", v["sparse"] & ~above),
+                          ("degenerate", v["degenerate"]), ("policy_applied", v["policy_applied"])):
+            seen[key] |= np.bincount(pid[flag], minlength=n_pairs) > 0
+        base += len(part)
     index = {name: i for i, name in enumerate(names)}
     for pair, removed_at in skeleton.removed_by.items():
         deciding[rows[index[pair[0]], index[pair[1]]]] = removed_at
-    empty = np.flatnonzero(sizes == 0)
-    marginal = np.full(n_pairs, -1, dtype=np.int64)
-    if empty.size:
-        first = _first_per_group(pid[empty], None, n_pairs)
-        marginal[first >= 0] = empty[first[first >= 0]]
-
-    def any_of(flag: np.ndarray) -> np.ndarray:
-        return np.bincount(pid[flag], minlength=n_pairs) > 0
-
-    above = pvalue > alpha
-    sparse = v["sparse"]
-    sparse_above, sparse_below = any_of(sparse & above), any_of(sparse & ~above)
-    degenerate, applied = any_of(v["degenerate"]), any_of(v["policy_applied"])
     has = deciding >= 0
-    d = np.where(has, deciding, 0)
-    method, correction = t.text("method"), t.text("correction")
+    rows_at = deciding[has]
 
-    def at(values: np.ndarray, missing: Any) -> list[Any]:
-        return np.where(has, values[d], missing).tolist() if len(t) else [missing] * n_pairs
+    def at(name: str, missing: Any) -> list[Any]:
+        out = np.full(n_pairs, missing, dtype=object)
+        out[has] = t.take(name, rows_at)
+        return out.tolist()
 
     cols = {
-        "pvalue": at(pvalue, np.nan), "statistic": at(v["statistic"], np.nan), "dof": at(v["dof"], 0),
-        "n": at(v["n"], 0), "level": at(sizes, -1), "method": at(method, ""), "cmi_bits": at(v["cmi_bits"], np.nan),
-        "correction": at(correction, "none"), "dec_sparse": at(sparse, False),
+        "pvalue": at("pvalue", np.nan), "statistic": at("statistic", np.nan), "dof": at("dof", 0),
+        "n": at("n", 0), "level": at("given_sizes", -1), "method": at("method", ""), "cmi_bits": at("cmi_bits", np.nan),
+        "correction": at("correction", "none"), "dec_sparse": at("sparse", False),
     }
-    cramers = np.where(marginal >= 0, v["cramers_v"][np.maximum(marginal, 0)], np.nan) if len(t) else np.full(n_pairs, np.nan)
+    cramers = np.full(n_pairs, np.nan)
+    cramers[marginal >= 0] = t.take("cramers_v", marginal[marginal >= 0])
+    sparse_above, sparse_below = seen["sparse_above"], seen["sparse_below"]
+    degenerate, applied = seen["degenerate"], seen["policy_applied"]
     out_rows = []
     for r, (a, b) in enumerate(pairs):
         pair = (a, b)

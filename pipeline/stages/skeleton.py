@@ -72,7 +72,10 @@ def _save_level(folder: Path, state: SearchState, first_new: int, parts: list[st
 
     part = f"level-{state.level - 1:04d}.parquet"
     tmp = folder / f".{part}.tmp"
-    pq.write_table(state.tests.since(first_new).to_arrow(), tmp, compression="zstd")
+    tables = state.tests.since(first_new) or [TestColumns.empty()]
+    with pq.ParquetWriter(tmp, tables[0].to_arrow().schema, compression="zstd") as writer:
+        for table in tables:  # one table at a time: the level is never copied whole
+            writer.write_table(table.to_arrow())
     tmp.replace(folder / part)
     parts.append(part)
     atomic_write_json(folder / _STATE, {**state_doc(state), "parts": parts})
