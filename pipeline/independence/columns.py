@@ -42,6 +42,7 @@ VALUE_TYPES: dict[str, Any] = {
     "policy_applied": np.bool_, "permutations": np.int64, "n_effective": np.float64,
 }
 LABELLED = ("method", "policy", "correction")  # text fields: int8 codes into `labels`
+_STORED = {**VALUE_TYPES, "dof": np.int32, "permutations": np.int32}  # kept narrower than written (they fit)
 _INDEX = np.int32
 NAN = float("nan")  # one object for every NaN a row gives back, so equal results compare equal
 _RESULT_FIELDS = tuple(f.name for f in fields(CITestResult))
@@ -76,10 +77,10 @@ class TestColumns:
 
     @property
     def nbytes(self) -> int:
-        """Bytes held by the arrays."""
+        """Bytes held by the arrays (a column of one repeated value counts one value)."""
         arrays = [self.x, self.y, self.given_offsets, self.given_flat, self.level, self.phase,
                   *self.values.values(), *self.codes.values()]
-        return int(sum(a.nbytes for a in arrays))
+        return int(sum(a.itemsize if (a.size > 1 and a.strides[0] == 0) else a.nbytes for a in arrays))
 
     # ---- building ------------------------------------------------------------------------------
 
@@ -112,11 +113,27 @@ class TestColumns:
         return cls(
             x=x, y=np.asarray(y, dtype=_INDEX), given_offsets=offsets,
             given_flat=np.asarray(given_flat, dtype=_INDEX),
-            level=(sizes if level is None else np.broadcast_to(np.asarray(level), (n,))).astype(np.int16),
-            phase=(np.where(sizes == 0, 0, 1) if phase is None else np.broadcast_to(np.asarray(phase), (n,))).astype(np.int8),
-            values={k: np.asarray(values[k], dtype=t).reshape(n) for k, t in VALUE_TYPES.items()},
-            codes=codes, labels=tuple(labels),
+            level=_compact((sizes if level is None else np.broadcast_to(np.asarray(level), (n,))).astype(np.int16)),
+            phase=_compact((np.where(sizes == 0, 0, 1) if phase is None else
+                            np.broadcast_to(np.asarray(phase), (n,))).astype(np.int8)),
+            values={k: _compact(np.asarray(values[k], dtype=t).reshape(n)) for k, t in _STORED.items()},
+            codes={k: _compact(c) for k, c in codes.items()}, labels=tuple(labels),
         )
+
+    def __getstate__(self) -> dict[str, Any]:  # a column of one repeated value travels as that value
+        state = dict(self.__dict__)
+        for key in ("level", "phase"):
+            state[key] = _pack(state[key])
+        state["values"] = {k: _pack(a) for k, a in self.values.items()}
+        state["codes"] = {k: _pack(a) for k, a in self.codes.items()}
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        for key in ("level", "phase"):
+            state[key] = _unpack(state[key])
+        state["values"] = {k: _unpack(a) for k, a in state["values"].items()}
+        state["codes"] = {k: _unpack(a) for k, a in state["codes"].items()}
+        self.__dict__.update(state)
 
     @classmethod
     def empty(cls) -> "TestColumns":
@@ -164,7 +181,7 @@ class TestColumns:
             given_offsets=offsets.astype(np.int64),
             given_flat=np.concatenate([t.given_flat[t.given_offsets[0]:t.given_offsets[-1]] for t in tables]),
             level=np.concatenate([t.level for t in tables]), phase=np.concatenate([t.phase for t in tables]),
-            values={k: np.concatenate([t.values[k] for t in tables]) for k in VALUE_TYPES},
+            values={k: np.concatenate([t.values[k] for t in tables]) for k in _STORED},
             codes={k: np.concatenate([r[t.codes[k]] for t, r in zip(tables, remaps)]) for k in LABELLED},
             labels=tuple(labels),
         )
@@ -253,6 +270,24 @@ class TestColumns:
         return cls.build(table.column("x").to_numpy(), table.column("y").to_numpy(), offsets, flat,
                          {k: table.column(k).to_numpy(zero_copy_only=False) for k in VALUE_TYPES}, text,
                          level=table.column("level").to_numpy(), phase=table.column("phase").to_numpy())
+
+
+def _compact(a: np.ndarray) -> np.ndarray:
+    """`a` itself, or, when every value is the same, a read-only view of one copy of that value
+    (a column a table's tests share, e.g. ``permutations`` or a conditional test's NaN Cramer's V)."""
+    if a.size < 2:
+        return a
+    first = a[:1]
+    same = (a == first) | (np.isnan(a) & np.isnan(first)) if a.dtype.kind == "f" else a == first
+    return np.broadcast_to(first.copy(), a.shape) if bool(same.all()) else a
+
+
+def _pack(a: np.ndarray) -> Any:
+    return ("same", a[:1].copy(), a.shape[0]) if a.ndim == 1 and a.size > 1 and a.strides[0] == 0 else a
+
+
+def _unpack(a: Any) -> np.ndarray:
+    return np.broadcast_to(a[1], (a[2],)) if isinstance(a, tuple) else a
 
 
 def _frame_to_arrow(frame: Any) -> Any:

@@ -10,7 +10,7 @@ from typing import Any, Sequence
 import numpy as np
 import pandas as pd
 
-from ..independence.columns import LABELLED, PHASES, TestColumns, TestLog
+from ..independence.columns import LABELLED, PHASES, VALUE_TYPES, TestColumns, TestLog
 from ..independence.result import CITestResult
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
@@ -51,7 +51,8 @@ def tests_table(tests: TestColumns, names: Sequence[str], first_id: int = 0) -> 
         "given_size": pa.array(tests.given_sizes.astype(np.int64)),
     }
     for name in TEST_COLUMNS[7:]:
-        cols[name] = pc.take(labels, pa.array(tests.codes[name])) if name in LABELLED else pa.array(tests.values[name])
+        cols[name] = (pc.take(labels, pa.array(tests.codes[name])) if name in LABELLED
+                      else pa.array(tests.values[name].astype(VALUE_TYPES[name], copy=False)))
     return pa.table(cols)
 
 
