@@ -320,6 +320,7 @@ class TestLog:
     def __init__(self, parts: Iterable[TestColumns] = ()) -> None:
         self.parts: list[TestColumns] = [p for p in parts if len(p)]
         self._n = sum(len(p) for p in self.parts)
+        self._ends: np.ndarray | None = None
 
     def __len__(self) -> int:
         return self._n
@@ -328,6 +329,14 @@ class TestLog:
         if len(table):
             self.parts.append(table)
             self._n += len(table)
+            self._ends = None
+
+    @property
+    def ends(self) -> np.ndarray:
+        """The row after each table's last row."""
+        if self._ends is None:
+            self._ends = np.cumsum([len(p) for p in self.parts], dtype=np.int64)
+        return self._ends
 
     def since(self, start: int) -> list[TestColumns]:
         """The tables of the tests from row `start` on (the new tests of a checkpoint), not copied."""
@@ -366,14 +375,14 @@ class TestLog:
 
     def given(self, i: int) -> tuple[int, ...]:
         """The conditioning set of test `i` as indices."""
-        ends = np.cumsum([len(p) for p in self.parts])
+        ends = self.ends
         k = int(np.searchsorted(ends, i, side="right"))
         return self.parts[k].given(i - (int(ends[k - 1]) if k else 0))
 
     def take(self, name: str, rows: np.ndarray) -> np.ndarray:
         """One field (as in `field`, or a text field) at the given rows of the whole log."""
         rows = np.asarray(rows, dtype=np.int64)
-        ends = np.cumsum([len(p) for p in self.parts], dtype=np.int64)
+        ends = self.ends
         part_of = np.searchsorted(ends, rows, side="right")
         def column(p: TestColumns) -> np.ndarray:
             return p.text(name) if name in LABELLED else getattr(p, name) if name in _DIRECT else p.values[name]
