@@ -131,7 +131,7 @@ def _by_level(codes, names, cards, ctx, budget: float, max_candidates: int = 5_0
         if not kept:
             break
         state = kept[-1]
-        n_level = sum(1 for t in state.tests if t.level == level)
+        n_level = int((state.tests.field("level") == level).sum())
         rows.append(f"| {level} | {dt:.2f} | {len(state.edges)} | at most {bound:,} | {n_level:,} | "
                     f"{n_level / max(dt, 1e-9):,.0f} |")
         level += 1

@@ -147,24 +147,24 @@ def _settings(call: StageCall) -> EngineSettings:
 
 def _battery(call: StageCall) -> dict[str, Any]:
     from .stages import battery
-    from .stages._evidence import tests_part
     from .stages.skeleton import state_doc
 
     sig = call["signals"]
     marginal = battery.run(call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"],
                            call.env["workers"], extras=search_extras(call))
     return {"marginal.parquet": marginal.tests, "state.json": state_doc(marginal.state),
-            "marginal-part.parquet": tests_part(marginal.state.tests)}
+            # the order-0 tests as columns (variables as indices): the skeleton stage goes on from them
+            "marginal-columns.parquet": marginal.state.tests.columns().to_arrow()}
 
 
 def _skeleton(call: StageCall) -> dict[str, Any]:
+    from .independence.columns import TestColumns
     from .stages import skeleton
-    from .stages._evidence import records_from_part
     from .stages.skeleton import state_from
 
     sig, cfg, rep = call["signals"], call.cfg, call.env["reporter"]
-    state = state_from(call["state.json"], records_from_part(call["marginal-part.parquet"]))
-    call.inputs.pop("marginal-part.parquet")
+    state = state_from(call["state.json"], TestColumns.from_arrow(call["marginal-columns.parquet"]))
+    call.inputs.pop("marginal-columns.parquet")
     outcome = skeleton.run(
         call["search-codes.npy"], sig["names"], sig["cards"], _settings(call), call["knowledge"], state,
         extras=search_extras(call),
@@ -221,8 +221,8 @@ STAGES: tuple[Stage, ...] = (
           settings=("time", "discretise.default", "columns"),
           writes=("timeline.parquet", "search-codes.npy", "search-scores.npy", "search-prev.npy", "timeline.json")),
     Stage("battery", _battery, reads=_SEARCH_DATA, settings=("test",),
-          writes=("marginal.parquet", "marginal-part.parquet", "state.json"), workers=True),
-    Stage("skeleton", _skeleton, reads=(*_SEARCH_DATA, "marginal-part.parquet", "state.json"),
+          writes=("marginal.parquet", "marginal-columns.parquet", "state.json"), workers=True),
+    Stage("skeleton", _skeleton, reads=(*_SEARCH_DATA, "marginal-columns.parquet", "state.json"),
           settings=_SEARCH, writes=("evidence.parquet", "tests.parquet"), resumable=True, workers=True),
     Stage("stability", _stability, reads=(*_SEARCH_DATA, "evidence.parquet"),
           settings=(*_SEARCH, "search.resamples", "search.resample_fraction", "search.resample_method",

@@ -70,7 +70,10 @@ class StageCall:
 
 
 def encode(name: str, value: Any) -> bytes:
-    """The bytes of an artifact, by its file type (Parquet without timestamps, sorted JSON, .npy)."""
+    """The bytes of an artifact, by its file type (Parquet without timestamps, sorted JSON, .npy);
+    bytes are taken as the file itself (a stage that wrote its Parquet file piece by piece)."""
+    if isinstance(value, bytes):
+        return value
     if name.endswith(".parquet"):
         import pyarrow as pa
         import pyarrow.parquet as pq
@@ -87,8 +90,6 @@ def encode(name: str, value: Any) -> bytes:
         buf = io.BytesIO()
         np.save(buf, np.ascontiguousarray(value))
         return buf.getvalue()
-    if isinstance(value, bytes):
-        return value
     raise TypeError(f"no file type for artifact `{name}`")
 
 
@@ -266,7 +267,8 @@ class Runner:
                 files[name] = {"size": len(data), "checksum": checksum(data)}
             del encoded
             self.cache.commit(stage.name, key, work, files)
-        self._fresh = {(stage.name, name): outputs[name] for name in stage.writes if not name.endswith(".npy")}
+        self._fresh = {(stage.name, name): outputs[name] for name in stage.writes
+                       if not name.endswith(".npy") and not isinstance(outputs[name], bytes)}  # those decode from the cache
 
     def _damaged(self, stage: Stage, why: CacheDamaged) -> None:
         key = self.key(stage)

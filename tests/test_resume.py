@@ -2,19 +2,20 @@
 
 from __future__ import annotations
 
+import io
 import json
 import shutil
 
 import numpy as np
+import pandas as pd
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from _shared import benchmark_path
 
 from pipeline.independence import EngineSettings
+from pipeline.independence.columns import TestColumns
 from pipeline.search import Knowledge
 from pipeline.stages import battery, skeleton
-from pipeline.stages._evidence import records_from_part
-from pipeline.stages._evidence import tests_part as columns_of  # (not collected as a test)
 from pipeline.stages.skeleton import state_doc, state_from
 
 
@@ -48,7 +49,7 @@ def test_resume_from_each_level_checkpoint_matches_uninterrupted(tmp_path):
         copy = tmp_path / f"resume{i}"
         shutil.copytree(folder, copy)
         resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=copy)
-        assert resumed.tests.equals(full.tests)
+        assert resumed.tests == full.tests  # the bytes of tests.parquet
         assert resumed.evidence.equals(full.evidence)
     # the checkpoint is really what the resumed search starts from: a mark put into the first test of
     # the level-1 part comes back in the tests table (a recomputed search would not have it)
@@ -60,8 +61,9 @@ def test_resume_from_each_level_checkpoint_matches_uninterrupted(tmp_path):
     pq.write_table(table.set_column(table.schema.get_field_index("permutations"), "permutations",
                                     pc.cast(np.array(perms), "int64")), copy / "level-0001.parquet")
     resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=copy)
-    assert resumed.tests["permutations"].iloc[len(marginal.tests)] == 12345
-    assert len(resumed.tests) == len(full.tests)
+    back, whole = pd.read_parquet(io.BytesIO(resumed.tests)), pd.read_parquet(io.BytesIO(full.tests))
+    assert back["permutations"].iloc[len(marginal.tests)] == 12345
+    assert len(back) == len(whole)
 
 
 def test_state_round_trips_through_its_document_and_part():
@@ -70,6 +72,6 @@ def test_state_round_trips_through_its_document_and_part():
     codes, names, cards = _child()
     marginal = battery.run(codes, names, cards, EngineSettings(), Knowledge())
     doc = json.loads(json.dumps(state_doc(marginal.state)))
-    back = state_from(doc, records_from_part(columns_of(marginal.state.tests)))
+    back = state_from(doc, TestColumns.from_arrow(marginal.state.tests.columns().to_arrow()))
     assert back.edges == marginal.state.edges and back.level == marginal.state.level
-    assert [t.result for t in back.tests] == [t.result for t in marginal.state.tests]
+    assert back.tests.columns().results(names) == marginal.state.tests.columns().results(names)

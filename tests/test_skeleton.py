@@ -51,7 +51,7 @@ def test_g_skeleton_equals_causal_learn(name, method):
     cg = pc(raw.astype(float), 0.05, "gsq", stable=True, show_progress=False)
     theirs = cg.G.graph != 0
     res = _run(name, method)
-    assert {rec.result.method for rec in res.tests} == {"g"}
+    assert set(res.tests.text("method")) == {"g"}
     np.testing.assert_array_equal(res.adjacency(), theirs | theirs.T)
 
 
@@ -76,7 +76,7 @@ def test_jobs_one_and_two_agree():
         two = pc_stable_skeleton(codes, names, cards, st, context=ctx)
     assert one.edges == two.edges
     assert one.separating_sets == two.separating_sets
-    assert [repr(t.result) for t in one.tests] == [repr(t.result) for t in two.tests]  # NaN-safe
+    assert one.tests.equals(two.tests)  # NaN-safe
 
 
 def test_required_pair_survives_and_is_reported():
@@ -98,7 +98,7 @@ def test_forbidden_pair_is_never_tested():
     know = Knowledge.build(names, forbidden=[pair])
     res = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), knowledge=know)
     assert pair not in res.edges and pair in res.forbidden
-    assert all(tuple(sorted((t.result.x, t.result.y))) != pair for t in res.tests)
+    assert all(tuple(sorted((r.x, r.y))) != pair for r in res.tests.results(names))
 
 
 def test_rejected_pair_is_tested_then_removed():
@@ -109,7 +109,7 @@ def test_rejected_pair_is_tested_then_removed():
     kept, gone = sorted(plain.edges)[0], sorted(plain.separating_sets)[0]
     know = Knowledge.build(names, rejected=[kept, gone])
     res = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), knowledge=know)
-    assert [repr(t.result) for t in res.tests] == [repr(t.result) for t in plain.tests]  # the same tests
+    assert res.tests.equals(plain.tests)  # the same tests
     assert res.edges == plain.edges - {kept} and res.rejected == {kept, gone}
     assert kept in res.disagreements and gone not in res.disagreements
 
@@ -117,7 +117,7 @@ def test_rejected_pair_is_tested_then_removed():
 def test_max_order_caps_conditioning_sets():
     """max_order = 1 tries no conditioning set larger than one variable."""
     res = _run("child", "g", max_order=1)
-    assert max(len(t.result.given) for t in res.tests) == 1
+    assert int(res.tests.given_sizes.max()) == 1
     assert res.levels <= 2
 
 
@@ -134,4 +134,4 @@ def test_row_compression_does_not_change_the_search():
     fast = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"))
     slow = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g", compress_rows=False, bit_cost=0.0))
     assert fast.edges == slow.edges and fast.separating_sets == slow.separating_sets
-    assert [t.result for t in fast.tests] == [t.result for t in slow.tests]
+    assert fast.tests.results(names) == slow.tests.results(names)

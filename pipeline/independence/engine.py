@@ -38,6 +38,7 @@ from ._kernels import (
     flat_statistics,
     run_groups,
 )
+from .columns import NAN, VALUE_TYPES, Candidates, TestColumns
 from .counting import compress_rows, count_flat, count_table, stratum_codes
 from .permutation import permutation_pvalue
 from .result import CITestResult, decide
@@ -49,11 +50,19 @@ _POLICY_CODE = {"flag": 0, "independent": 1, "dependent": 2}
 _MARGIN = 1e-7  # relative band around the critical value inside which the exact p-value decides
 _SCRATCH_CELLS = 1 << 20  # largest dense table (cells * lanes) the batched kernel counts into
 _FIELDS = tuple(CITestResult.__dataclass_fields__)
-_NAN = float("nan")  # one object, so results with a NaN Cramer's V compare equal
+_NAN = NAN  # one object, so results with a NaN Cramer's V compare equal
 
 
 _new = object.__new__
 _setattr = object.__setattr__
+
+
+def _ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """The indices ``starts[k] .. starts[k] + counts[k] - 1`` of every k, concatenated."""
+    counts = np.asarray(counts, dtype=np.int64)
+    total = int(counts.sum())
+    ends = np.cumsum(counts)
+    return np.arange(total, dtype=np.int64) + np.repeat(np.asarray(starts, dtype=np.int64) - (ends - counts), counts)
 
 
 def _make(values: tuple) -> CITestResult:
@@ -256,7 +265,7 @@ class CIEngine:
         one = self._one
         xs, ys, gs, gn = one["xs"], one["ys"], one["gs"], one["gn"]
         if len(gi) > gs.shape[1]:
-            return self._run_groups([(xi, yi, gi)], [(0, 1)], stop_first=False)[0][0]
+            return self.test_columns([(xi, yi, gi)]).result(0, self.names)
         xs[0], ys[0], gn[0] = xi, yi, len(gi)
         gs[0, : len(gi)] = gi
         arrays = one["arrays"]
@@ -280,11 +289,18 @@ class CIEngine:
         >>> [r.dof for r in CIEngine(d, ["a", "b", "c"]).test_many([(0, 1, ()), (0, 1, (2,))])]
         [1, 1]
         """
+        return self.test_columns(tests).results(self.names)
+
+    def test_columns(self, tests: Sequence[tuple[int | str, int | str, Sequence[int | str]]]) -> TestColumns:
+        """`test_many` as a `TestColumns` table (no Python object per test)."""
         resolved = self._resolve_ints(tests)
         if resolved is None:
             resolved = [self._resolve(x, y, g) for x, y, g in tests]
-        out = self._run_groups(resolved, [(i, i + 1) for i in range(len(resolved))], stop_first=False)
-        return [r[0] for r in out]
+        n = len(resolved)
+        batch = self._batch_of(resolved)
+        table, _ = self._run_groups(*batch, np.arange(n, dtype=np.int64), np.arange(1, n + 1, dtype=np.int64),
+                                    stop_first=False)
+        return table
 
     def _resolve_ints(self, tests) -> list[tuple[int, int, tuple[int, ...]]] | None:
         """`tests` as index triples when every test is ``(int, int, tuple of ints)`` (checked with
@@ -308,23 +324,68 @@ class CIEngine:
             raise ValueError("x, y and the conditioning set must be distinct variables")
         return tests  # type: ignore[return-value]
 
+    @staticmethod
+    def _batch_of(tests: Sequence[tuple[int, int, tuple[int, ...]]]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Resolved ``(x, y, given)`` triples as the kernel's arrays (xs, ys, padded sets, set sizes)."""
+        n_tests = len(tests)
+        xs = np.fromiter((t[0] for t in tests), dtype=np.int64, count=n_tests)
+        ys = np.fromiter((t[1] for t in tests), dtype=np.int64, count=n_tests)
+        gn = np.fromiter((len(t[2]) for t in tests), dtype=np.int64, count=n_tests)
+        width = max(1, int(gn.max(initial=0)))
+        pads = [(0,) * (width - k) for k in range(width + 1)]
+        gs = np.array([t[2] + pads[len(t[2])] for t in tests], dtype=np.int64).reshape(n_tests, width)
+        return xs, ys, gs, gn
+
     def first_independent(
         self, x: int | str, y: int | str, candidates: Sequence[Sequence[int | str]]
     ) -> list[CITestResult]:
         """Test x and y given each candidate set in order up to and including the first independent one."""
-        return self.first_independent_many([(x, y, candidates)])[0]
+        table, _ = self.first_independent_many([(x, y, candidates)])
+        return table.results(self.names)
 
     def first_independent_many(
-        self, pairs: Sequence[tuple[int | str, int | str, Sequence[Sequence[int | str]]]]
-    ) -> list[list[CITestResult]]:
-        """`first_independent` for many pairs at once (PC's battery of one level)."""
+        self, pairs: Candidates | Sequence[tuple[int | str, int | str, Sequence[Sequence[int | str]]]]
+    ) -> tuple[TestColumns, np.ndarray]:
+        """`first_independent` for many pairs at once (PC's battery of one level).
+
+        `pairs` is a `Candidates` table (indices, the search's form) or a list of ``(x, y, sets)``.
+        Returns the tests run as one `TestColumns` table, pair after pair, and the number of tests
+        of each pair (the last of a pair's tests is its first independent one, if any was).
+        """
+        if isinstance(pairs, Candidates):
+            return self._run_candidates(pairs)
         resolved: list[tuple[int, int, tuple[int, ...]]] = []
-        bounds = []
+        starts, stops = [], []
         for x, y, cands in pairs:
-            start = len(resolved)
+            starts.append(len(resolved))
             resolved.extend(self._resolve(x, y, s) for s in cands)
-            bounds.append((start, len(resolved)))
-        return self._run_groups(resolved, bounds, stop_first=True)
+            stops.append(len(resolved))
+        batch = self._batch_of(resolved)
+        return self._run_groups(*batch, np.asarray(starts, dtype=np.int64), np.asarray(stops, dtype=np.int64),
+                                stop_first=True)
+
+    def _run_candidates(self, cand: Candidates) -> tuple[TestColumns, np.ndarray]:
+        """`first_independent_many` of a `Candidates` table: its arrays go to the kernel as they are."""
+        counts = cand.counts.astype(np.int64)
+        xs = np.repeat(cand.x.astype(np.int64), counts)
+        ys = np.repeat(cand.y.astype(np.int64), counts)
+        sets = np.asarray(cand.sets, dtype=np.int64).reshape(xs.size, -1)
+        k = sets.shape[1]
+        p = len(self.names)
+        if xs.size and (min(xs.min(), ys.min(), sets.min(initial=0)) < 0 or max(xs.max(), ys.max(), sets.max(initial=0)) >= p):
+            raise IndexError("a variable index is outside the table")
+        clash = xs == ys
+        for i in range(k):
+            clash |= (sets[:, i] == xs) | (sets[:, i] == ys)
+            for j in range(i + 1, k):
+                clash |= sets[:, i] == sets[:, j]
+        if clash.any():
+            raise ValueError("x, y and the conditioning set must be distinct variables")
+        gs = sets if k else np.zeros((xs.size, 1), dtype=np.int64)
+        gn = np.full(xs.size, k, dtype=np.int64)
+        stops = np.asarray(cand.bounds[1:], dtype=np.int64)
+        starts = np.asarray(cand.bounds[:-1], dtype=np.int64)
+        return self._run_groups(xs, ys, np.ascontiguousarray(gs), gn, starts, stops, stop_first=True)
 
     # ---- the work -----------------------------------------------------------------------------
 
@@ -429,73 +490,70 @@ class CIEngine:
             self._crit = np.ascontiguousarray(np.nan_to_num(crit, nan=0.0), dtype=np.float64)
         return self._crit
 
-    def _run_groups(self, tests, bounds, stop_first: bool) -> list[list[CITestResult]]:
-        """Run groups of tests (``bounds`` index `tests`); with `stop_first` each group stops at its
-        first independent test, decided exactly as ``pvalue > alpha`` after the sparse policy."""
+    def _run_groups(self, xs: np.ndarray, ys: np.ndarray, gs: np.ndarray, gn: np.ndarray, starts: np.ndarray,
+                    stops: np.ndarray, stop_first: bool) -> tuple[TestColumns, np.ndarray]:
+        """Run groups of tests (group ``k`` is tests ``starts[k]:stops[k]``, in order, groups ascending);
+        with `stop_first` each group stops at its first independent test, decided exactly as
+        ``pvalue > alpha`` after the sparse policy. Returns the tests run, in order, and their number
+        per group."""
         st = self.settings
-        out: list[list[CITestResult]] = [[] for _ in bounds]
-        if not tests:
-            return out
+        n_tests = int(xs.shape[0])
+        n_groups = int(starts.shape[0])
+        run = np.zeros(n_tests, dtype=bool)  # tests whose result is kept
+        single: dict[int, CITestResult] = {}  # tests counted one at a time (large tables, permutation)
+        if n_tests == 0:
+            return TestColumns.empty(), np.zeros(n_groups, dtype=np.int64)
+
+        def one(t: int) -> CITestResult:
+            r = single[t] = self._single(int(xs[t]), int(ys[t]), tuple(gs[t, : gn[t]].tolist()))
+            run[t] = True
+            return r
+
         if st.method == "permutation" or not HAVE_NUMBA:
-            for k, (a, b) in enumerate(bounds):
+            for a, b in zip(starts.tolist(), stops.tolist()):
                 for t in range(a, b):
-                    r = self._single(*tests[t])
-                    out[k].append(r)
-                    if stop_first and r.independent:
+                    if one(t).independent and stop_first:
                         break
-            return out
+            return self._columns(xs, ys, gs, gn, run, single, None, starts, stops)
         if not self._kernel_ready:
             self._prepare_kernel()
-        n_tests = len(tests)
-        xs = np.fromiter((t[0] for t in tests), dtype=np.int64, count=n_tests)
-        ys = np.fromiter((t[1] for t in tests), dtype=np.int64, count=n_tests)
-        gn = np.fromiter((len(t[2]) for t in tests), dtype=np.int64, count=n_tests)
-        width = max(1, int(gn.max()))
-        pads = [(0,) * (width - k) for k in range(width + 1)]
-        gs = np.array([t[2] + pads[len(t[2])] for t in tests], dtype=np.int64).reshape(n_tests, width)
         arrays = [np.zeros(n_tests), np.zeros(n_tests)] + [np.zeros(n_tests, dtype=np.int64) for _ in range(5)]
         crit = self._critical(1024) if stop_first else np.zeros(1)
         policy = _POLICY_CODE[st.sparse_policy]
-        pending = [(k, a, b) for k, (a, b) in enumerate(bounds) if b > a]
-        while pending:
-            g_start = np.fromiter((p[1] for p in pending), dtype=np.int64, count=len(pending))
-            g_stop = np.fromiter((p[2] for p in pending), dtype=np.int64, count=len(pending))
+        independent = np.zeros(n_tests, dtype=bool)
+        live = np.nonzero(stops > starts)[0]
+        pos = starts.astype(np.int64).copy()
+        while live.size:
+            g_start = np.ascontiguousarray(pos[live])
+            g_stop = np.ascontiguousarray(stops[live])
             ran, status = run_groups(
                 self._cdata, self._kw, self._cards_arr, self._colmiss, xs, ys, gs, gn, g_start, g_stop,
                 stop_first, st.method == "chi2", crit, _MARGIN, st.alpha, st.min_rows_per_cell, policy,
                 self._cap, self._scratch, self._planes, self._off, self._bit_cost, *arrays,
             )
-            if not stop_first and len(pending) == n_tests and bool((ran == 1).all()):
-                return [[r] for r in self._batch_results(tests, np.arange(n_tests), arrays)]
-            idx = np.concatenate([np.arange(a, a + r) for (_, a, _), r in zip(pending, ran.tolist())])
-            made = dict(zip(idx.tolist(), self._batch_results(tests, idx, arrays)))
+            idx = _ranges(g_start, ran)
+            independent[idx] = self._batch_values(idx, arrays, gn)["independent"]
+            run[idx] = True
             nxt = []
-            for (k, a, b), r, s in zip(pending, ran.tolist(), status.tolist()):
-                done = False
-                for t in range(a, a + r):
-                    res = made[t]
-                    out[k].append(res)
-                    if stop_first and res.independent:
-                        done = True
-                        break
-                if done:
-                    continue
-                pos = a + r
-                if s == GROUP_TOO_BIG:
-                    res = self._single(*tests[pos])
-                    out[k].append(res)
-                    if stop_first and res.independent:
+            for k, a, r, s in zip(live.tolist(), g_start.tolist(), ran.tolist(), status.tolist()):
+                if stop_first and r:
+                    hit = np.flatnonzero(independent[a:a + r])
+                    if hit.size:
+                        run[a + int(hit[0]) + 1:a + r] = False  # decided before the kernel stopped
                         continue
-                    pos += 1
-                if pos < b:
-                    nxt.append((k, pos, b))
-            pending = nxt
-        return out
+                p = a + r
+                if s == GROUP_TOO_BIG:
+                    if one(p).independent and stop_first:
+                        continue
+                    p += 1
+                if p < stops[k]:
+                    pos[k] = p
+                    nxt.append(k)
+            live = np.asarray(nxt, dtype=np.int64)
+        return self._columns(xs, ys, gs, gn, run, single, arrays, starts, stops)
 
-    def _batch_results(self, tests, idx: np.ndarray, arrays) -> list[CITestResult]:
-        """CITestResults of the kernel's numbers at `idx`, with the arithmetic of `_finish`."""
-        if idx.size == 0:
-            return []
+    def _batch_values(self, idx: np.ndarray, arrays, gn: np.ndarray) -> dict[str, np.ndarray]:
+        """The numeric fields of the kernel's tests at `idx`, with the arithmetic of `_finish`."""
         st = self.settings
         g_all, c_all, dof_all, n_all, _, m_all, poss_all = arrays
         g = g_all[idx]
@@ -520,35 +578,41 @@ class CIEngine:
         else:
             applied = np.zeros(idx.size, dtype=bool)
             independent = raw
-        names = self.names
-        method = st.method
-        policy = st.sparse_policy
-        nan = _NAN
-        gcache = self._given_names
-        given_tuple = self._given_tuple
-        new = _new
-        setattr_ = _setattr
-        cls = CITestResult
-        out: list[CITestResult] = []
-        append = out.append
-        for t, s_, d_, p_, n_, cmi_, v_, sp_, dg_, ind_, ap_ in zip(
-            idx.tolist(), stat.tolist(), dof.tolist(), pvalue.tolist(), n.tolist(), cmi.tolist(),
-            v.tolist(), sparse.tolist(), degenerate.tolist(), independent.tolist(), applied.tolist(),
-        ):
-            xi, yi, gi = tests[t]
-            gnames = gcache.get(gi)
-            if gnames is None:
-                gnames = given_tuple(gi)
-            r = new(cls)
-            setattr_(r, "__dict__", {
-                "x": names[xi], "y": names[yi], "given": gnames, "statistic": s_, "dof": d_,
-                "pvalue": p_, "n": n_, "method": method, "cmi_bits": cmi_,
-                "cramers_v": nan if gi else v_, "sparse": sp_, "degenerate": dg_, "independent": ind_,
-                "policy": policy, "policy_applied": ap_, "permutations": 0, "correction": "none",
-                "n_effective": float(n_),
-            })
-            append(r)
-        return out
+        return {
+            "statistic": stat, "dof": dof, "pvalue": pvalue, "n": n, "cmi_bits": cmi,
+            "cramers_v": np.where(gn[idx] > 0, _NAN, v), "sparse": sparse, "degenerate": degenerate,
+            "independent": independent, "policy_applied": applied,
+            "permutations": np.zeros(idx.size, dtype=np.int64), "n_effective": n.astype(np.float64),
+        }
+
+    def _columns(self, xs, ys, gs, gn, run: np.ndarray, single: dict[int, CITestResult], arrays,
+                 starts: np.ndarray, stops: np.ndarray) -> tuple[TestColumns, np.ndarray]:
+        """The kept tests (`run`, in order) as a table, and their number per group."""
+        st = self.settings
+        idx = np.flatnonzero(run)
+        sizes = gn[idx]
+        offsets = np.zeros(idx.size + 1, dtype=np.int64)
+        np.cumsum(sizes, out=offsets[1:])
+        width = gs.shape[1]
+        keep = np.arange(width)[None, :] < sizes[:, None]
+        flat = gs[idx][keep] if idx.size else np.zeros(0, dtype=np.int64)
+        if arrays is not None:
+            values = self._batch_values(idx, arrays, gn)
+        else:
+            values = {k: np.zeros(idx.size, dtype=t) for k, t in VALUE_TYPES.items()}
+        text: dict[str, Any] = {"method": st.method, "policy": st.sparse_policy, "correction": "none"}
+        if single:
+            where = np.searchsorted(idx, np.fromiter(single, dtype=np.int64, count=len(single)))
+            for k in VALUE_TYPES:
+                values[k] = np.asarray(values[k], dtype=VALUE_TYPES[k]).copy()
+                values[k][where] = [getattr(r, k) for r in single.values()]
+            corr = np.full(idx.size, "none", dtype=object)
+            corr[where] = [r.correction for r in single.values()]
+            text["correction"] = corr
+        table = TestColumns.build(xs[idx], ys[idx], offsets, flat, values, text)
+        cum = np.zeros(run.size + 1, dtype=np.int64)
+        np.cumsum(run, out=cum[1:])
+        return table, cum[stops] - cum[starts]
 
     def _test_seed(self, x: int, y: int, given: tuple[int, ...]) -> np.random.SeedSequence:
         a, b = sorted((self.names[x], self.names[y]))

@@ -26,6 +26,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from .columns import Candidates, TestColumns
 from .engine import CIEngine, EngineSettings
 from .permutation import permutation_pvalue
 from .residual import ResidualTester, Timeline, hac_covariance
@@ -97,20 +98,22 @@ class MixedEngine:
         with _one_blas_thread():
             return [self._test(x, y, g) for x, y, g in tests]
 
-    def first_independent_many(self, pairs: Sequence[tuple[Any, Any, Sequence[Sequence[Any]]]]) -> list[list[CITestResult]]:
+    def first_independent_many(self, pairs: Candidates | Sequence[tuple[Any, Any, Sequence[Sequence[Any]]]]
+                               ) -> tuple[TestColumns, np.ndarray]:
         if self.plain:
             return self.categorical.first_independent_many(pairs)
-        out = []
+        out: list[CITestResult] = []
+        counts = []
         with _one_blas_thread():
             for x, y, cands in pairs:
-                results = []
+                before = len(out)
                 for s in cands:
                     r = self._test(x, y, s)
-                    results.append(r)
+                    out.append(r)
                     if r.independent:
                         break
-                out.append(results)
-        return out
+                counts.append(len(out) - before)
+        return TestColumns.from_results(out, self.index), np.asarray(counts, dtype=np.int64)
 
     # -- one test ----------------------------------------------------------------------------------
     def _idx(self, v: int | str) -> int:

@@ -84,6 +84,6 @@ def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
     import numpy as np
 
     bits = frame["cmi_bits"].to_numpy(dtype=np.float64)
-    out = frame.copy()
+    out = frame.copy(deep=False)  # copy-on-write: the columns are shared, not copied (tests.parquet is large)
     out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0)))
     return out

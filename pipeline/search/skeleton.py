@@ -14,20 +14,23 @@ Order of work, fixed and documented so the result never depends on column order 
 
 The distinct rows of the table are found once (when that pays) and shared with every worker; a
 worker runs its whole chunk of pairs in one compiled call (`CIEngine.first_independent_many`).
+A level's candidate sets travel as index arrays (`Candidates`) and its tests come back as columns
+(`TestColumns`), appended to the search's `TestLog`: no Python object per test or per candidate set.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import lru_cache
 from itertools import combinations
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 
 from ..independence._kernels import HAVE_NUMBA
+from ..independence.columns import Candidates, TestColumns, TestLog
 from ..independence.counting import compress_rows
 from ..independence.engine import CIEngine, EngineSettings
-from ..independence.result import CITestResult
 from ..pairs import pair_key
 from ..parallel import ParallelContext
 from .knowledge import Knowledge
@@ -35,17 +38,9 @@ from .knowledge import Knowledge
 if TYPE_CHECKING:  # the mixed engine (and scipy.stats under it) loads only when numeric or timed signals need it
     from ..independence.mixed import MixedEngine
 
-__all__ = ["TestRecord", "SkeletonResult", "SignalExtras", "pc_stable_skeleton", "candidate_sets"]
+__all__ = ["SkeletonResult", "SearchState", "SignalExtras", "pc_stable_skeleton", "candidate_sets", "level_candidates"]
 
 Pair = tuple[str, str]
-
-
-@dataclass(frozen=True)
-class TestRecord:
-    """One test run by the search, with the level it belongs to."""
-
-    level: int
-    result: CITestResult
 
 
 @dataclass(frozen=True)
@@ -55,8 +50,8 @@ class SkeletonResult:
     names: tuple[str, ...]
     edges: frozenset[Pair]
     separating_sets: dict[Pair, tuple[str, ...]]
-    removed_by: dict[Pair, int]  # pair -> index into `tests` of the test that removed it
-    tests: tuple[TestRecord, ...]
+    removed_by: dict[Pair, int]  # pair -> row of `tests` of the test that removed it
+    tests: TestLog  # every test, in the order decided (one table per chunk); variables as indices into `names`
     levels: int  # number of levels run
     disagreements: frozenset[Pair] = frozenset()  # required pairs some test separated; rejected pairs none did
     forbidden: frozenset[Pair] = frozenset()
@@ -79,7 +74,7 @@ class SearchState:
     edges: set[Pair]
     separating_sets: dict[Pair, tuple[str, ...]] = field(default_factory=dict)
     removed_by: dict[Pair, int] = field(default_factory=dict)
-    tests: list[TestRecord] = field(default_factory=list)
+    tests: TestLog = field(default_factory=TestLog)
     disagreements: set[Pair] = field(default_factory=set)
 
 
@@ -100,6 +95,55 @@ def candidate_sets(a: str, b: str, neighbours: dict[str, set[str]], level: int) 
                 out.append(s)
     return out
 
+
+@lru_cache(maxsize=256)
+def _combination_rows(k: int, size: int) -> np.ndarray:
+    """Every size-`size` subset of ``range(k)`` in lexicographic order, one per row (read-only)."""
+    out = np.array(list(combinations(range(k), size)), dtype=np.int32).reshape(-1, size)
+    out.setflags(write=False)
+    return out
+
+
+def level_candidates(pairs: Sequence[tuple[int, int]], adjacency: np.ndarray, rank: np.ndarray, level: int) -> Candidates:
+    """`candidate_sets` of every pair at a level, as arrays of variable indices (`Candidates`).
+
+    `adjacency` is the boolean adjacency matrix frozen for the level, `rank` each variable's place
+    in name order; pairs without a candidate set are left out. The same sets in the same order as
+    `candidate_sets` on the names (checked in tests/test_skeleton.py).
+    """
+    xs, ys, counts, blocks = [], [], [], []
+    member = np.zeros(adjacency.shape[0], dtype=bool)
+    for a, b in pairs:
+        pool_a = np.flatnonzero(adjacency[a])
+        pool_a = pool_a[pool_a != b]
+        pool_a = pool_a[np.argsort(rank[pool_a], kind="stable")]
+        pool_b = np.flatnonzero(adjacency[b])
+        pool_b = pool_b[pool_b != a]
+        pool_b = pool_b[np.argsort(rank[pool_b], kind="stable")]
+        if level == 0:
+            sets = np.zeros((1, 0), dtype=np.int32)
+        else:
+            from_a = pool_a[_combination_rows(pool_a.size, level)] if pool_a.size >= level else np.zeros((0, level), np.int32)
+            from_b = pool_b[_combination_rows(pool_b.size, level)] if pool_b.size >= level else np.zeros((0, level), np.int32)
+            if from_a.shape[0] and from_b.shape[0]:
+                member[pool_a] = True  # a set of b's side is already listed when all of it is a's too
+                from_b = from_b[~member[from_b].all(axis=1)]
+                member[pool_a] = False
+            sets = np.concatenate([from_a, from_b]).astype(np.int32, copy=False) if from_b.shape[0] else from_a.astype(np.int32, copy=False)
+        if sets.shape[0]:
+            xs.append(a)
+            ys.append(b)
+            counts.append(sets.shape[0])
+            blocks.append(sets)
+    bounds = np.zeros(len(counts) + 1, dtype=np.int64)
+    np.cumsum(np.asarray(counts, dtype=np.int64), out=bounds[1:])
+    return Candidates(
+        x=np.asarray(xs, dtype=np.int32), y=np.asarray(ys, dtype=np.int32), bounds=bounds,
+        sets=np.concatenate(blocks) if blocks else np.zeros((0, level), dtype=np.int32),
+    )
+
+
+_CHUNK_SETS = 250_000  # candidate sets per task at most: a task's arrays stay small however big the level
 
 _WORKER_ENGINES: dict[Any, "CIEngine | MixedEngine"] = {}
 
@@ -152,28 +196,12 @@ def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, 
     return engine
 
 
-def _battery_worker(shared: tuple[Any, ...], chunk: list[tuple[str, str, list[tuple[str, ...]]]]):
-    """Test each pair of a chunk along its candidate sets until the first independence."""
+def _battery_worker(shared: tuple[Any, ...], chunk: Candidates) -> tuple[TestColumns, np.ndarray]:
+    """Test each pair of a chunk along its candidate sets until the first independence; the tests run
+    (columns) and their number per pair."""
     data, names, cards, settings, distinct, weights, extras = shared
     packed = None if weights is None else (distinct, weights)
     return _worker_engine(data, names, cards, settings, packed, extras).first_independent_many(chunk)
-
-
-def _chunks(items: list[Any], weights: list[int], n_chunks: int) -> list[list[Any]]:
-    """Split items (kept in order) into about `n_chunks` runs of similar total weight."""
-    if n_chunks <= 1 or len(items) <= 1:
-        return [items]
-    total = sum(weights) or 1
-    target = total / n_chunks
-    chunks: list[list[Any]] = [[]]
-    acc = 0.0
-    for item, w in zip(items, weights):
-        if acc >= target and chunks[-1]:
-            chunks.append([])
-            acc = 0.0
-        chunks[-1].append(item)
-        acc += w
-    return chunks
 
 
 def pc_stable_skeleton(
@@ -231,41 +259,42 @@ def pc_stable_skeleton(
     else:
         state = resume
     width = context.width if context is not None else 1
+    index = {n: i for i, n in enumerate(names)}
+    rank = np.empty(len(names), dtype=np.int64)
+    rank[np.argsort(np.array(names, dtype=object), kind="stable")] = np.arange(len(names))
     while max_order is None or state.level <= max_order:
         level = state.level
-        neighbours: dict[str, set[str]] = {n: set() for n in names}
-        for a, b in state.edges:
-            neighbours[a].add(b)
-            neighbours[b].add(a)
-        work = []
-        for a, b in sorted(state.edges):
-            cands = candidate_sets(a, b, neighbours, level)
-            if cands:
-                work.append((a, b, cands))
-        if not work:
+        adjacency = np.zeros((len(names), len(names)), dtype=bool)
+        ordered = sorted(state.edges)
+        for a, b in ordered:
+            adjacency[index[a], index[b]] = adjacency[index[b], index[a]] = True
+        work = level_candidates([(index[a], index[b]) for a, b in ordered], adjacency, rank, level)
+        if not len(work):
             break
         if progress is not None:
             progress(level, len(work))
-        n_chunks = 1 if width <= 1 else min(len(work), 4 * width)
-        chunks = _chunks(work, [len(w[2]) for w in work], n_chunks)
+        n_sets = int(work.bounds[-1])
+        chunks = work.split(max(1 if width <= 1 else min(len(work), 4 * width), -(-n_sets // _CHUNK_SETS)))
+        del work
         if context is None:
             outcome = [_battery_worker(shared, c) for c in chunks]
         else:
             outcome = context.map(_battery_worker, shared, chunks)
         removals = []
-        for chunk, results_of_chunk in zip(chunks, outcome):
-            for (a, b, _), results in zip(chunk, results_of_chunk):
-                for r in results:
-                    state.tests.append(TestRecord(level=level, result=r))
-                last = results[-1]
-                if last.independent:
-                    pair = (a, b)
-                    if knowledge.is_required(a, b):
-                        state.disagreements.add(pair)
-                    elif pair not in state.removed_by:
-                        removals.append(pair)
-                        state.separating_sets[pair] = last.given
-                        state.removed_by[pair] = len(state.tests) - 1
+        for chunk, (table, counts) in zip(chunks, outcome):
+            first = len(state.tests)
+            state.tests.append(table)
+            last = np.cumsum(counts) - 1  # each pair's last test
+            for k in np.flatnonzero(table.values["independent"][last]).tolist():
+                a, b = names[int(chunk.x[k])], names[int(chunk.y[k])]
+                pair = (a, b)
+                if knowledge.is_required(a, b):
+                    state.disagreements.add(pair)
+                elif pair not in state.removed_by:
+                    removals.append(pair)
+                    state.separating_sets[pair] = tuple(names[g] for g in table.given(int(last[k])))
+                    state.removed_by[pair] = first + int(last[k])
+        del chunks, outcome
         state.edges.difference_update(removals)
         state.level = level + 1
         if on_level is not None:
@@ -277,7 +306,7 @@ def pc_stable_skeleton(
         edges=frozenset(state.edges - rejected),
         separating_sets=dict(state.separating_sets),
         removed_by=dict(state.removed_by),
-        tests=tuple(state.tests),
+        tests=state.tests.copy(),
         levels=state.level,
         disagreements=frozenset(state.disagreements | (state.edges & rejected)),
         forbidden=forbidden,

@@ -1,92 +1,87 @@
-"""Tables of the search: every test run, and one evidence row per pair of signals."""
+"""Tables of the search: every test run, and one evidence row per pair of signals, built from the
+search's test columns (`TestColumns`) without a Python object per test."""
 
 from __future__ import annotations
 
 import dataclasses
 from itertools import combinations
-from operator import attrgetter
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
 import pandas as pd
 
+from ..independence.columns import LABELLED, PHASES, VALUE_TYPES, TestColumns, TestLog
 from ..independence.result import CITestResult, with_effect_r
-from ..pairs import pair_key
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
-from ..search.skeleton import SkeletonResult, TestRecord
+from ..search.skeleton import SkeletonResult
 
-__all__ = ["with_effect_r", "tests_frame", "tests_part", "records_from_part", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS", "TEST_COLUMNS"]
+__all__ = ["with_effect_r", "tests_frame", "tests_table", "tests_parquet", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS",
+           "TEST_COLUMNS"]
 
 # Fields of a test result kept out of tests.parquet: the pair and set have their own columns, and the
 # marginal effect size is an evidence column. Every other field (new ones too) becomes a column.
 _NOT_IN_TESTS = ("x", "y", "given", "cramers_v")
-_ARROW_TYPES = {"float": "float64", "int": "int64", "bool": "bool_", "str": "string"}
-
-
-def _result_fields() -> list[tuple[str, str]]:
-    """(name, arrow type name) of every `CITestResult` field, in declaration order."""
-    out = []
-    for f in dataclasses.fields(CITestResult):
-        kind = f.type if isinstance(f.type, str) else getattr(f.type, "__name__", str(f.type))
-        out.append((f.name, "list" if kind.startswith("tuple") else _ARROW_TYPES[kind]))
-    return out
-
 
 TEST_COLUMNS = ["test_id", "phase", "level", "var_a", "var_b", "given", "given_size"] + [
-    name for name, _ in _result_fields() if name not in _NOT_IN_TESTS
+    f.name for f in dataclasses.fields(CITestResult) if f.name not in _NOT_IN_TESTS
 ]
 
 
-def tests_part(records: Sequence[TestRecord]):
-    """The tests as an Arrow table: ``level`` and every result field (the set as a list), one column
-    per field built in one pass over the records (the checkpoint part of a search level)."""
+def tests_table(tests: TestColumns, names: Sequence[str], first_id: int = 0) -> Any:
+    """The tests as the Arrow table of tests.parquet (`TEST_COLUMNS`): names put in place of the
+    indices and the sets joined with ``;``, column by column; ``test_id`` counts from `first_id`."""
     import pyarrow as pa
+    import pyarrow.compute as pc
 
-    results = [rec.result for rec in records]
-    cols = {"level": pa.array([rec.level for rec in records], type=pa.int64())}
-    for name, kind in _result_fields():
-        values = list(map(attrgetter(name), results))
-        cols[name] = pa.array(values, type=pa.list_(pa.string()) if kind == "list" else getattr(pa, kind)())
+    n = len(tests)
+    names_arr = pa.array(list(names), type=pa.string())
+    start, stop = int(tests.given_offsets[0]), int(tests.given_offsets[-1])
+    members = pc.take(names_arr, pa.array(tests.given_flat[start:stop]))
+    given = pa.ListArray.from_arrays(pa.array((tests.given_offsets - start).astype(np.int32)), members)
+    labels = pa.array(list(tests.labels), type=pa.string())
+    cols: dict[str, Any] = {
+        "test_id": pa.array(np.arange(first_id, first_id + n, dtype=np.int64)),
+        "phase": pc.take(pa.array(list(PHASES), type=pa.string()), pa.array(tests.phase)),
+        "level": pa.array(tests.level.astype(np.int64)),
+        "var_a": pc.take(names_arr, pa.array(tests.x)),
+        "var_b": pc.take(names_arr, pa.array(tests.y)),
+        "given": pc.binary_join(given, ";"),
+        "given_size": pa.array(tests.given_sizes.astype(np.int64)),
+    }
+    for name in TEST_COLUMNS[7:]:
+        cols[name] = (pc.take(labels, pa.array(tests.codes[name])) if name in LABELLED
+                      else pa.array(tests.values[name].astype(VALUE_TYPES[name], copy=False)))
     return pa.table(cols)
 
 
-def records_from_part(table) -> list[TestRecord]:
-    """The test records of a table written by `tests_part` (a resumed search goes on from them)."""
-    import pyarrow as pa
-
-    if isinstance(table, pd.DataFrame):  # as the stage cache hands a Parquet artifact back
-        table = pa.Table.from_pandas(table, preserve_index=False)
-    names = [name for name, _ in _result_fields()]
-    cols = {name: table.column(name).to_pylist() for name in names}
-    cols["given"] = [tuple(g) for g in cols["given"]]
-    levels = table.column("level").to_pylist()
-    return [
-        TestRecord(level=lv, result=CITestResult(**dict(zip(names, values))))
-        for lv, values in zip(levels, zip(*(cols[n] for n in names)))
-    ]
+def tests_frame(tests: TestColumns | TestLog, names: Sequence[str]) -> pd.DataFrame:
+    """One row per test, in the order the tests were decided (`tests_table` as a DataFrame)."""
+    return tests_table(tests.columns() if isinstance(tests, TestLog) else tests, names).to_pandas()
 
 
-def tests_frame(records: Sequence[TestRecord], phases: Sequence[str] | None = None) -> pd.DataFrame:
-    """One row per test, in the order the tests were decided (built column by column)."""
-    import pyarrow.compute as pc
+def tests_parquet(parts: Sequence[TestColumns], names: Sequence[str]) -> bytes:
+    """The bytes of tests.parquet, written table by table (a search level's tests are one row group or
+    more): only the compressed file and one table's text columns are in memory at a time."""
+    import io
 
-    part = tests_part(records)
-    level = part.column("level").to_numpy()
-    given = part.column("given")
-    cols: dict[str, object] = {
-        "test_id": np.arange(len(records), dtype=np.int64),
-        "phase": list(phases) if phases is not None else np.where(level == 0, "battery", "skeleton").astype(object),
-        "level": level,
-        "var_a": part.column("x").to_numpy(zero_copy_only=False),
-        "var_b": part.column("y").to_numpy(zero_copy_only=False),
-        "given": pc.binary_join(given, ";").to_numpy(zero_copy_only=False),
-        "given_size": pc.list_value_length(given).to_numpy().astype(np.int64),
-    }
-    for name in TEST_COLUMNS[7:]:
-        cols[name] = part.column(name).to_numpy(zero_copy_only=False)
-    return pd.DataFrame(cols, columns=TEST_COLUMNS)
+    import pyarrow.parquet as pq
+
+    buf = io.BytesIO()
+    first = 0
+    writer = None
+    for part in [p for p in parts if len(p)] or [TestColumns.empty()]:
+        table = tests_table(part, names, first)
+        if writer is None:
+            writer = pq.ParquetWriter(buf, table.schema, compression="zstd")
+        writer.write_table(table)
+        first += len(part)
+    assert writer is not None
+    writer.close()
+    return buf.getvalue()
+
+
 
 
 EVIDENCE_COLUMNS = [
@@ -115,16 +110,28 @@ def _set_text(given: str) -> str:
     return "{" + ", ".join(given.split(";")) + "}" if given else "no conditioning set"
 
 
-def _sparse_matters(results: Sequence, deciding: object, dependent: bool, alpha: float) -> bool:
-    """True when a sparse table decided the pair's fate or could have flipped it.
+def _pair_rows(names: Sequence[str]) -> tuple[list[tuple[str, str]], np.ndarray]:
+    """The evidence's pairs (``var_a < var_b`` by name, in order) and, for two variable indices, the
+    row of their pair (a matrix)."""
+    order = sorted(range(len(names)), key=lambda i: names[i])
+    rows = np.full((len(names), len(names)), -1, dtype=np.int64)
+    pairs = []
+    for r, (i, j) in enumerate(combinations(order, 2)):
+        rows[i, j] = rows[j, i] = r
+        pairs.append((names[i], names[j]))
+    return pairs, rows
 
-    That is: the deciding test was sparse, or a sparse test's own reading of its p-value (above
-    alpha: no evidence of dependence) differs from where the pair ended (``dependent``: every test
-    kept it). A sparse test that agreed with the outcome, among many, does not count.
-    """
-    if deciding is not None and getattr(deciding, "sparse", False):
-        return True
-    return any(r.sparse and (r.pvalue > alpha) == dependent for r in results)
+
+def _first_per_group(group: np.ndarray, key: np.ndarray | None, n_groups: int) -> np.ndarray:
+    """Per group, the first row (in row order) with the smallest `key` (all rows when None); -1 when empty."""
+    rows = np.arange(group.size)
+    order = np.lexsort((rows, group) if key is None else (rows, key, group))
+    g = group[order]
+    first = np.ones(g.size, dtype=bool)
+    first[1:] = g[1:] != g[:-1]
+    out = np.full(n_groups, -1, dtype=np.int64)
+    out[g[first]] = order[first]
+    return out
 
 
 def evidence_frame(
@@ -134,48 +141,86 @@ def evidence_frame(
     orientation: Orientation | None = None,
     stability: dict[tuple[str, str], float] | None = None,
 ) -> pd.DataFrame:
-    """One row per unordered pair of signals (``var_a < var_b`` by name), linked or not."""
-    by_pair: dict[tuple[str, str], list[int]] = {}
-    for i, rec in enumerate(skeleton.tests):
-        r = rec.result
-        key = pair_key(r.x, r.y)
-        by_pair.setdefault(key, []).append(i)
-    rows = []
-    for a, b in combinations(sorted(skeleton.names), 2):
+    """One row per unordered pair of signals (``var_a < var_b`` by name), linked or not.
+
+    Per pair: the deciding test (the one that removed it, else the first of its largest p-values),
+    its marginal test's Cramer's V, and flags gathered over all its tests, computed on the columns.
+    """
+    names = list(skeleton.names)
+    pairs, rows = _pair_rows(names)
+    n_pairs = len(pairs)
+    t = skeleton.tests
+    # one pass over the search's tables (one at a time: no column of every test is made)
+    n_tests = np.zeros(n_pairs, dtype=np.int64)
+    max_size = np.full(n_pairs, -1, dtype=np.int64)
+    deciding = np.full(n_pairs, -1, dtype=np.int64)  # the first of the largest p-values
+    best = np.full(n_pairs, -np.inf)
+    marginal = np.full(n_pairs, -1, dtype=np.int64)
+    seen = {k: np.zeros(n_pairs, dtype=bool) for k in ("sparse_above", "sparse_below", "degenerate", "policy_applied")}
+    base = 0
+    for part in t.parts:
+        pid = rows[part.x, part.y]
+        v = part.values
+        sizes = part.given_sizes
+        n_tests += np.bincount(pid, minlength=n_pairs)
+        np.maximum.at(max_size, pid, sizes)
+        first = _first_per_group(pid, -v["pvalue"], n_pairs)
+        found = first >= 0
+        p_here = np.where(found, v["pvalue"][np.maximum(first, 0)], -np.inf)
+        better = found & ((deciding < 0) | (p_here > best))
+        deciding[better], best[better] = base + first[better], p_here[better]
+        empty = np.flatnonzero(sizes == 0)
+        if empty.size:
+            first0 = _first_per_group(pid[empty], None, n_pairs)
+            new = (marginal < 0) & (first0 >= 0)
+            marginal[new] = base + empty[first0[new]]
+        above = v["pvalue"] > alpha
+        for key, flag in (("sparse_above", v["sparse"] & above), ("sparse_below", v["sparse"] & ~above),
+                          ("degenerate", v["degenerate"]), ("policy_applied", v["policy_applied"])):
+            seen[key] |= np.bincount(pid[flag], minlength=n_pairs) > 0
+        base += len(part)
+    index = {name: i for i, name in enumerate(names)}
+    for pair, removed_at in skeleton.removed_by.items():
+        deciding[rows[index[pair[0]], index[pair[1]]]] = removed_at
+    has = deciding >= 0
+    rows_at = deciding[has]
+
+    def at(name: str, missing: Any) -> list[Any]:
+        out = np.full(n_pairs, missing, dtype=object)
+        out[has] = t.take(name, rows_at)
+        return out.tolist()
+
+    cols = {
+        "pvalue": at("pvalue", np.nan), "statistic": at("statistic", np.nan), "dof": at("dof", 0),
+        "n": at("n", 0), "level": at("given_sizes", -1), "method": at("method", ""), "cmi_bits": at("cmi_bits", np.nan),
+        "correction": at("correction", "none"), "dec_sparse": at("sparse", False),
+    }
+    cramers = np.full(n_pairs, np.nan)
+    cramers[marginal >= 0] = t.take("cramers_v", marginal[marginal >= 0])
+    sparse_above, sparse_below = seen["sparse_above"], seen["sparse_below"]
+    degenerate, applied = seen["degenerate"], seen["policy_applied"]
+    out_rows = []
+    for r, (a, b) in enumerate(pairs):
         pair = (a, b)
-        idx = by_pair.get(pair, [])
         linked = pair in skeleton.edges
         know = ("required" if knowledge.is_required(a, b) else "forbidden" if knowledge.is_forbidden(a, b)
                 else "rejected" if knowledge.is_rejected(a, b) else "")
-        row: dict[str, object] = {"var_a": a, "var_b": b, "linked": linked, "knowledge": know}
-        results = [skeleton.tests[i].result for i in idx]
-        if pair in skeleton.removed_by:
-            deciding = skeleton.tests[skeleton.removed_by[pair]].result
-        elif results:
-            deciding = max(results, key=lambda r: r.pvalue)  # first of the largest
-        else:
-            deciding = None
-        marginal = next((r for r in results if not r.given), None)
-        row.update(
-            pvalue=deciding.pvalue if deciding else np.nan,
-            statistic=deciding.statistic if deciding else np.nan,
-            dof=deciding.dof if deciding else 0,
-            given=";".join(deciding.given) if deciding else "",
-            n=deciding.n if deciding else 0,
-            level=len(deciding.given) if deciding else -1,
-            method=deciding.method if deciding else "",
-            n_tests=len(results),
-            max_given_size=max((len(r.given) for r in results), default=-1),
-            cmi_bits=deciding.cmi_bits if deciding else np.nan,
-            cramers_v=marginal.cramers_v if marginal else np.nan,
-            sparse=_sparse_matters(results, deciding, linked or pair in skeleton.disagreements, alpha),
-            degenerate=any(r.degenerate for r in results),
-            policy_applied=any(r.policy_applied for r in results),
-            data_disagrees=pair in skeleton.disagreements,
-            orientation=orientation.label(a, b) if (orientation is not None and linked) else "",
-            stability=(stability or {}).get(pair, np.nan),
-            correction=deciding.correction if deciding else "none",  # for the wording only, not a column
-        )
+        dependent = linked or pair in skeleton.disagreements
+        row: dict[str, object] = {
+            "var_a": a, "var_b": b, "linked": linked, "knowledge": know,
+            "pvalue": cols["pvalue"][r], "statistic": cols["statistic"][r], "dof": cols["dof"][r],
+            "given": ";".join(names[g] for g in t.given(int(deciding[r]))) if has[r] else "",
+            "n": cols["n"][r], "level": cols["level"][r], "method": cols["method"][r],
+            "n_tests": int(n_tests[r]), "max_given_size": int(max_size[r]), "cmi_bits": cols["cmi_bits"][r],
+            "cramers_v": float(cramers[r]),
+            # a sparse table decided the pair's fate, or a sparse test read alone would have flipped it
+            "sparse": bool(cols["dec_sparse"][r]) or bool(sparse_above[r] if dependent else sparse_below[r]),
+            "degenerate": bool(degenerate[r]), "policy_applied": bool(applied[r]),
+            "data_disagrees": pair in skeleton.disagreements,
+            "orientation": orientation.label(a, b) if (orientation is not None and linked) else "",
+            "stability": (stability or {}).get(pair, np.nan),
+            "correction": cols["correction"][r],  # for the wording only, not a column
+        }
         flags = []
         for word in ("sparse", "degenerate", "policy_applied", "data_disagrees"):
             if row[word]:
@@ -186,8 +231,8 @@ def evidence_frame(
             flags.append("ambiguous_orientation")
         row["flags"] = ";".join(flags)
         row["explanation"] = _explain(row, alpha)
-        rows.append(row)
-    frame = pd.DataFrame(rows)
+        out_rows.append(row)
+    frame = pd.DataFrame(out_rows)
     if frame.empty:
         frame = pd.DataFrame(columns=EVIDENCE_COLUMNS)
     # q-values over every pair that was tested (linked or separated), each at its deciding p-value

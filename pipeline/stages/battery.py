@@ -43,4 +43,4 @@ def run(
         state = captured[-1]
     else:  # fewer than two signals, or every pair forbidden
         state = SearchState(level=1, edges=set())
-    return Marginal(tests=tests_frame(state.tests), state=state)
+    return Marginal(tests=tests_frame(state.tests.columns(), names), state=state)

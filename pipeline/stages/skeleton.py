@@ -3,34 +3,35 @@ then optional orientation, then the evidence table."""
 
 from __future__ import annotations
 
-import contextlib
-import gc
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
 
+from ..independence.columns import PHASES, TestColumns, TestLog
 from ..independence.engine import CIEngine, EngineSettings
+from ..independence.result import CITestResult
 from ..parallel import ParallelContext
 from ..runs import atomic_write_json
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation, orient
-from ..search.skeleton import SearchState, SignalExtras, SkeletonResult, TestRecord, pc_stable_skeleton
-from ._evidence import evidence_frame, records_from_part, tests_frame, tests_part
+from ..search.skeleton import SearchState, SignalExtras, SkeletonResult, pc_stable_skeleton
+from ._evidence import evidence_frame, tests_parquet
 
 __all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
 
 
 @dataclass(frozen=True)
 class SearchOutcome:
-    """The skeleton, its orientation and the two tables that explain them."""
+    """The skeleton, its orientation and the two tables that explain them (the tests as the bytes of
+    tests.parquet, written from the search's tables without one table of every test in memory)."""
 
     skeleton: SkeletonResult
     orientation: Orientation | None
-    tests: pd.DataFrame
+    tests: bytes
     evidence: pd.DataFrame
 
 
@@ -46,16 +47,16 @@ def state_doc(state: SearchState) -> dict[str, Any]:
     }
 
 
-def state_from(doc: dict[str, Any], records: list[TestRecord]) -> SearchState:
+def state_from(doc: dict[str, Any], tests: TestLog | TestColumns) -> SearchState:
     """A search state back from `state_doc` and its tests."""
-    if int(doc["n_tests"]) != len(records):
-        raise ValueError(f"the state counts {doc['n_tests']} tests, its parts hold {len(records)}")
+    if int(doc["n_tests"]) != len(tests):
+        raise ValueError(f"the state counts {doc['n_tests']} tests, its parts hold {len(tests)}")
     return SearchState(
         level=int(doc["level"]),
         edges={tuple(e) for e in doc["edges"]},  # type: ignore[misc]
         separating_sets={tuple(k): tuple(v) for k, v in doc["separating_sets"]},  # type: ignore[misc]
         removed_by={tuple(k): int(v) for k, v in doc["removed_by"]},  # type: ignore[misc]
-        tests=list(records),
+        tests=tests.copy() if isinstance(tests, TestLog) else TestLog([tests]),
         disagreements={tuple(e) for e in doc["disagreements"]},  # type: ignore[misc]
     )
 
@@ -71,7 +72,10 @@ def _save_level(folder: Path, state: SearchState, first_new: int, parts: list[st
 
     part = f"level-{state.level - 1:04d}.parquet"
     tmp = folder / f".{part}.tmp"
-    pq.write_table(tests_part(state.tests[first_new:]), tmp, compression="zstd")
+    tables = state.tests.since(first_new) or [TestColumns.empty()]
+    with pq.ParquetWriter(tmp, tables[0].to_arrow().schema, compression="zstd") as writer:
+        for table in tables:  # one table at a time: the level is never copied whole
+            writer.write_table(table.to_arrow())
     tmp.replace(folder / part)
     parts.append(part)
     atomic_write_json(folder / _STATE, {**state_doc(state), "parts": parts})
@@ -93,30 +97,12 @@ def _resume(folder: Path, start: SearchState) -> tuple[SearchState, list[str]]:
     if doc is None:
         return start, []
     try:
-        records = list(start.tests)
+        tests = start.tests.copy()
         for part in doc["parts"]:
-            records.extend(records_from_part(pq.read_table(folder / part)))
-        return state_from(doc, records), list(doc["parts"])
+            tests.append(TestColumns.from_arrow(pq.read_table(folder / part)))
+        return state_from(doc, tests), list(doc["parts"])
     except (OSError, ValueError, KeyError, TypeError):
         return start, []  # a checkpoint that does not fit this search: start over
-
-
-@contextlib.contextmanager
-def _cyclic_gc_paused() -> Iterator[None]:
-    """Pause Python's cycle collector while the search runs.
-
-    The search keeps one small result object per test, none of them in a reference cycle; the
-    collector would walk all of them again and again as they pile up (measured: about 15% of the
-    search's CPU at 30,000 tests, and growing with the tests). Reference counting still frees
-    everything; any cycle waits for the collector's next run after the search.
-    """
-    was_on = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if was_on:
-            gc.enable()
 
 
 def run(
@@ -141,9 +127,9 @@ def run(
     `checkpoint` is a folder: after every level its tests are appended there as one Parquet part
     and the state is saved; a search given a folder holding a checkpoint resumes after its last level.
     """
-    m = marginal_state  # its test records are frozen: shared, not copied
+    m = marginal_state  # its test columns are never changed: shared, not copied
     state = SearchState(level=m.level, edges=set(m.edges), separating_sets=dict(m.separating_sets),
-                        removed_by=dict(m.removed_by), tests=list(m.tests), disagreements=set(m.disagreements))
+                        removed_by=dict(m.removed_by), tests=m.tests.copy(), disagreements=set(m.disagreements))
     save = None
     if checkpoint is not None:
         checkpoint.mkdir(parents=True, exist_ok=True)
@@ -154,14 +140,13 @@ def run(
             _save_level(checkpoint, s, written[0], parts)
             written[0] = len(s.tests)
 
-    with _cyclic_gc_paused():
-        skeleton = pc_stable_skeleton(
-            data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
-            resume=state, on_level=save, progress=progress, extras=extras,
-        )
+    skeleton = pc_stable_skeleton(
+        data, names, cards, settings, max_order=max_order, knowledge=knowledge, context=context,
+        resume=state, on_level=save, progress=progress, extras=extras,
+    )
+    del state  # its parts are in `skeleton.tests` now
     orientation = None
-    records = list(skeleton.tests)
-    phases = ["battery" if r.level == 0 else "skeleton" for r in records]
+    asked_tests: list[CITestResult] = []
     if orient_graph:
         engine = extras.engine(data, names, cards, settings, None) if extras is not None else CIEngine(data, names, cards, settings)
         asked: dict[tuple[str, str, tuple[str, ...]], bool] = {}
@@ -170,8 +155,7 @@ def run(
             key = (min(a, c), max(a, c), tuple(sorted(s)))
             if key not in asked:
                 r = engine.test(key[0], key[1], key[2])
-                records.append(TestRecord(level=len(s), result=r))
-                phases.append("orientation")
+                asked_tests.append(r)
                 asked[key] = r.independent
             return asked[key]
 
@@ -179,6 +163,8 @@ def run(
             names, skeleton.edges, skeleton.separating_sets, rule=collider_rule,
             independent=independent, max_order=max_order, knowledge=knowledge,
         )
-    tests = tests_frame(records, phases)
+    oriented = TestColumns.from_results(asked_tests, {n: i for i, n in enumerate(names)},
+                                        phase=PHASES.index("orientation"))
+    tests = tests_parquet([*skeleton.tests.parts, oriented], names)
     evidence = evidence_frame(skeleton, knowledge, settings.alpha, orientation, stability)
     return SearchOutcome(skeleton=skeleton, orientation=orientation, tests=tests, evidence=evidence)
