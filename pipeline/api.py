@@ -34,6 +34,7 @@ from .runner import Runner
 from .runs import (
     RunFolder,
     StageCache,
+    atomic_write_arrow,
     atomic_write_bytes,
     atomic_write_json,
     atomic_write_parquet,
@@ -63,12 +64,20 @@ _PACKAGES = ["numpy", "pandas", "scipy", "pyarrow", "networkx", "joblib", "pydan
 
 @dataclass(frozen=True)
 class RunResult:
-    """A finished run: its folder, evidence and tests as DataFrames, manifest, and graph."""
+    """A finished run: its folder, evidence and tests as DataFrames, manifest, and graph.
+
+    `tests` (every test run; millions of rows on a large search) and `graph` are read or built when
+    first asked for, so a command that needs neither never holds them.
+    """
 
     out_dir: Path
     evidence: pd.DataFrame
-    tests: pd.DataFrame
     manifest: dict[str, Any]
+
+    @cached_property
+    def tests(self) -> pd.DataFrame:
+        """Every test run (tests.parquet), read when first asked for."""
+        return RunFolder(self.out_dir).table("tests.parquet")
 
     @cached_property
     def graph(self) -> nx.Graph:
@@ -93,8 +102,9 @@ def load_run(run_dir: str | os.PathLike[str]) -> RunResult:
     if not run.has("manifest.json"):
         raise DataError(f"`{run.path}` is not a finished edgeproof run folder (no manifest.json).")
     evidence = run.table("evidence.parquet")
-    return RunResult(out_dir=run.path.resolve(), evidence=evidence, tests=run.table("tests.parquet"),
-                     manifest=run.json("manifest.json"))
+    if not run.has("tests.parquet"):
+        raise DataError(f"`{run.path}` lacks tests.parquet; re-run that snapshot.")
+    return RunResult(out_dir=run.path.resolve(), evidence=evidence, manifest=run.json("manifest.json"))
 
 
 def _input_files(path: Path) -> list[Path]:
@@ -281,6 +291,23 @@ def _reuse_levels(cfg: Config, out: Path) -> Any:
     return json.loads(ref.read_text(encoding="utf-8"))
 
 
+def _tests_with_effect_r(path: Path) -> Any:
+    """tests.parquet as an Arrow table with ``effect_r`` beside ``cmi_bits`` (see `with_effect_r`)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(path)
+    names = table.column_names
+    if "cmi_bits" in names and "effect_r" not in names:
+        bits = table.column("cmi_bits").to_numpy().astype(np.float64)
+        r = np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0))
+        table = table.add_column(names.index("cmi_bits") + 1, "effect_r", pa.array(r, type=pa.float64()))
+    # text columns as the run folder has always stored them (large_string, what pandas' writer makes)
+    schema = pa.schema([f.with_type(pa.large_string()) if pa.types.is_string(f.type) else f for f in table.schema])
+    return table.cast(schema)
+
+
 def _lag_pairs(time_doc: dict[str, Any]) -> list[tuple[str, str]]:
     """Pairs the search never tests: two earlier-window copies, or a signal and its own earlier copy."""
     names, source, lags = time_doc["names"], time_doc["source"], time_doc["lag"]
@@ -347,7 +374,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                                                  [list(t) for t in knowledge.tiers], sorted(knowledge.rejected)])
     atomic_write_parquet(out / "marginal.parquet", runner.get("marginal.parquet"))
     evidence = runner.get("evidence.parquet")
-    tests = runner.get("tests.parquet")
+    tests = _tests_with_effect_r(runner.path("tests.parquet"))  # an Arrow table: never one frame of every test
     stability_info = None
     if cfg.search.resamples > 0:
         shares = runner.get("stability.parquet")
@@ -356,9 +383,9 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         atomic_write_parquet(out / "stability.parquet", shares)
     from .independence.result import with_effect_r
 
-    evidence, tests = with_effect_r(orient_lagged(evidence)), with_effect_r(tests)
+    evidence = with_effect_r(orient_lagged(evidence))
     atomic_write_parquet(out / "evidence.parquet", evidence)
-    atomic_write_parquet(out / "tests.parquet", tests)
+    atomic_write_arrow(out / "tests.parquet", tests)
 
     dropped = {c["column"]: c.get("reason", "") for c in clean_meta["columns"] if c.get("action") == "dropped"}
     rows = {
@@ -385,7 +412,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "platform": {"machine": platform.machine(), "cpus": os.cpu_count()},
         "cache_keys": runner.cache_keys(),
         "edges": int(evidence["linked"].sum()),
-        "tests": int(len(tests)),
+        "tests": int(tests.num_rows),
         "auto_settings": auto_settings,
         "time": {k: v for k, v in time_doc.items() if k not in ("names", "cards", "source", "lag", "numeric")},
         "review": comments,

@@ -24,6 +24,7 @@ import pandas as pd
 from .errors import ConfigError, LockHeldError
 
 __all__ = [
+    "atomic_write_arrow",
     "atomic_write_bytes",
     "atomic_write_text",
     "atomic_write_json",
@@ -112,6 +113,15 @@ def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> P
     import pyarrow.parquet as pq
 
     table = pa.Table.from_pandas(frame, preserve_index=False)
+    buf = io.BytesIO()
+    pq.write_table(table, buf, compression="zstd")
+    return atomic_write_bytes(path, buf.getvalue())
+
+
+def atomic_write_arrow(path: str | os.PathLike[str], table: Any) -> Path:
+    """Write an Arrow table as Parquet atomically (zstd, as `atomic_write_parquet`)."""
+    import pyarrow.parquet as pq
+
     buf = io.BytesIO()
     pq.write_table(table, buf, compression="zstd")
     return atomic_write_bytes(path, buf.getvalue())

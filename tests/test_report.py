@@ -526,3 +526,31 @@ def test_render_report_html_adds_what_changed(tmp_path):
     assert 'href="../compare-2026-11-03-2026-11-04/diff.html"' in section and 'href="../history.html"' in section
     assert text.index('id="changes"') < text.index('id="graph"') < text.index('id="details"')  # timings last
     assert len(_rows(text)) == len(_evidence())
+
+
+def test_shown_tests_from_arrow_equal_the_frame_path():
+    """Picking the shown tests column by column from an Arrow table gives the page exactly the test
+    lists and counts of the whole-frame path, with pairs of more tests than the page shows (property check)."""
+    import pyarrow as pa
+
+    from pipeline.report._html import TESTS_PER_PAIR, shown_tests, tests_data
+
+    rng = np.random.default_rng(11)
+    names = [f"s{i}" for i in range(6)]
+    pairs = [(a, b) for i, a in enumerate(names) for b in names[i + 1:]]
+    rows = []
+    for t in range(900):
+        a, b = pairs[int(rng.integers(len(pairs)))]
+        if rng.random() < 0.5:
+            a, b = b, a  # either order in tests.parquet
+        rows.append({"test_id": t, "phase": str(rng.choice(["battery", "skeleton", "orientation"], p=[.2, .7, .1])),
+                     "level": int(rng.integers(0, 3)), "var_a": a, "var_b": b, "given": "s0;s1" if t % 3 else "",
+                     "statistic": float(rng.random()), "dof": 1, "pvalue": float(rng.random()) if t % 7 else np.nan,
+                     "n": 100, "method": "g", "independent": bool(rng.random() < .5), "sparse": False,
+                     "degenerate": False, "policy": "flag", "policy_applied": False})
+    tests = pd.DataFrame(rows)
+    ev = pd.DataFrame({"var_a": [a for a, _ in pairs][:-1], "var_b": [b for _, b in pairs][:-1]})  # one pair absent
+    assert tests.groupby(["var_a", "var_b"]).size().max() > TESTS_PER_PAIR
+    whole = tests_data(ev, tests)
+    picked = tests_data(ev, shown_tests(pa.Table.from_pandas(tests, preserve_index=False), ev))
+    assert json.dumps(picked, sort_keys=False) == json.dumps(whole, sort_keys=False)

@@ -464,6 +464,60 @@ def _shown(tests: pd.DataFrame, pair: pd.Series) -> pd.Series:
     return pd.Series(keep, index=tests.index)
 
 
+def shown_tests(table: Any, evidence: pd.DataFrame) -> pd.DataFrame:
+    """The tests the page shows (`_shown`'s rule), picked column by column from tests.parquet as an
+    Arrow table, as a DataFrame with each pair's number of tests in ``pair_tests``: what the report
+    holds grows with the pairs, not with the tests (a search of millions of tests is never a frame)."""
+    import pyarrow.compute as pc
+
+    if table.num_rows == 0 or len(evidence) == 0:
+        return table.slice(0, 0).to_pandas()
+    names = sorted(set(map(str, evidence["var_a"])) | set(map(str, evidence["var_b"])))
+    code = {n: i for i, n in enumerate(names)}
+
+    def codes(column: Any) -> np.ndarray:
+        enc = pc.dictionary_encode(column).combine_chunks()
+        lookup = np.array([code.get(str(v), -1) for v in enc.dictionary.to_pylist()] + [-1], dtype=np.int64)
+        idx = enc.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)
+        return lookup[idx]
+
+    k = len(names) + 1
+    a, b = codes(table.column("var_a")), codes(table.column("var_b"))
+    ea = np.array([code[str(v)] for v in evidence["var_a"]], dtype=np.int64)
+    eb = np.array([code[str(v)] for v in evidence["var_b"]], dtype=np.int64)
+    rows_of = pd.Series(np.arange(len(evidence)), index=np.minimum(ea, eb) * k + np.maximum(ea, eb))
+    rows_of = rows_of[~rows_of.index.duplicated(keep="last")]
+    row = rows_of.reindex(np.minimum(a, b) * k + np.maximum(a, b)).to_numpy(dtype=np.float64, copy=True)
+    row[(a < 0) | (b < 0)] = np.nan
+    idx = np.flatnonzero(~np.isnan(row))
+    pair = row[idx].astype(np.int64)
+    counts = np.bincount(pair, minlength=len(evidence))
+    keep = counts[pair] <= TESTS_PER_PAIR
+    if not keep.all():
+        pos = np.arange(idx.size)
+        first = np.zeros(idx.size, dtype=bool)
+        first[np.unique(pair, return_index=True)[1]] = True
+        searched = np.ones(idx.size, dtype=bool)
+        if "phase" in table.column_names:
+            searched = ~pc.equal(table.column("phase"), "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
+        last = np.zeros(idx.size, dtype=bool)
+        s_pos = pos[searched]
+        rev = np.unique(pair[s_pos][::-1], return_index=True)[1]
+        last[s_pos[::-1][rev]] = True
+        p = np.full(idx.size, -1.0)
+        if "pvalue" in table.column_names:
+            p = np.nan_to_num(table.column("pvalue").to_numpy(zero_copy_only=False).astype(np.float64)[idx], nan=-1.0)
+        order = np.lexsort((pos, -p, pair))
+        starts = np.searchsorted(pair[order], pair[order], side="left")
+        rank = np.empty(idx.size, dtype=np.int64)
+        rank[order] = np.arange(idx.size) - starts
+        keep |= first | last | (rank < TESTS_PER_PAIR - 2)
+    picked = idx[keep]
+    out = table.take(picked).to_pandas()
+    out["pair_tests"] = counts[pair[keep]]
+    return out
+
+
 def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, Any]:
     """Each pair's tests for the expand buttons, keyed by the pair's row number in `evidence`:
     ``{"fields": TEST_FIELDS, "tests": {row: [[...], ...]}, "counts": {row: tests run}}``.
@@ -484,7 +538,10 @@ def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, Any]:
     pair = pd.Series(row[found].astype(np.int64))
     if len(t) == 0:
         return empty
-    counts = pair.value_counts(sort=False)
+    if "pair_tests" in t.columns:  # picked by `shown_tests`: the pair's tests were counted before picking
+        counts = pd.Series(t["pair_tests"].to_numpy(), index=pair.to_numpy()).groupby(level=0, sort=False).first()
+    else:
+        counts = pair.value_counts(sort=False)
     keep = _shown(t, pair).to_numpy()
     t, pair = t.loc[keep].reset_index(drop=True), pair[keep].reset_index(drop=True)
     given = _column(t, "given", "").fillna("").astype(str)

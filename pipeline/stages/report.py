@@ -94,15 +94,16 @@ def _with_review(evidence: pd.DataFrame, review: dict[Any, dict[str, str]] | Non
     return out
 
 
-def run(evidence: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, out_dir: Path) -> dict[str, Path]:
+def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Path) -> dict[str, Path]:
     """Write the report files of one run into `out_dir`.
 
     Parameters
     ----------
     evidence : pandas.DataFrame
         One row per unordered pair (the ``evidence.parquet`` columns).
-    tests : pandas.DataFrame
-        Every test run (the ``tests.parquet`` columns).
+    tests : pandas.DataFrame or pyarrow.Table
+        Every test run (the ``tests.parquet`` columns); as an Arrow table only the tests the page shows
+        become a frame.
     context : ReportContext
         Title, run summary, level labels and options.
     out_dir : Path
@@ -156,7 +157,7 @@ def _prepared(evidence: pd.DataFrame, context: ReportContext) -> pd.DataFrame:
     return ev
 
 
-def _write_page(ev: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, names: list[str], svg: bytes,
+def _write_page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: list[str], svg: bytes,
                 out: Path) -> Path:
     truth_svg, split = None, None
     if context.truth_edges is not None:
@@ -164,6 +165,8 @@ def _write_page(ev: pd.DataFrame, tests: pd.DataFrame, context: ReportContext, n
         split = compare_truth(linked, context.truth_edges)
         known = _graph.build_truth_graph(names, context.levels, context.truth_edges, linked)
         truth_svg = _html.inline_svg(_graph.render(known, "svg", "the known graph"), "known-")
+    if not isinstance(tests, pd.DataFrame):  # tests.parquet as an Arrow table: pick the shown tests first
+        tests = _html.shown_tests(tests, ev)
     page = _html.build_html(context, ev, tests, names, _html.inline_svg(svg), truth_svg, split)
     return atomic_write_text(out / "report.html", page)
 
@@ -215,6 +218,8 @@ def render_report_html(run_dir: Path, changes: dict[str, Any] | None) -> Path:
     d = Path(run_dir)
     context = context_from_run(d, changes)
     ev = _prepared(pd.read_parquet(d / "evidence.parquet"), context)
-    tests = pd.read_parquet(d / "tests.parquet")
+    import pyarrow.parquet as pq
+
+    tests = pq.read_table(d / "tests.parquet")
     names = signal_names(ev, context.levels)
     return _write_page(ev, tests, context, names, (d / "graph.svg").read_bytes(), d)
