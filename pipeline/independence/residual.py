@@ -43,11 +43,16 @@ from __future__ import annotations
 import math
 from collections import OrderedDict
 from dataclasses import dataclass
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
 from scipy.special import chdtrc as _chdtrc
 from scipy.special import ndtri as _ndtri
+
+from ._kernels import HAVE_NUMBA
+
+if HAVE_NUMBA:
+    from numba import njit
 
 __all__ = ["Timeline", "normal_scores", "ResidualTester", "hac_covariance", "wald"]
 
@@ -173,6 +178,16 @@ def _dense_codes(cols: list[np.ndarray]) -> np.ndarray | None:
     """One stratum code 0..S-1 per row for the joint levels of integer columns (None when no columns)."""
     if not cols:
         return None
+    lows = [int(c.min()) for c in cols]
+    spans = [int(c.max()) - lo + 1 for c, lo in zip(cols, lows)]
+    if math.prod(spans) <= 1 << 22:  # the joint level as one number (first column most significant: the
+        joint = np.zeros(cols[0].size, dtype=np.int64)  # order of np.unique(axis=0)), renumbered by its counts
+        for c, lo, span in zip(cols, lows, spans):
+            joint *= span
+            joint += c
+            joint -= lo
+        used = np.bincount(joint, minlength=math.prod(spans)) > 0
+        return (np.cumsum(used) - 1)[joint]
     if len(cols) == 1:
         return np.unique(cols[0], return_inverse=True)[1].ravel()
     stacked = np.column_stack(cols)
@@ -260,6 +275,200 @@ def _group_means(t: np.ndarray, strata: np.ndarray | None) -> np.ndarray:
     return out
 
 
+
+# -- the regression on independent rows through hat functions ------------------------------------------
+#
+# The piecewise-linear spline of a numeric member (z and (z - q)_+ at interior knots q, with an intercept)
+# spans exactly the functions that are linear between consecutive breakpoints min(z) <= q_1 < ... <= max(z);
+# the hat functions (linear B-splines, de Boor 1978, "A Practical Guide to Splines", ch. IX) span the same
+# space with two non-zero entries per row. So each row of the design has 2 entries per numeric member, one
+# per product of members and one stratum indicator: the normal equations of a fit are a sparse product, and
+# the fitted values on every row a short compiled loop, instead of a dense (rows x basis) array per fit.
+
+
+def _breakpoints(z: np.ndarray, knots: int) -> np.ndarray:
+    """min, the interior quantile knots and max of a score column (distinct, increasing)."""
+    return np.unique(np.concatenate([[z.min()], _knot_points(z, knots), [z.max()]]))
+
+
+def _hat_add_numpy(pred: np.ndarray, z: np.ndarray, rows: np.ndarray | None, k: np.ndarray, g: np.ndarray,
+                   coef: np.ndarray, blk: np.ndarray) -> None:
+    """pred[i] += coef[blk[i], k[i]] (1 - w) + coef[blk[i], k[i] + 1] w, w the weight of z[rows[i]] in interval k[i]."""
+    k = k.astype(np.intp)
+    lo = g[k]
+    w = ((z if rows is None else z[rows]) - lo) / (g[k + 1] - lo)
+    pred += coef[blk, k] * (1.0 - w)[:, None] + coef[blk, k + 1] * w[:, None]
+
+
+def _prod_add_numpy(pred: np.ndarray, za: np.ndarray, zb: np.ndarray, rows: np.ndarray | None, coef: np.ndarray,
+                    blk: np.ndarray) -> None:
+    """pred[i] += coef[blk[i]] za[rows[i]] zb[rows[i]]."""
+    p = za * zb if rows is None else za[rows] * zb[rows]
+    pred += coef[blk] * p[:, None]
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _hat_add_compiled(pred, z, rows, use_rows, k, g, coef, blk):  # pragma: no cover
+        for i in range(pred.shape[0]):
+            v = z[rows[i]] if use_rows else z[i]
+            lo = np.int64(k[i])
+            w = (v - g[lo]) / (g[lo + 1] - g[lo])
+            b = blk[i]
+            for c in range(pred.shape[1]):
+                pred[i, c] += coef[b, lo, c] * (1.0 - w) + coef[b, lo + 1, c] * w
+
+    @njit(cache=True, nogil=True)
+    def _prod_add_compiled(pred, za, zb, rows, use_rows, coef, blk):  # pragma: no cover
+        for i in range(pred.shape[0]):
+            p = za[rows[i]] * zb[rows[i]] if use_rows else za[i] * zb[i]
+            b = blk[i]
+            for c in range(pred.shape[1]):
+                pred[i, c] += coef[b, c] * p
+
+_NO_ROWS = np.zeros(1, dtype=np.int64)
+
+
+def _hat_add(pred: np.ndarray, z: np.ndarray, rows: np.ndarray | None, k: np.ndarray, g: np.ndarray,
+             coef: np.ndarray, blk: np.ndarray) -> None:
+    if HAVE_NUMBA:
+        _hat_add_compiled(pred, z, _NO_ROWS if rows is None else rows, rows is not None, k, g, coef, blk)
+    else:
+        _hat_add_numpy(pred, z, rows, k, g, coef, blk)
+
+
+def _prod_add(pred: np.ndarray, za: np.ndarray, zb: np.ndarray, rows: np.ndarray | None, coef: np.ndarray,
+              blk: np.ndarray) -> None:
+    if HAVE_NUMBA:
+        _prod_add_compiled(pred, za, zb, _NO_ROWS if rows is None else rows, rows is not None, coef, blk)
+    else:
+        _prod_add_numpy(pred, za, zb, rows, coef, blk)
+
+
+@dataclass
+class _HatProjector:
+    """Regression on one conditioning set over one set of independent rows: exact strata of its categorical
+    members, the hat-function spline of each numeric member and the products of pairs of members, with a
+    curve of its own in every stratum that has the rows for it (at least `_ROWS_PER_COLUMN` per spline
+    column, as in `_Projector`; smaller strata share the pooled curve, fitted on every row with one level
+    per stratum). Coefficients come from at most `fit_rows` rows (a fixed, seeded subset); fitted values
+    are computed on every row. Kept: the breakpoints, the sparse design of the fit rows and the whitening
+    of each fit's normal equations (not any array over all rows but the strata)."""
+
+    members: list[np.ndarray]  # the full score column of each numeric member
+    intervals: list[np.ndarray]  # per member and row, the interval of its value between breakpoints
+    rows: np.ndarray | None  # positions of the rows in those columns (None: every row, in order)
+    strata: np.ndarray | None
+    breaks: list[np.ndarray]
+    blk: np.ndarray  # per row: 0 for the pooled curve, b >= 1 for the b-th stratum with a curve of its own
+    fit_design: Any  # scipy.sparse CSR design of the fit rows
+    fit: np.ndarray | None  # positions (within rows) of the fit rows (None: all)
+    blocks: list[tuple[np.ndarray | None, np.ndarray]]  # per curve: fit-row positions (None: all), whitening
+    offsets: list[int]  # first design column of each member's hats (hat 0 is left out: the levels span it)
+    width: int  # design columns: hats, products, then one indicator per stratum
+
+    nbytes: int = 0
+
+    @classmethod
+    def build(cls, strata: np.ndarray | None, signals: list[tuple[np.ndarray, np.ndarray, np.ndarray]],
+              rows: np.ndarray | None, n: int, fit_rows: int) -> "_HatProjector":
+        """`signals`: per numeric member, its full score column, its breakpoints and the interval of every row."""
+        from scipy import sparse
+
+        members = [m for m, _, _ in signals]
+        breaks = [g for _, g, _ in signals]
+        intervals = [k for _, _, k in signals]
+        fit = None
+        if n > fit_rows:
+            fit = np.sort(np.random.default_rng(n).choice(n, fit_rows, replace=False))
+        offsets, at = [], 0
+        for g in breaks:
+            offsets.append(at)
+            at += g.size - 1
+        pairs = [(a, b) for a in range(len(members)) for b in range(a + 1, len(members))]
+        n_strata = int(strata.max(initial=-1)) + 1 if strata is not None else 1
+        width = at + len(pairs) + n_strata
+        # the sparse design of the fit rows
+        nf = n if fit is None else fit.size
+        cols, vals = [], []
+        for z, g, kk, off in zip(members, breaks, intervals, offsets):
+            if g.size < 2:
+                continue
+            at_rows = rows if fit is None else (fit if rows is None else rows[fit])
+            zf = z if at_rows is None else z[at_rows]
+            k = (kk if fit is None else kk[fit]).astype(np.int64)
+            w = (zf - g[k]) / (g[k + 1] - g[k])
+            cols += [off + k - 1, off + k]
+            vals += [np.where(k > 0, 1.0 - w, 0.0), w]  # hat 0 is left out (a zero entry)
+        at_rows = rows if fit is None else (fit if rows is None else rows[fit])
+        for j, (a, b) in enumerate(pairs):
+            za, zb = (members[a], members[b]) if at_rows is None else (members[a][at_rows], members[b][at_rows])
+            cols.append(np.full(nf, at + j))
+            vals.append(za * zb)
+        sf = np.zeros(nf, dtype=np.int64) if strata is None else (strata if fit is None else strata[fit])
+        cols.append(at + len(pairs) + sf)
+        vals.append(np.ones(nf))
+        per_row = len(cols)
+        indices = np.maximum(np.column_stack(cols), 0).astype(np.int32)
+        data = np.column_stack(vals)
+        design = sparse.csr_matrix((data.ravel(), indices.ravel(), np.arange(0, nf * per_row + 1, per_row)),
+                                   shape=(nf, width))
+        design.sum_duplicates()
+        blocks: list[tuple[np.ndarray | None, np.ndarray]] = [(None, _sparse_whitening(design))]
+        blk = np.zeros(n, dtype=np.int32)
+        if strata is not None and members:
+            # the same rule as the dense projector: a stratum with at least 10 rows per spline column
+            need = _ROWS_PER_COLUMN * (sum(1 + max(g.size - 2, 0) for g in breaks) + len(pairs))
+            counts = np.bincount(strata, minlength=n_strata)
+            fit_counts = counts if fit is None else np.bincount(sf, minlength=n_strata)
+            for s in np.nonzero((counts >= need) & (fit_counts >= need))[0]:
+                pos = np.nonzero(sf == s)[0]
+                blocks.append((pos, _sparse_whitening(design[pos])))
+                blk[strata == s] = len(blocks) - 1
+        out = cls(members, intervals, rows, strata, breaks, blk, design, fit, blocks, offsets, width)
+        out.nbytes = int(design.data.nbytes + design.indices.nbytes + blk.nbytes
+                         + (0 if strata is None else strata.nbytes) + (0 if fit is None else fit.nbytes))
+        return out
+
+    def apply(self, t: np.ndarray) -> np.ndarray:
+        """Residuals of the columns of `t` (rows x columns)."""
+        if not self.members:
+            return _group_demean(t, self.strata) if self.strata is not None else t - t.mean(axis=0)
+        tf = t if self.fit is None else t[self.fit]
+        nb, c = len(self.blocks), t.shape[1]
+        coef = np.zeros((nb, self.width, c))
+        for b, (pos, w) in enumerate(self.blocks):
+            d = self.fit_design if pos is None else self.fit_design[pos]
+            y = tf if pos is None else tf[pos]
+            coef[b] = w @ (w.T @ np.asarray(d.T @ y))
+        pred = np.zeros((t.shape[0], c))
+        for z, k, g, off in zip(self.members, self.intervals, self.breaks, self.offsets):
+            if g.size < 2:
+                continue
+            hat = np.zeros((nb, g.size, c))
+            hat[:, 1:] = coef[:, off: off + g.size - 1]
+            _hat_add(pred, z, self.rows, k, g, hat, self.blk)
+        at = self.offsets[-1] + self.breaks[-1].size - 1 if self.breaks else 0
+        j = 0
+        for a in range(len(self.members)):
+            for b in range(a + 1, len(self.members)):
+                _prod_add(pred, self.members[a], self.members[b], self.rows, np.ascontiguousarray(coef[:, at + j]),
+                          self.blk)
+                j += 1
+        r = t - pred
+        # the levels' coefficients are left to this last step: the residuals have mean 0 in every stratum
+        return _group_demean(r, self.strata) if self.strata is not None else r - r.mean(axis=0)
+
+
+def _sparse_whitening(design: Any) -> np.ndarray:
+    """`_whitening` of a sparse design (its normal equations as a sparse product)."""
+    gram = np.asarray((design.T @ design).todense())
+    vals, vecs = np.linalg.eigh(gram)
+    keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
+    return vecs[:, keep] / np.sqrt(vals[keep])
+
+
 class ResidualTester:
     """Residual-covariance tests over one table of signals.
 
@@ -301,6 +510,9 @@ class ResidualTester:
         self._present = [self._present_of(i) for i in range(nv)]
         self._cache: OrderedDict[tuple, np.ndarray] = OrderedDict()
         self._projectors: OrderedDict[tuple, _Projector] = OrderedDict()
+        self._hats: OrderedDict[tuple, _HatProjector] = OrderedDict()
+        self._hats_bytes = 0
+        self._signal_cache: OrderedDict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = OrderedDict()
         self._cache_bytes = 0
         self._cache_max = cache_bytes
 
@@ -359,6 +571,8 @@ class ResidualTester:
         t = self._target(v, rows) if target is None else np.asarray(target, dtype=np.float64)
         if t.shape[1] == 0:
             return t
+        if self.timeline is None:
+            return self._hat_projector(tuple(given), rows).apply(t)
         timed = self.timeline is not None and self.own_past[v]
         cat_past = timed and self.scores[v] is None
         proj = self._projector(tuple(given), rows, v if cat_past else None)
@@ -402,6 +616,44 @@ class ResidualTester:
         while len(self._projectors) > 64:
             self._projectors.popitem(last=False)
         return proj
+
+    def _hat_projector(self, given: tuple[int, ...], rows: np.ndarray) -> "_HatProjector":
+        """The regression on a conditioning set over independent rows, kept for the next variable regressed
+        on the same set over the same rows (bounded by the bytes it holds)."""
+        n_all = self.codes.shape[1]
+        full = rows.size == n_all
+        key = ("hat", given, rows.size, None if full else hash(rows.tobytes()))
+        hit = self._hats.get(key)
+        if hit is not None:
+            self._hats.move_to_end(key)
+            return hit
+        cat_cols = [self.codes[g] if full else self.codes[g][rows] for g in given if self.scores[g] is None]
+        signals = [self._intervals(g, rows, full) for g in given if self.scores[g] is not None]
+        proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if full else rows, rows.size, self.fit_rows)
+        self._hats[key] = proj
+        self._hats_bytes += proj.nbytes
+        while (self._hats_bytes > self._cache_max // 2 or len(self._hats) > 64) and len(self._hats) > 1:
+            _, old = self._hats.popitem(last=False)
+            self._hats_bytes -= old.nbytes
+        return proj
+
+    def _intervals(self, v: int, rows: np.ndarray, full: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """A numeric signal's score column, breakpoints over `rows` and the interval of each row, computed once
+        per signal and set of rows (the same for every conditioning set it belongs to)."""
+        key = (v, rows.size, None if full else hash(rows.tobytes()))
+        hit = self._signal_cache.get(key)
+        if hit is None:
+            z = self.scores[v]
+            local = z if full else z[rows]  # type: ignore[index]
+            g = _breakpoints(local, self._knots(rows.size))  # type: ignore[arg-type]
+            k = np.clip(np.searchsorted(g, local, side="right") - 1, 0, max(g.size - 2, 0))
+            hit = (z, g, k.astype(np.uint8 if g.size <= 256 else np.int32))  # type: ignore[assignment]
+            self._signal_cache[key] = hit  # type: ignore[assignment]
+            while len(self._signal_cache) > 4 * len(self.scores) + 8:
+                self._signal_cache.popitem(last=False)
+        else:
+            self._signal_cache.move_to_end(key)
+        return hit  # type: ignore[return-value]
 
     def _cached_residuals(self, v: int, given: tuple[int, ...], rows: np.ndarray, full: bool) -> np.ndarray:
         if not full:
