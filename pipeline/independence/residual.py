@@ -353,120 +353,247 @@ class _HatProjector:
     curve of its own in every stratum that has the rows for it (at least `_ROWS_PER_COLUMN` per spline
     column, as in `_Projector`; smaller strata share the pooled curve, fitted on every row with one level
     per stratum). Coefficients come from at most `fit_rows` rows (a fixed, seeded subset); fitted values
-    are computed on every row. Kept: the breakpoints, the sparse design of the fit rows and the whitening
-    of each fit's normal equations (not any array over all rows but the strata)."""
+    are computed on every row. Kept: the breakpoints, the strata and the whitening of each fit's normal
+    equations; the design itself is never written out (its rows are rebuilt where they are needed)."""
 
     members: list[np.ndarray]  # the full score column of each numeric member
     intervals: list[np.ndarray]  # per member and row, the interval of its value between breakpoints
     rows: np.ndarray | None  # positions of the rows in those columns (None: every row, in order)
-    strata: np.ndarray | None
+    strata: np.ndarray | None  # per row, 0..S-1 (int32)
     breaks: list[np.ndarray]
-    blk: np.ndarray  # per row: 0 for the pooled curve, b >= 1 for the b-th stratum with a curve of its own
-    fit_design: Any  # scipy.sparse CSR design of the fit rows
+    blk_of: np.ndarray  # per stratum: 0 for the pooled curve, b >= 1 for the b-th curve of its own
     fit: np.ndarray | None  # positions (within rows) of the fit rows (None: all)
-    blocks: list[tuple[np.ndarray | None, np.ndarray]]  # per curve: fit-row positions (None: all), whitening
-    offsets: list[int]  # first design column of each member's hats (hat 0 is left out: the levels span it)
-    width: int  # design columns: hats, products, then one indicator per stratum
-
+    whitening: list[np.ndarray]  # per curve
+    layout: tuple  # (gpad, gsize, offsets, pair_a, pair_b, pstart, istart, width)
     nbytes: int = 0
 
     @classmethod
     def build(cls, strata: np.ndarray | None, signals: list[tuple[np.ndarray, np.ndarray, np.ndarray]],
-              rows: np.ndarray | None, n: int, fit_rows: int) -> "_HatProjector":
-        """`signals`: per numeric member, its full score column, its breakpoints and the interval of every row."""
-        from scipy import sparse
-
+              rows: np.ndarray | None, n: int, fit: np.ndarray | None) -> "_HatProjector":
+        """`signals`: per numeric member, its full score column, its breakpoints and the interval of every row;
+        `fit`: the positions of the fit rows within `rows` (None: all)."""
         members = [m for m, _, _ in signals]
         breaks = [g for _, g, _ in signals]
         intervals = [k for _, _, k in signals]
-        fit = None
-        if n > fit_rows:
-            fit = np.sort(np.random.default_rng(n).choice(n, fit_rows, replace=False))
-        offsets, at = [], 0
-        for g in breaks:
-            offsets.append(at)
-            at += g.size - 1
-        pairs = [(a, b) for a in range(len(members)) for b in range(a + 1, len(members))]
+        strata = None if strata is None else strata.astype(np.int32)
         n_strata = int(strata.max(initial=-1)) + 1 if strata is not None else 1
-        width = at + len(pairs) + n_strata
-        # the sparse design of the fit rows
-        nf = n if fit is None else fit.size
-        cols, vals = [], []
-        for z, g, kk, off in zip(members, breaks, intervals, offsets):
-            if g.size < 2:
-                continue
-            at_rows = rows if fit is None else (fit if rows is None else rows[fit])
-            zf = z if at_rows is None else z[at_rows]
-            k = (kk if fit is None else kk[fit]).astype(np.int64)
-            w = (zf - g[k]) / (g[k + 1] - g[k])
-            cols += [off + k - 1, off + k]
-            vals += [np.where(k > 0, 1.0 - w, 0.0), w]  # hat 0 is left out (a zero entry)
-        at_rows = rows if fit is None else (fit if rows is None else rows[fit])
-        for j, (a, b) in enumerate(pairs):
-            za, zb = (members[a], members[b]) if at_rows is None else (members[a][at_rows], members[b][at_rows])
-            cols.append(np.full(nf, at + j))
-            vals.append(za * zb)
-        sf = np.zeros(nf, dtype=np.int64) if strata is None else (strata if fit is None else strata[fit])
-        cols.append(at + len(pairs) + sf)
-        vals.append(np.ones(nf))
-        per_row = len(cols)
-        indices = np.maximum(np.column_stack(cols), 0).astype(np.int32)
-        data = np.column_stack(vals)
-        design = sparse.csr_matrix((data.ravel(), indices.ravel(), np.arange(0, nf * per_row + 1, per_row)),
-                                   shape=(nf, width))
-        design.sum_duplicates()
-        blocks: list[tuple[np.ndarray | None, np.ndarray]] = [(None, _sparse_whitening(design))]
-        blk = np.zeros(n, dtype=np.int32)
-        if strata is not None and members:
+        if not members:
+            return cls(members, intervals, rows, strata, breaks, np.zeros(n_strata, dtype=np.int64), fit, [], (),
+                       0 if strata is None else int(strata.nbytes))
+        m = len(members)
+        gsize = np.array([g.size for g in breaks], dtype=np.int64)
+        gpad = np.zeros((m, int(gsize.max()) + 1))
+        offsets = np.zeros(m, dtype=np.int64)
+        at = 0
+        for j, g in enumerate(breaks):
+            gpad[j, : g.size] = g
+            offsets[j] = at
+            at += g.size - 1  # hat 0 is left out: the strata's levels span it
+        pair_a = np.array([a for a in range(m) for b in range(a + 1, m)], dtype=np.int64)
+        pair_b = np.array([b for a in range(m) for b in range(a + 1, m)], dtype=np.int64)
+        layout = (gpad, gsize, offsets, pair_a, pair_b, at, at + pair_a.size, at + pair_a.size + n_strata)
+        blk_of = np.zeros(n_strata, dtype=np.int64)
+        if strata is not None:
             # the same rule as the dense projector: a stratum with at least 10 rows per spline column
-            need = _ROWS_PER_COLUMN * (sum(1 + max(g.size - 2, 0) for g in breaks) + len(pairs))
+            need = _ROWS_PER_COLUMN * (sum(1 + max(g.size - 2, 0) for g in breaks) + pair_a.size)
             counts = np.bincount(strata, minlength=n_strata)
-            fit_counts = counts if fit is None else np.bincount(sf, minlength=n_strata)
-            for s in np.nonzero((counts >= need) & (fit_counts >= need))[0]:
-                pos = np.nonzero(sf == s)[0]
-                blocks.append((pos, _sparse_whitening(design[pos])))
-                blk[strata == s] = len(blocks) - 1
-        out = cls(members, intervals, rows, strata, breaks, blk, design, fit, blocks, offsets, width)
-        out.nbytes = int(design.data.nbytes + design.indices.nbytes + blk.nbytes
-                         + (0 if strata is None else strata.nbytes) + (0 if fit is None else fit.nbytes))
-        return out
+            fit_counts = counts if fit is None else np.bincount(strata[fit], minlength=n_strata)
+            own = np.nonzero((counts >= need) & (fit_counts >= need))[0]
+            blk_of[own] = np.arange(1, own.size + 1)
+        proj = cls(members, intervals, rows, strata, breaks, blk_of, fit, [], layout)
+        gram, _ = proj._normal_sums(None)
+        proj.whitening = [_whitening_of(gm) for gm in gram]
+        proj.nbytes = int((0 if strata is None else strata.nbytes) + sum(w.nbytes for w in proj.whitening))
+        return proj
+
+    def _normal_sums(self, t: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+        """X'X (when `t` is None) or X't of every curve's fit rows, the design X rebuilt row by row."""
+        gpad, gsize, offsets, pair_a, pair_b, pstart, istart, width = self.layout
+        at = self.rows if self.fit is None else (self.fit if self.rows is None else self.rows[self.fit])
+        zf = np.vstack([z if at is None else z[at] for z in self.members])
+        kf = np.vstack([k if self.fit is None else k[self.fit] for k in self.intervals]).astype(np.int64)
+        nf = zf.shape[1]
+        sf = np.zeros(nf, dtype=np.int64) if self.strata is None else (
+            self.strata if self.fit is None else self.strata[self.fit]).astype(np.int64)
+        nb = int(self.blk_of.max(initial=0)) + 1
+        want_gram = t is None
+        tf = np.zeros((nf, 0)) if t is None else np.ascontiguousarray(t if self.fit is None else t[self.fit])
+        gram = np.zeros((nb, width, width) if want_gram else (0, 0, 0))
+        cross = np.zeros((nb, width, tf.shape[1]))
+        (_normal_sums_compiled if HAVE_NUMBA else _normal_sums_numpy)(
+            zf, kf, gpad, gsize, offsets, pair_a, pair_b, pstart, istart, sf, self.blk_of, tf, gram, cross, want_gram)
+        return gram, cross
 
     def apply(self, t: np.ndarray) -> np.ndarray:
         """Residuals of the columns of `t` (rows x columns)."""
-        if not self.members:
-            return _group_demean(t, self.strata) if self.strata is not None else t - t.mean(axis=0)
-        tf = t if self.fit is None else t[self.fit]
-        nb, c = len(self.blocks), t.shape[1]
-        coef = np.zeros((nb, self.width, c))
-        for b, (pos, w) in enumerate(self.blocks):
-            d = self.fit_design if pos is None else self.fit_design[pos]
-            y = tf if pos is None else tf[pos]
-            coef[b] = w @ (w.T @ np.asarray(d.T @ y))
-        pred = np.zeros((t.shape[0], c))
-        for z, k, g, off in zip(self.members, self.intervals, self.breaks, self.offsets):
-            if g.size < 2:
-                continue
-            hat = np.zeros((nb, g.size, c))
-            hat[:, 1:] = coef[:, off: off + g.size - 1]
-            _hat_add(pred, z, self.rows, k, g, hat, self.blk)
-        at = self.offsets[-1] + self.breaks[-1].size - 1 if self.breaks else 0
-        j = 0
-        for a in range(len(self.members)):
-            for b in range(a + 1, len(self.members)):
-                _prod_add(pred, self.members[a], self.members[b], self.rows, np.ascontiguousarray(coef[:, at + j]),
-                          self.blk)
-                j += 1
-        r = t - pred
+        r = np.array(t, dtype=np.float64, order="C")
+        if self.members:
+            _, cross = self._normal_sums(r)
+            coef = np.stack([w @ (w.T @ x) for w, x in zip(self.whitening, cross)])  # (curves, width, columns)
+            gpad, gsize, offsets, pair_a, pair_b, pstart, istart, width = self.layout
+            blk = self.blk_of[self.strata] if self.strata is not None and len(self.whitening) > 1 else \
+                np.zeros(r.shape[0], dtype=np.int64)
+            neg = -coef
+            for j, (z, k) in enumerate(zip(self.members, self.intervals)):
+                size = int(gsize[j])
+                if size < 2:
+                    continue
+                hat = np.zeros((coef.shape[0], size, r.shape[1]))
+                hat[:, 1:] = neg[:, offsets[j]: offsets[j] + size - 1]
+                _hat_add(r, z, self.rows, k, self.breaks[j], hat, blk)
+            for q, (a, b) in enumerate(zip(pair_a, pair_b)):
+                _prod_add(r, self.members[a], self.members[b], self.rows, np.ascontiguousarray(neg[:, pstart + q]), blk)
         # the levels' coefficients are left to this last step: the residuals have mean 0 in every stratum
-        return _group_demean(r, self.strata) if self.strata is not None else r - r.mean(axis=0)
+        return _demean(r, self.strata)
 
 
-def _sparse_whitening(design: Any) -> np.ndarray:
-    """`_whitening` of a sparse design (its normal equations as a sparse product)."""
-    gram = np.asarray((design.T @ design).todense())
+def _whitening_of(gram: np.ndarray) -> np.ndarray:
+    """w with ``w @ w.T`` the pseudo-inverse of a Gram matrix (negligible directions dropped)."""
     vals, vecs = np.linalg.eigh(gram)
     keep = vals > max(float(vals.max(initial=0.0)) * 1e-11, 1e-300)
     return vecs[:, keep] / np.sqrt(vals[keep])
+
+
+def _normal_sums_numpy(zf, kf, gpad, gsize, offsets, pair_a, pair_b, pstart, istart, sf, blk_of, tf, gram, cross,
+                       want_gram):
+    """The numpy twin of the compiled normal sums: the fit rows' design written out."""
+    nf = zf.shape[1]
+    design = np.zeros((nf, gram.shape[1] if want_gram else cross.shape[1]))
+    idx = np.arange(nf)
+    for j in range(zf.shape[0]):
+        if gsize[j] < 2:
+            continue
+        k = kf[j]
+        lo, hi = gpad[j, k], gpad[j, k + 1]
+        w = (zf[j] - lo) / (hi - lo)
+        low = k > 0
+        design[idx[low], offsets[j] + k[low] - 1] += 1.0 - w[low]
+        design[idx, offsets[j] + k] += w
+    for q in range(pair_a.size):
+        design[:, pstart + q] = zf[pair_a[q]] * zf[pair_b[q]]
+    design[idx, istart + sf] = 1.0
+    blk = blk_of[sf]
+    for b in range(cross.shape[0]):
+        sel = slice(None) if b == 0 else blk == b
+        d = design[sel]
+        if want_gram:
+            gram[b] += d.T @ d
+        cross[b] += d.T @ tf[sel]
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _normal_sums_compiled(zf, kf, gpad, gsize, offsets, pair_a, pair_b, pstart, istart, sf, blk_of, tf, gram,
+                              cross, want_gram):  # pragma: no cover
+        m = zf.shape[0]
+        size = 2 * m + pair_a.shape[0] + 1
+        col = np.empty(size, dtype=np.int64)
+        val = np.empty(size)
+        for i in range(zf.shape[1]):
+            e = 0
+            for j in range(m):
+                if gsize[j] < 2:
+                    continue
+                k = kf[j, i]
+                lo = gpad[j, k]
+                w = (zf[j, i] - lo) / (gpad[j, k + 1] - lo)
+                if k > 0:
+                    col[e] = offsets[j] + k - 1
+                    val[e] = 1.0 - w
+                    e += 1
+                col[e] = offsets[j] + k
+                val[e] = w
+                e += 1
+            for q in range(pair_a.shape[0]):
+                col[e] = pstart + q
+                val[e] = zf[pair_a[q], i] * zf[pair_b[q], i]
+                e += 1
+            s = sf[i]
+            col[e] = istart + s
+            val[e] = 1.0
+            e += 1
+            own = blk_of[s]
+            for rep in range(2):
+                b = 0 if rep == 0 else own
+                if rep == 1 and own == 0:
+                    break
+                for u in range(e):
+                    cu = col[u]
+                    vu = val[u]
+                    if want_gram:
+                        for v in range(e):
+                            gram[b, cu, col[v]] += vu * val[v]
+                    for c in range(tf.shape[1]):
+                        cross[b, cu, c] += vu * tf[i, c]
+
+
+
+def _demean_numpy(r: np.ndarray, strata: np.ndarray, n_strata: int) -> None:
+    r -= _group_means(r, strata)[strata]
+
+
+def _product_sums_numpy(rx: np.ndarray, ry: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sums of the row-wise products p = rx_a * ry_b (a x b columns) and of their outer products p p'."""
+    prod = (rx[:, :, None] * ry[:, None, :]).reshape(rx.shape[0], -1)
+    return prod.sum(axis=0), prod.T @ prod
+
+
+if HAVE_NUMBA:
+
+    @njit(cache=True, nogil=True)
+    def _demean_compiled(r, strata, n_strata):  # pragma: no cover
+        sums = np.zeros((n_strata, r.shape[1]))
+        counts = np.zeros(n_strata)
+        for i in range(r.shape[0]):
+            s = strata[i]
+            counts[s] += 1.0
+            for c in range(r.shape[1]):
+                sums[s, c] += r[i, c]
+        for s in range(n_strata):
+            if counts[s] > 0:
+                for c in range(r.shape[1]):
+                    sums[s, c] /= counts[s]
+        for i in range(r.shape[0]):
+            s = strata[i]
+            for c in range(r.shape[1]):
+                r[i, c] -= sums[s, c]
+
+    @njit(cache=True, nogil=True)
+    def _product_sums_compiled(rx, ry):  # pragma: no cover
+        a, b = rx.shape[1], ry.shape[1]
+        d = a * b
+        s = np.zeros(d)
+        ss = np.zeros((d, d))
+        p = np.empty(d)
+        for i in range(rx.shape[0]):
+            for u in range(a):
+                for v in range(b):
+                    p[u * b + v] = rx[i, u] * ry[i, v]
+            for u in range(d):
+                s[u] += p[u]
+                for v in range(u, d):
+                    ss[u, v] += p[u] * p[v]
+        for u in range(d):
+            for v in range(u):
+                ss[u, v] = ss[v, u]
+        return s, ss
+
+
+def _demean(r: np.ndarray, strata: np.ndarray | None) -> np.ndarray:
+    """The columns of `r` (C order, float) minus their mean within each stratum (or overall), in place."""
+    if strata is None:
+        r -= r.mean(axis=0)
+        return r
+    n_strata = int(strata.max(initial=-1)) + 1
+    (_demean_compiled if HAVE_NUMBA else _demean_numpy)(r, strata, n_strata)
+    return r
+
+
+def _product_sums(rx: np.ndarray, ry: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    if HAVE_NUMBA:
+        return _product_sums_compiled(np.ascontiguousarray(rx), np.ascontiguousarray(ry))
+    return _product_sums_numpy(rx, ry)
 
 
 class ResidualTester:
@@ -492,7 +619,7 @@ class ResidualTester:
 
     def __init__(self, codes: np.ndarray, scores: Sequence[np.ndarray | None], *,
                  timeline: Timeline | None = None, own_past: Sequence[bool] | None = None,
-                 cache_bytes: int = 256 * 1024 * 1024, fit_rows: int = 200_000) -> None:
+                 cache_bytes: int = 96 * 1024 * 1024, fit_rows: int = 200_000) -> None:
         self.codes = codes
         self.scores = list(scores)
         self.timeline = timeline
@@ -512,6 +639,7 @@ class ResidualTester:
         self._projectors: OrderedDict[tuple, _Projector] = OrderedDict()
         self._hats: OrderedDict[tuple, _HatProjector] = OrderedDict()
         self._hats_bytes = 0
+        self._fit_pick: dict[int, np.ndarray] = {}
         self._signal_cache: OrderedDict[tuple, tuple[np.ndarray, np.ndarray, np.ndarray]] = OrderedDict()
         self._cache_bytes = 0
         self._cache_max = cache_bytes
@@ -537,8 +665,10 @@ class ResidualTester:
         s = self.scores[i]
         if s is not None:
             return s[rows][:, None]
-        c = self.codes[i][rows]
-        levels, inv = np.unique(c, return_inverse=True)
+        c = self.codes[i][rows].astype(np.intp)
+        used = np.bincount(c - c.min(initial=0)) > 0 if c.size else np.zeros(0, dtype=bool)
+        levels = np.nonzero(used)[0]
+        inv = (np.cumsum(used) - 1)[c - c.min(initial=0)] if c.size else c  # np.unique's codes, without a sort
         if levels.size <= 1:
             return np.zeros((rows.size, 0))
         onehot = np.zeros((rows.size, levels.size - 1))
@@ -629,10 +759,16 @@ class ResidualTester:
             return hit
         cat_cols = [self.codes[g] if full else self.codes[g][rows] for g in given if self.scores[g] is None]
         signals = [self._intervals(g, rows, full) for g in given if self.scores[g] is not None]
-        proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if full else rows, rows.size, self.fit_rows)
+        fit = None
+        if rows.size > self.fit_rows:  # the same seeded subset for every conditioning set over these rows
+            fit = self._fit_pick.get(rows.size)
+            if fit is None:
+                fit = np.sort(np.random.default_rng(rows.size).choice(rows.size, self.fit_rows, replace=False))
+                self._fit_pick = {rows.size: fit}
+        proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if full else rows, rows.size, fit)
         self._hats[key] = proj
         self._hats_bytes += proj.nbytes
-        while (self._hats_bytes > self._cache_max // 2 or len(self._hats) > 64) and len(self._hats) > 1:
+        while (self._hats_bytes > self._cache_max // 3 or len(self._hats) > 64) and len(self._hats) > 1:
             _, old = self._hats.popitem(last=False)
             self._hats_bytes -= old.nbytes
         return proj
@@ -738,6 +874,8 @@ class ResidualTester:
 
     def test(self, x: int, y: int, given: Sequence[int]) -> tuple[float, int, float, int, float, float, float, str]:
         """(statistic, dof, pvalue, n, n_effective, cmi_bits, effect_r, correction) of x vs y given `given`."""
+        if self.timeline is None:
+            return self._test_independent_rows(x, y, given)
         prod, rows = self.products(x, y, given)
         n = int(rows.size)
         correction = "own-past+hac" if self.timeline is not None else "none"
@@ -761,3 +899,23 @@ class ResidualTester:
         bits = w0 / (2.0 * n * _LN2)
         r = math.sqrt(max(0.0, 1.0 - math.exp(-w0 / n))) if n else 0.0
         return w, dof, p, n, n / inflation, bits, r, correction
+
+    def _test_independent_rows(self, x: int, y: int, given: Sequence[int]) -> tuple[float, int, float, int, float, float, float, str]:
+        """`test` on independent rows: the mean and covariance of the residual products in one pass, without
+        writing the products out (the same numbers as `hac_covariance` without partners)."""
+        given = tuple(sorted(given))
+        rows = self.rows_for(x, y, given)
+        n = int(rows.size)
+        full = n == self._full_rows(x, y)
+        rx = self._cached_residuals(x, given, rows, full)
+        ry = self._cached_residuals(y, given, rows, full)
+        if n < 3 or rx.shape[1] * ry.shape[1] == 0:
+            return 0.0, 0, 1.0, n, float(n), 0.0, 0.0, "none"
+        s, ss = _product_sums(rx, ry)
+        mean = s / n
+        cov = ss / n - np.outer(mean, mean)
+        w, dof = wald(mean, cov, n)
+        p = float(_chdtrc(dof, w)) if dof > 0 else 1.0
+        bits = w / (2.0 * n * _LN2)
+        r = math.sqrt(max(0.0, 1.0 - math.exp(-w / n))) if n else 0.0
+        return w, dof, p, n, float(n), bits, r, "none"
