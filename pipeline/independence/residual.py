@@ -565,6 +565,16 @@ if HAVE_NUMBA:
         d = a * b
         s = np.zeros(d)
         ss = np.zeros((d, d))
+        if d == 1:
+            s1 = 0.0
+            s2 = 0.0
+            for i in range(rx.shape[0]):
+                p1 = rx[i, 0] * ry[i, 0]
+                s1 += p1
+                s2 += p1 * p1
+            s[0] = s1
+            ss[0, 0] = s2
+            return s, ss
         p = np.empty(d)
         for i in range(rx.shape[0]):
             for u in range(a):
@@ -619,11 +629,14 @@ class ResidualTester:
 
     def __init__(self, codes: np.ndarray, scores: Sequence[np.ndarray | None], *,
                  timeline: Timeline | None = None, own_past: Sequence[bool] | None = None,
-                 cache_bytes: int = 96 * 1024 * 1024, fit_rows: int = 200_000) -> None:
+                 cache_bytes: int = 96 * 1024 * 1024, fit_rows: int = 200_000,
+                 test_rows: int = 200_000) -> None:
         self.codes = codes
         self.scores = list(scores)
         self.timeline = timeline
         self.fit_rows = int(fit_rows)
+        self.test_rows = int(test_rows)
+        self._test_pick: dict[int, np.ndarray] = {}
         nv = codes.shape[0]
         self.own_past = list(own_past) if own_past is not None else [True] * nv
         n = codes.shape[1]
@@ -635,6 +648,8 @@ class ResidualTester:
         self._rule = len(self._partners)  # the Newey-West bandwidth for this series length
         self._base = base
         self._present = [self._present_of(i) for i in range(nv)]
+        self._complete = [bool(base.all() and p.all()) and (timeline is None) for p in self._present]
+        self._all_rows = np.arange(n)
         self._cache: OrderedDict[tuple, np.ndarray] = OrderedDict()
         self._projectors: OrderedDict[tuple, _Projector] = OrderedDict()
         self._hats: OrderedDict[tuple, _HatProjector] = OrderedDict()
@@ -691,7 +706,8 @@ class ResidualTester:
                 ok = ok & p
         return np.nonzero(ok)[0]
 
-    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray, target: np.ndarray | None = None) -> np.ndarray:
+    def residuals(self, v: int, given: Sequence[int], rows: np.ndarray, target: np.ndarray | None = None, *,
+                  token: str | None = None) -> np.ndarray:
         """Residuals of variable `v` (its score or its indicators) regressed on `given` (with the previous
         window of each member when rows are time-ordered) and on its own previous window.
 
@@ -702,7 +718,7 @@ class ResidualTester:
         if t.shape[1] == 0:
             return t
         if self.timeline is None:
-            return self._hat_projector(tuple(given), rows).apply(t)
+            return self._hat_projector(tuple(given), rows, token).apply(t)
         timed = self.timeline is not None and self.own_past[v]
         cat_past = timed and self.scores[v] is None
         proj = self._projector(tuple(given), rows, v if cat_past else None)
@@ -747,18 +763,20 @@ class ResidualTester:
             self._projectors.popitem(last=False)
         return proj
 
-    def _hat_projector(self, given: tuple[int, ...], rows: np.ndarray) -> "_HatProjector":
+    def _hat_projector(self, given: tuple[int, ...], rows: np.ndarray, token: str | None = None) -> "_HatProjector":
         """The regression on a conditioning set over independent rows, kept for the next variable regressed
-        on the same set over the same rows (bounded by the bytes it holds)."""
+        on the same set over the same rows (bounded by the bytes it holds). `token` names a row set fixed
+        for the tester's life (then its bytes need not be hashed)."""
         n_all = self.codes.shape[1]
         full = rows.size == n_all
-        key = ("hat", given, rows.size, None if full else hash(rows.tobytes()))
+        rows_key = token if token is not None else (None if full else hash(rows.tobytes()))
+        key = ("hat", given, rows.size, rows_key)
         hit = self._hats.get(key)
         if hit is not None:
             self._hats.move_to_end(key)
             return hit
         cat_cols = [self.codes[g] if full else self.codes[g][rows] for g in given if self.scores[g] is None]
-        signals = [self._intervals(g, rows, full) for g in given if self.scores[g] is not None]
+        signals = [self._intervals(g, rows, full, rows_key) for g in given if self.scores[g] is not None]
         fit = None
         if rows.size > self.fit_rows:  # the same seeded subset for every conditioning set over these rows
             fit = self._fit_pick.get(rows.size)
@@ -773,10 +791,10 @@ class ResidualTester:
             self._hats_bytes -= old.nbytes
         return proj
 
-    def _intervals(self, v: int, rows: np.ndarray, full: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def _intervals(self, v: int, rows: np.ndarray, full: bool, rows_key: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """A numeric signal's score column, breakpoints over `rows` and the interval of each row, computed once
         per signal and set of rows (the same for every conditioning set it belongs to)."""
-        key = (v, rows.size, None if full else hash(rows.tobytes()))
+        key = (v, rows.size, rows_key)
         hit = self._signal_cache.get(key)
         if hit is None:
             z = self.scores[v]
@@ -791,7 +809,8 @@ class ResidualTester:
             self._signal_cache.move_to_end(key)
         return hit  # type: ignore[return-value]
 
-    def _cached_residuals(self, v: int, given: tuple[int, ...], rows: np.ndarray, full: bool) -> np.ndarray:
+    def _cached_residuals(self, v: int, given: tuple[int, ...], rows: np.ndarray, full: bool,
+                          token: str | None = None) -> np.ndarray:
         if not full:
             return self.residuals(v, given, rows)
         key = (v, given)
@@ -799,7 +818,7 @@ class ResidualTester:
         if hit is not None:
             self._cache.move_to_end(key)
             return hit
-        r = self.residuals(v, given, rows)
+        r = self.residuals(v, given, rows, token=token)
         self._cache[key] = r
         self._cache_bytes += r.nbytes
         while self._cache_bytes > self._cache_max and len(self._cache) > 1:
@@ -904,11 +923,20 @@ class ResidualTester:
         """`test` on independent rows: the mean and covariance of the residual products in one pass, without
         writing the products out (the same numbers as `hac_covariance` without partners)."""
         given = tuple(sorted(given))
-        rows = self.rows_for(x, y, given)
+        complete = self._complete[x] and self._complete[y] and all(self._complete[g] for g in given)
+        rows = self._all_rows if complete else self.rows_for(x, y, given)
+        full = rows.size == self._full_rows(x, y)
+        token = "all" if complete else None
+        if rows.size > self.test_rows:  # a fixed, seeded subset of the rows (the same for every test)
+            pick = self._test_pick.get(rows.size)
+            if pick is None:
+                pick = np.sort(np.random.default_rng([rows.size, 1]).choice(rows.size, self.test_rows, replace=False))
+                self._test_pick = {rows.size: pick}
+            rows = rows[pick] if token is None else self._test_pick.setdefault(-1, rows[pick])
+            token = None if token is None else "all-subset"
         n = int(rows.size)
-        full = n == self._full_rows(x, y)
-        rx = self._cached_residuals(x, given, rows, full)
-        ry = self._cached_residuals(y, given, rows, full)
+        rx = self._cached_residuals(x, given, rows, full, token)
+        ry = self._cached_residuals(y, given, rows, full, token)
         if n < 3 or rx.shape[1] * ry.shape[1] == 0:
             return 0.0, 0, 1.0, n, float(n), 0.0, 0.0, "none"
         s, ss = _product_sums(rx, ry)
