@@ -375,7 +375,7 @@ class _HatProjector:
         members = [m for m, _, _ in signals]
         breaks = [g for _, g, _ in signals]
         intervals = [k for _, _, k in signals]
-        strata = None if strata is None else strata.astype(np.int32)
+        strata = None if strata is None else strata.astype(np.int16 if strata.max(initial=0) < 32767 else np.int32)
         n_strata = int(strata.max(initial=-1)) + 1 if strata is not None else 1
         if not members:
             return cls(members, intervals, rows, strata, breaks, np.zeros(n_strata, dtype=np.int64), fit, [], (),
@@ -521,11 +521,16 @@ if HAVE_NUMBA:
                 for u in range(e):
                     cu = col[u]
                     vu = val[u]
-                    if want_gram:
-                        for v in range(e):
+                    if want_gram:  # one triangle (the columns of a row increase), mirrored at the end
+                        for v in range(u, e):
                             gram[b, cu, col[v]] += vu * val[v]
                     for c in range(tf.shape[1]):
                         cross[b, cu, c] += vu * tf[i, c]
+        if want_gram:
+            for b in range(gram.shape[0]):
+                for u in range(gram.shape[1]):
+                    for v in range(u):
+                        gram[b, u, v] = gram[b, v, u]
 
 
 
@@ -786,7 +791,7 @@ class ResidualTester:
         proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if full else rows, rows.size, fit)
         self._hats[key] = proj
         self._hats_bytes += proj.nbytes
-        while (self._hats_bytes > self._cache_max // 3 or len(self._hats) > 64) and len(self._hats) > 1:
+        while (self._hats_bytes > self._cache_max // 3 or len(self._hats) > 1024) and len(self._hats) > 1:
             _, old = self._hats.popitem(last=False)
             self._hats_bytes -= old.nbytes
         return proj
