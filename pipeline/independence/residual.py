@@ -719,7 +719,10 @@ class ResidualTester:
         `target` (rows x columns) replaces v's own score or indicators, e.g. indicators of levels fixed
         across two tables (the change test of `pipeline.change`); the regressors are v's as usual.
         """
-        t = self._target(v, rows) if target is None else np.asarray(target, dtype=np.float64)
+        if target is None and token is not None and self.timeline is None and self.scores[v] is not None:
+            t = self._intervals(v, rows, False, token)[0][:, None]
+        else:
+            t = self._target(v, rows) if target is None else np.asarray(target, dtype=np.float64)
         if t.shape[1] == 0:
             return t
         if self.timeline is None:
@@ -788,7 +791,8 @@ class ResidualTester:
             if fit is None:
                 fit = np.sort(np.random.default_rng(rows.size).choice(rows.size, self.fit_rows, replace=False))
                 self._fit_pick = {rows.size: fit}
-        proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if full else rows, rows.size, fit)
+        local = full or token is not None  # the signals' columns are over exactly these rows
+        proj = _HatProjector.build(_dense_codes(cat_cols), signals, None if local else rows, rows.size, fit)
         self._hats[key] = proj
         self._hats_bytes += proj.nbytes
         while (self._hats_bytes > self._cache_max // 3 or len(self._hats) > 1024) and len(self._hats) > 1:
@@ -806,7 +810,10 @@ class ResidualTester:
             local = z if full else z[rows]  # type: ignore[index]
             g = _breakpoints(local, self._knots(rows.size))  # type: ignore[arg-type]
             k = np.clip(np.searchsorted(g, local, side="right") - 1, 0, max(g.size - 2, 0))
-            hit = (z, g, k.astype(np.uint8 if g.size <= 256 else np.int32))  # type: ignore[assignment]
+            # over a row set fixed for the tester's life (a token), the values of those rows are kept too, so
+            # that every later pass reads them in order instead of gathering them from the whole column
+            hit = (local if (rows_key is not None and isinstance(rows_key, str)) else z, g,  # type: ignore[assignment]
+                   k.astype(np.uint8 if g.size <= 256 else np.int32))
             self._signal_cache[key] = hit  # type: ignore[assignment]
             while len(self._signal_cache) > 4 * len(self.scores) + 8:
                 self._signal_cache.popitem(last=False)
