@@ -21,6 +21,15 @@ How each part is done here:
   the residuals computed on every row. With only
   categorical members the residual is the deviation from the stratum mean, and the test is the
   generalised Cochran-Mantel-Haenszel statistic of average association.
+* **Cost on independent rows.** The spline is written in hat functions (linear B-splines, de Boor 1978,
+  "A Practical Guide to Splines", ch. IX: the same fitted values), so a row of the design has two entries
+  per numeric member: the normal equations and the fitted values are compiled passes over the rows, and
+  no (rows x basis) array is written. Each signal's breakpoints are found once; the regression on a
+  conditioning set (strata, whitened normal equations) is kept for the next signal regressed on it, and
+  residuals for the next test that needs them. On more than `test_rows` (200,000) rows, each test uses a
+  fixed, seeded random subset of 200,000 of them, the same for every test: a test on a random subset keeps
+  its size, and at this many rows its power to find links of the strength that matters is kept (measured
+  in bench/bench_numeric.py); the fit-on-a-subset rule above then never applies on independent rows.
 * **Time.** When the rows are windows of one or more series (`Timeline`), each signal is also
   regressed on its own value in the previous window of its series (conditioning on the tested signals'
   own past: Anderson & Goodman 1957 for Markov chains; the momentary conditional independence of
