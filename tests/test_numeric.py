@@ -369,7 +369,49 @@ def _extract_links(rows: int, tmp_path, seed: int = 0) -> tuple[set, set, set]:
 _EXTRACT_10K = pytest.mark.xfail(strict=True, reason=(
     "measured at seed 0: every true link (18/18) but 2 false links, c03-c11 (separating set {c07, m02}: "
     "p = 0.010 and 0.020 with m16) and c05-m09 (every set with m01: p = 0.017-0.046); the binned G-test "
-    "(test.method=g) gives 6 false links on the same extract. See bench/results/numeric.md"))
+    "(test.method=g) gives 6 false links on the same extract. These are chance rejections at alpha 0.05, "
+    "not a misfit: the same tests on 100 new draws of the same graph reject at about 5% "
+    "(test_seed0_false_links_are_chance_rejections), and the false pairs change from draw to draw "
+    "(10 draws of graph 0: 0.9 false links an extract; graphs 0-9: 0.7, 8 of 10 with at most 1). "
+    "See bench/results/numeric.md"))
+
+
+def _replicate_tester(rows: int) -> tuple[ResidualTester, dict[str, int]]:
+    """A tester over `smooth_extract(rows, 0, columns=16)` (the graph depends on the seed and the columns only,
+    so other row counts are new draws of the same graph)."""
+    from pipeline.simulate import smooth_extract
+
+    ex = smooth_extract(rows, 0, columns=16)
+    names = list(ex.frame.columns)
+    codes, scores = [], []
+    for c in names:
+        v = ex.frame[c].to_numpy()
+        if ex.kinds[c] == "numeric":
+            codes.append(np.zeros(v.size, dtype=np.int64))
+            scores.append(normal_scores(v))
+        else:
+            codes.append(pd.factorize(v, sort=True)[0])
+            scores.append(None)
+    return ResidualTester(np.vstack(codes).astype(np.int8), scores), {n: i for i, n in enumerate(names)}
+
+
+def test_seed0_false_links_are_chance_rejections():
+    """The two false links of the 10,000-row extract at seed 0 come from tests on true separating sets
+    (c03 and c11 given {c07, m02}; c05 and m09 given {m01}: d-separated in the generating graph). On 100 new
+    draws of the same graph (10,000 + r rows, r = 0..99) each test rejects at alpha 0.05 in at most 8% of
+    the draws (issue 14's size bound, `SIZE_BOUND`; measured 4% and 3%), so the seed-0 links are the chance rejections a
+    level-0.05 search makes, not a curve too stiff for the mechanisms (invented data, a size check)."""
+    checks = [("c03", "c11", ("c07", "m02")), ("c05", "m09", ("m01",))]
+    rejected = {c: 0 for c in checks}
+    trials = 100
+    for r in range(trials):
+        tester, ix = _replicate_tester(10_000 + r)
+        for c in checks:
+            x, y, given = c
+            p = tester.test(ix[x], ix[y], tuple(ix[g] for g in given))[2]
+            rejected[c] += p < ALPHA
+    for c, k in rejected.items():
+        assert k <= SIZE_BOUND * trials, (c, k)
 
 
 @_EXTRACT_10K
