@@ -427,3 +427,46 @@ def test_generated_extract_100k_rows_at_most_one_false_link(tmp_path):
     """The same at 100,000 rows (the binned G-test's false links grow with the rows)."""
     false, found, truth = _extract_links(100_000, tmp_path)
     assert found == truth and len(false) <= 1, sorted(false)
+
+
+def test_compiled_residual_passes_equal_their_numpy_twins():
+    """The compiled passes of the residual test on independent rows (normal sums of the hat-function design,
+    fitted values, demeaning, product moments) give the numbers of their plain-numpy twins (rtol 1e-10); the
+    twins write the design out, as `test_residuals_equal_statsmodels_ols_on_strata_and_splines` checks."""
+    from pipeline.independence import residual as R
+
+    if not R.HAVE_NUMBA:
+        pytest.skip("numba is not installed")
+    rng = np.random.default_rng(5)
+    n = 4000
+    codes, scores = _mixed_table(rng, n)
+    tester = ResidualTester(codes, scores)
+    rows = np.arange(n)
+    proj = tester._hat_projector((2, 3, 4), rows)
+    gpad, gsize, offsets, pair_a, pair_b, pstart, istart, width = proj.layout
+    zf = np.vstack(proj.members)
+    kf = np.vstack(proj.intervals).astype(np.int64)
+    sf = proj.strata.astype(np.int64)
+    t = np.column_stack([scores[0], scores[1]])
+    nb = int(proj.blk_of.max()) + 1
+    out = []
+    for fn in (R._normal_sums_compiled, R._normal_sums_numpy):
+        gram, cross = np.zeros((nb, width, width)), np.zeros((nb, width, 2))
+        fn(zf, kf, gpad, gsize, offsets, pair_a, pair_b, pstart, istart, sf, proj.blk_of, t, gram, cross, True)
+        out.append((gram, cross))
+    np.testing.assert_allclose(out[0][0], out[1][0], rtol=1e-10, atol=1e-9)
+    np.testing.assert_allclose(out[0][1], out[1][1], rtol=1e-10, atol=1e-9)
+    r1, r2 = t.copy(), t.copy()
+    R._demean_compiled(r1, sf, int(sf.max()) + 1)
+    R._demean_numpy(r2, sf, int(sf.max()) + 1)
+    np.testing.assert_allclose(r1, r2, rtol=1e-10, atol=1e-12)
+    for a, b in ((r1[:, :1], r1[:, 1:]), (r1, r1)):
+        for got, ref in zip(R._product_sums_compiled(np.ascontiguousarray(a), np.ascontiguousarray(b)),
+                            R._product_sums_numpy(a, b)):
+            np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-9)
+    coef = rng.standard_normal((nb, proj.breaks[0].size, 2))
+    blk = proj.blk_of[proj.strata]
+    p1, p2 = np.zeros((n, 2)), np.zeros((n, 2))
+    R._hat_add_compiled(p1, proj.members[0], R._NO_ROWS, False, proj.intervals[0], proj.breaks[0], coef, blk)
+    R._hat_add_numpy(p2, proj.members[0], None, proj.intervals[0], proj.breaks[0], coef, blk)
+    np.testing.assert_allclose(p1, p2, rtol=1e-10, atol=1e-12)

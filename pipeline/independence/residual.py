@@ -816,14 +816,14 @@ class ResidualTester:
         hit = self._signal_cache.get(key)
         if hit is None:
             z = self.scores[v]
-            local = z if full else z[rows]  # type: ignore[index]
-            g = _breakpoints(local, self._knots(rows.size))  # type: ignore[arg-type]
+            assert z is not None
+            local = z if full else z[rows]
+            g = _breakpoints(local, self._knots(rows.size))
             k = np.clip(np.searchsorted(g, local, side="right") - 1, 0, max(g.size - 2, 0))
             # over a row set fixed for the tester's life (a token), the values of those rows are kept too, so
             # that every later pass reads them in order instead of gathering them from the whole column
-            hit = (local if (rows_key is not None and isinstance(rows_key, str)) else z, g,  # type: ignore[assignment]
-                   k.astype(np.uint8 if g.size <= 256 else np.int32))
-            self._signal_cache[key] = hit  # type: ignore[assignment]
+            hit = (local if isinstance(rows_key, str) else z, g, k.astype(np.uint8 if g.size <= 256 else np.int32))
+            self._signal_cache[key] = hit
             while len(self._signal_cache) > 4 * len(self.scores) + 8:
                 self._signal_cache.popitem(last=False)
         else:
