@@ -369,7 +369,49 @@ def _extract_links(rows: int, tmp_path, seed: int = 0) -> tuple[set, set, set]:
 _EXTRACT_10K = pytest.mark.xfail(strict=True, reason=(
     "measured at seed 0: every true link (18/18) but 2 false links, c03-c11 (separating set {c07, m02}: "
     "p = 0.010 and 0.020 with m16) and c05-m09 (every set with m01: p = 0.017-0.046); the binned G-test "
-    "(test.method=g) gives 6 false links on the same extract. See bench/results/numeric.md"))
+    "(test.method=g) gives 6 false links on the same extract. These are chance rejections at alpha 0.05, "
+    "not a misfit: the same tests on 100 new draws of the same graph reject at about 5% "
+    "(test_seed0_false_links_are_chance_rejections), and the false pairs change from draw to draw "
+    "(10 draws of graph 0: 0.9 false links an extract; graphs 0-9: 0.7, 8 of 10 with at most 1). "
+    "See bench/results/numeric.md"))
+
+
+def _replicate_tester(rows: int) -> tuple[ResidualTester, dict[str, int]]:
+    """A tester over `smooth_extract(rows, 0, columns=16)` (the graph depends on the seed and the columns only,
+    so other row counts are new draws of the same graph)."""
+    from pipeline.simulate import smooth_extract
+
+    ex = smooth_extract(rows, 0, columns=16)
+    names = list(ex.frame.columns)
+    codes, scores = [], []
+    for c in names:
+        v = ex.frame[c].to_numpy()
+        if ex.kinds[c] == "numeric":
+            codes.append(np.zeros(v.size, dtype=np.int64))
+            scores.append(normal_scores(v))
+        else:
+            codes.append(pd.factorize(v, sort=True)[0])
+            scores.append(None)
+    return ResidualTester(np.vstack(codes).astype(np.int8), scores), {n: i for i, n in enumerate(names)}
+
+
+def test_seed0_false_links_are_chance_rejections():
+    """The two false links of the 10,000-row extract at seed 0 come from tests on true separating sets
+    (c03 and c11 given {c07, m02}; c05 and m09 given {m01}: d-separated in the generating graph). On 100 new
+    draws of the same graph (10,000 + r rows, r = 0..99) each test rejects at alpha 0.05 in at most 8% of
+    the draws (issue 14's size bound, `SIZE_BOUND`; measured 4% and 3%), so the seed-0 links are the chance rejections a
+    level-0.05 search makes, not a curve too stiff for the mechanisms (invented data, a size check)."""
+    checks = [("c03", "c11", ("c07", "m02")), ("c05", "m09", ("m01",))]
+    rejected = {c: 0 for c in checks}
+    trials = 100
+    for r in range(trials):
+        tester, ix = _replicate_tester(10_000 + r)
+        for c in checks:
+            x, y, given = c
+            p = tester.test(ix[x], ix[y], tuple(ix[g] for g in given))[2]
+            rejected[c] += p < ALPHA
+    for c, k in rejected.items():
+        assert k <= SIZE_BOUND * trials, (c, k)
 
 
 @_EXTRACT_10K
@@ -385,3 +427,46 @@ def test_generated_extract_100k_rows_at_most_one_false_link(tmp_path):
     """The same at 100,000 rows (the binned G-test's false links grow with the rows)."""
     false, found, truth = _extract_links(100_000, tmp_path)
     assert found == truth and len(false) <= 1, sorted(false)
+
+
+def test_compiled_residual_passes_equal_their_numpy_twins():
+    """The compiled passes of the residual test on independent rows (normal sums of the hat-function design,
+    fitted values, demeaning, product moments) give the numbers of their plain-numpy twins (rtol 1e-10); the
+    twins write the design out, as `test_residuals_equal_statsmodels_ols_on_strata_and_splines` checks."""
+    from pipeline.independence import residual as R
+
+    if not R.HAVE_NUMBA:
+        pytest.skip("numba is not installed")
+    rng = np.random.default_rng(5)
+    n = 4000
+    codes, scores = _mixed_table(rng, n)
+    tester = ResidualTester(codes, scores)
+    rows = np.arange(n)
+    proj = tester._hat_projector((2, 3, 4), rows)
+    gpad, gsize, offsets, pair_a, pair_b, pstart, istart, width = proj.layout
+    zf = np.vstack(proj.members)
+    kf = np.vstack(proj.intervals).astype(np.int64)
+    sf = proj.strata.astype(np.int64)
+    t = np.column_stack([scores[0], scores[1]])
+    nb = int(proj.blk_of.max()) + 1
+    out = []
+    for fn in (R._normal_sums_compiled, R._normal_sums_numpy):
+        gram, cross = np.zeros((nb, width, width)), np.zeros((nb, width, 2))
+        fn(zf, kf, gpad, gsize, offsets, pair_a, pair_b, pstart, istart, sf, proj.blk_of, t, gram, cross, True)
+        out.append((gram, cross))
+    np.testing.assert_allclose(out[0][0], out[1][0], rtol=1e-10, atol=1e-9)
+    np.testing.assert_allclose(out[0][1], out[1][1], rtol=1e-10, atol=1e-9)
+    r1, r2 = t.copy(), t.copy()
+    R._demean_compiled(r1, sf, int(sf.max()) + 1)
+    R._demean_numpy(r2, sf, int(sf.max()) + 1)
+    np.testing.assert_allclose(r1, r2, rtol=1e-10, atol=1e-12)
+    for a, b in ((r1[:, :1], r1[:, 1:]), (r1, r1)):
+        for got, ref in zip(R._product_sums_compiled(np.ascontiguousarray(a), np.ascontiguousarray(b)),
+                            R._product_sums_numpy(a, b)):
+            np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-9)
+    coef = rng.standard_normal((nb, proj.breaks[0].size, 2))
+    blk = proj.blk_of[proj.strata]
+    p1, p2 = np.zeros((n, 2)), np.zeros((n, 2))
+    R._hat_add_compiled(p1, proj.members[0], R._NO_ROWS, False, proj.intervals[0], proj.breaks[0], coef, blk)
+    R._hat_add_numpy(p2, proj.members[0], None, proj.intervals[0], proj.breaks[0], coef, blk)
+    np.testing.assert_allclose(p1, p2, rtol=1e-10, atol=1e-12)
