@@ -162,6 +162,17 @@ class SignalExtras:
     series_length: float
     own_past: tuple[bool, ...]
 
+    def identity(self) -> Any:
+        """What names these extras across the tasks a worker gets (each task brings its own unpickled
+        copy): the files of their memory-mapped arrays and the small fields. Arrays held in memory have
+        no such name, so their copy's id is used and no engine is reused for them."""
+        def name_of(a: Any) -> Any:
+            if isinstance(a, np.memmap) and getattr(a, "filename", None):
+                return (str(a.filename), int(a.offset), tuple(a.shape))
+            return None if a is None else ("object", id(a))
+
+        return (name_of(self.scores), name_of(self.prev), self.numeric, self.series_length, self.own_past)
+
     def engine(self, data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any) -> MixedEngine:
         from ..independence.mixed import MixedEngine
         from ..independence.residual import Timeline
@@ -188,7 +199,8 @@ def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, 
     filename = getattr(data, "filename", None) if isinstance(data, np.memmap) else None
     if filename is None or packed is not None:
         return build()
-    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings, id(extras))
+    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings,
+           None if extras is None else extras.identity())
     engine = _WORKER_ENGINES.get(key)
     if engine is None:
         _WORKER_ENGINES.clear()  # one table at a time per worker

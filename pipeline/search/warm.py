@@ -14,7 +14,21 @@ __all__ = ["warm_worker"]
 
 
 def warm_worker(_shared: Any, task: int) -> int:
-    """Import the test engine and load its compiled kernels in a worker (one tiny test per set size)."""
+    """Import the test engine and load its compiled kernels in a worker (one tiny test per set size).
+
+    Also raises the worker pool's leak guard: it restarts a worker whose resident memory grew by
+    300 MB since its first task, and the pages of the memory-mapped tables a worker reads count as
+    its own (a 1,000,000-row table of scores is 320 MB), so it would restart healthy workers and
+    throw away their engines and caches (measured on a 300,000-row numeric extract). The engines
+    cap their caches themselves.
+    """
+    try:
+        from joblib.externals.loky import process_executor
+
+        if isinstance(getattr(process_executor, "_MAX_MEMORY_LEAK_SIZE", None), int):
+            process_executor._MAX_MEMORY_LEAK_SIZE = max(process_executor._MAX_MEMORY_LEAK_SIZE, 16 * 1024**3)
+    except ImportError:  # pragma: no cover - another pool
+        pass
     from ..independence.engine import CIEngine, EngineSettings
     from .skeleton import pc_stable_skeleton
 
