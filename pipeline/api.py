@@ -291,21 +291,34 @@ def _reuse_levels(cfg: Config, out: Path) -> Any:
     return json.loads(ref.read_text(encoding="utf-8"))
 
 
-def _tests_with_effect_r(path: Path) -> Any:
-    """tests.parquet as an Arrow table with ``effect_r`` beside ``cmi_bits`` (see `with_effect_r`)."""
+def _publish_tests(source: Path, target: Path) -> int:
+    """Copy tests.parquet from the stage cache into the run folder batch by batch, with ``effect_r``
+    beside ``cmi_bits`` (see `with_effect_r`) and text as the run folder has always stored it
+    (large_string): a search of millions of tests is never one table in memory. Returns the tests."""
     import numpy as np
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    table = pq.read_table(path)
-    names = table.column_names
-    if "cmi_bits" in names and "effect_r" not in names:
-        bits = table.column("cmi_bits").to_numpy().astype(np.float64)
-        r = np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0))
-        table = table.add_column(names.index("cmi_bits") + 1, "effect_r", pa.array(r, type=pa.float64()))
-    # text columns as the run folder has always stored them (large_string, what pandas' writer makes)
-    schema = pa.schema([f.with_type(pa.large_string()) if pa.types.is_string(f.type) else f for f in table.schema])
-    return table.cast(schema)
+    src = pq.ParquetFile(source)
+    fields = list(src.schema_arrow)
+    names = [f.name for f in fields]
+    add = "cmi_bits" in names and "effect_r" not in names
+    if add:
+        fields.insert(names.index("cmi_bits") + 1, pa.field("effect_r", pa.float64()))
+    schema = pa.schema([f.with_type(pa.large_string()) if pa.types.is_string(f.type) else f for f in fields])
+
+    def batches() -> Any:
+        for batch in src.iter_batches(batch_size=1 << 18):
+            if add:
+                bits = batch.column("cmi_bits").to_numpy(zero_copy_only=False).astype(np.float64)
+                r = np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0))
+                batch = pa.RecordBatch.from_arrays(
+                    [*batch.columns[:names.index("cmi_bits") + 1], pa.array(r, type=pa.float64()),
+                     *batch.columns[names.index("cmi_bits") + 1:]], names=schema.names)
+            yield batch.cast(schema)
+
+    atomic_write_arrow(target, batches(), schema)
+    return int(src.metadata.num_rows)
 
 
 def _lag_pairs(time_doc: dict[str, Any]) -> list[tuple[str, str]]:
@@ -374,7 +387,6 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                                                  [list(t) for t in knowledge.tiers], sorted(knowledge.rejected)])
     atomic_write_parquet(out / "marginal.parquet", runner.get("marginal.parquet"))
     evidence = runner.get("evidence.parquet")
-    tests = _tests_with_effect_r(runner.path("tests.parquet"))  # an Arrow table: never one frame of every test
     stability_info = None
     if cfg.search.resamples > 0:
         shares = runner.get("stability.parquet")
@@ -385,7 +397,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
 
     evidence = with_effect_r(orient_lagged(evidence))
     atomic_write_parquet(out / "evidence.parquet", evidence)
-    atomic_write_arrow(out / "tests.parquet", tests)
+    n_tests = _publish_tests(runner.path("tests.parquet"), out / "tests.parquet")
 
     dropped = {c["column"]: c.get("reason", "") for c in clean_meta["columns"] if c.get("action") == "dropped"}
     rows = {
@@ -412,7 +424,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
         "platform": {"machine": platform.machine(), "cpus": os.cpu_count()},
         "cache_keys": runner.cache_keys(),
         "edges": int(evidence["linked"].sum()),
-        "tests": int(tests.num_rows),
+        "tests": n_tests,
         "auto_settings": auto_settings,
         "time": {k: v for k, v in time_doc.items() if k not in ("names", "cards", "source", "lag", "numeric")},
         "review": comments,
@@ -444,7 +456,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             warnings=warnings,
             png=cfg.output.png,
         )
-        written = report.run(evidence, tests, ctx_report, out)
+        written = report.run(evidence, out / "tests.parquet", ctx_report, out)  # read for the page's picks only
         if stability_info is not None:
             written.update(_stable_graph(evidence, levels_doc["levels"], cfg, out))
     manifest["stages"] = runner.stage_record()

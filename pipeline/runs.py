@@ -25,6 +25,7 @@ from .errors import ConfigError, LockHeldError
 
 __all__ = [
     "atomic_write_arrow",
+    "atomic_write_with",
     "atomic_write_bytes",
     "atomic_write_text",
     "atomic_write_json",
@@ -66,13 +67,19 @@ def _fsync_dir(folder: Path) -> None:
 
 def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     """Write `data` to `path` through a temporary file and an atomic rename."""
+    return atomic_write_with(path, lambda fh: fh.write(data))
+
+
+def atomic_write_with(path: str | os.PathLike[str], write: Any) -> Path:
+    """Call ``write(file)`` on a temporary file beside `path`, then fsync and rename it into place
+    (for files written piece by piece, e.g. a Parquet file batch by batch)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         os.fchmod(fd, 0o666 & ~_UMASK)  # the permissions an ordinary open() would give
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            write(fh)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -118,13 +125,17 @@ def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> P
     return atomic_write_bytes(path, buf.getvalue())
 
 
-def atomic_write_arrow(path: str | os.PathLike[str], table: Any) -> Path:
-    """Write an Arrow table as Parquet atomically (zstd, as `atomic_write_parquet`)."""
+def atomic_write_arrow(path: str | os.PathLike[str], batches: Any, schema: Any) -> Path:
+    """Write Arrow record batches (an iterable, consumed once) as one Parquet file atomically (zstd, as
+    `atomic_write_parquet`), batch by batch: only one batch is in memory at a time."""
     import pyarrow.parquet as pq
 
-    buf = io.BytesIO()
-    pq.write_table(table, buf, compression="zstd")
-    return atomic_write_bytes(path, buf.getvalue())
+    def write(fh: Any) -> None:
+        with pq.ParquetWriter(fh, schema, compression="zstd") as writer:
+            for batch in batches:
+                writer.write_batch(batch)
+
+    return atomic_write_with(path, write)
 
 
 def stable_hash(obj: Any) -> str:

@@ -528,7 +528,7 @@ def test_render_report_html_adds_what_changed(tmp_path):
     assert len(_rows(text)) == len(_evidence())
 
 
-def test_shown_tests_from_arrow_equal_the_frame_path():
+def test_shown_tests_from_arrow_equal_the_frame_path(tmp_path):
     """Picking the shown tests column by column from an Arrow table gives the page exactly the test
     lists and counts of the whole-frame path, with pairs of more tests than the page shows (property check)."""
     import pyarrow as pa
@@ -552,5 +552,11 @@ def test_shown_tests_from_arrow_equal_the_frame_path():
     ev = pd.DataFrame({"var_a": [a for a, _ in pairs][:-1], "var_b": [b for _, b in pairs][:-1]})  # one pair absent
     assert tests.groupby(["var_a", "var_b"]).size().max() > TESTS_PER_PAIR
     whole = tests_data(ev, tests)
-    picked = tests_data(ev, shown_tests(pa.Table.from_pandas(tests, preserve_index=False), ev))
+    table = pa.Table.from_pandas(tests, preserve_index=False)
+    picked = tests_data(ev, shown_tests(table, ev))
     assert json.dumps(picked, sort_keys=False) == json.dumps(whole, sort_keys=False)
+    import pyarrow.parquet as pq
+
+    path = tmp_path / "tests.parquet"
+    pq.write_table(table, path, row_group_size=100)  # several row groups: the picks cross batch bounds
+    assert json.dumps(tests_data(ev, shown_tests(path, ev)), sort_keys=False) == json.dumps(whole, sort_keys=False)

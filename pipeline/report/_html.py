@@ -464,22 +464,32 @@ def _shown(tests: pd.DataFrame, pair: pd.Series) -> pd.Series:
     return pd.Series(keep, index=tests.index)
 
 
-def shown_tests(table: Any, evidence: pd.DataFrame) -> pd.DataFrame:
-    """The tests the page shows (`_shown`'s rule), picked column by column from tests.parquet as an
-    Arrow table, as a DataFrame with each pair's number of tests in ``pair_tests``: what the report
+def shown_tests(source: Any, evidence: pd.DataFrame) -> pd.DataFrame:
+    """The tests the page shows (`_shown`'s rule) from tests.parquet (a path, read a few columns at a time,
+    or an Arrow table), as a DataFrame with each pair's number of tests in ``pair_tests``: what the report
     holds grows with the pairs, not with the tests (a search of millions of tests is never a frame)."""
+    import pyarrow as pa
     import pyarrow.compute as pc
+    import pyarrow.parquet as pq
 
+    if isinstance(source, pa.Table):
+        table, pf = source, None
+    else:
+        pf = pq.ParquetFile(source, read_dictionary=["var_a", "var_b", "phase"])
+        wanted = [c for c in ("var_a", "var_b", "phase", "pvalue") if c in pf.schema_arrow.names]
+        table = pf.read(columns=wanted)
     if table.num_rows == 0 or len(evidence) == 0:
-        return table.slice(0, 0).to_pandas()
+        return (table if pf is None else pf.schema_arrow.empty_table()).slice(0, 0).to_pandas()
     names = sorted(set(map(str, evidence["var_a"])) | set(map(str, evidence["var_b"])))
     code = {n: i for i, n in enumerate(names)}
 
     def codes(column: Any) -> np.ndarray:
-        enc = pc.dictionary_encode(column).combine_chunks()
-        lookup = np.array([code.get(str(v), -1) for v in enc.dictionary.to_pylist()] + [-1], dtype=np.int64)
-        idx = enc.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)
-        return lookup[idx]
+        out = []
+        for chunk in column.chunks:  # each chunk's own dictionary
+            enc = chunk if pa.types.is_dictionary(chunk.type) else pc.dictionary_encode(chunk)
+            lookup = np.array([code.get(str(v), -1) for v in enc.dictionary.to_pylist()] + [-1], dtype=np.int64)
+            out.append(lookup[enc.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)])
+        return np.concatenate(out) if out else np.zeros(0, dtype=np.int64)
 
     k = len(names) + 1
     a, b = codes(table.column("var_a")), codes(table.column("var_b"))
@@ -489,8 +499,10 @@ def shown_tests(table: Any, evidence: pd.DataFrame) -> pd.DataFrame:
     rows_of = rows_of[~rows_of.index.duplicated(keep="last")]
     row = rows_of.reindex(np.minimum(a, b) * k + np.maximum(a, b)).to_numpy(dtype=np.float64, copy=True)
     row[(a < 0) | (b < 0)] = np.nan
+    del a, b
     idx = np.flatnonzero(~np.isnan(row))
     pair = row[idx].astype(np.int64)
+    del row
     counts = np.bincount(pair, minlength=len(evidence))
     keep = counts[pair] <= TESTS_PER_PAIR
     if not keep.all():
@@ -499,21 +511,33 @@ def shown_tests(table: Any, evidence: pd.DataFrame) -> pd.DataFrame:
         first[np.unique(pair, return_index=True)[1]] = True
         searched = np.ones(idx.size, dtype=bool)
         if "phase" in table.column_names:
-            searched = ~pc.equal(table.column("phase"), "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
+            phase = table.column("phase").cast(pa.string())
+            searched = ~pc.equal(phase, "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
         last = np.zeros(idx.size, dtype=bool)
         s_pos = pos[searched]
         rev = np.unique(pair[s_pos][::-1], return_index=True)[1]
         last[s_pos[::-1][rev]] = True
         p = np.full(idx.size, -1.0)
         if "pvalue" in table.column_names:
-            p = np.nan_to_num(table.column("pvalue").to_numpy(zero_copy_only=False).astype(np.float64)[idx], nan=-1.0)
+            p = np.nan_to_num(table.column("pvalue").to_numpy().astype(np.float64)[idx], nan=-1.0)
         order = np.lexsort((pos, -p, pair))
         starts = np.searchsorted(pair[order], pair[order], side="left")
         rank = np.empty(idx.size, dtype=np.int64)
         rank[order] = np.arange(idx.size) - starts
         keep |= first | last | (rank < TESTS_PER_PAIR - 2)
     picked = idx[keep]
-    out = table.take(picked).to_pandas()
+    if pf is None:
+        out = table.take(picked).to_pandas()
+    else:  # the picked rows, one batch of every column at a time
+        del table
+        parts, start = [], 0
+        plain = pq.ParquetFile(source)
+        for batch in plain.iter_batches(batch_size=1 << 18):
+            lo, hi = np.searchsorted(picked, [start, start + batch.num_rows])
+            if hi > lo:
+                parts.append(pa.Table.from_batches([batch]).take(picked[lo:hi] - start))
+            start += batch.num_rows
+        out = pa.concat_tables(parts).to_pandas() if parts else plain.schema_arrow.empty_table().to_pandas()
     out["pair_tests"] = counts[pair[keep]]
     return out
 

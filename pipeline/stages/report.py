@@ -101,9 +101,9 @@ def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Pat
     ----------
     evidence : pandas.DataFrame
         One row per unordered pair (the ``evidence.parquet`` columns).
-    tests : pandas.DataFrame or pyarrow.Table
-        Every test run (the ``tests.parquet`` columns); as an Arrow table only the tests the page shows
-        become a frame.
+    tests : pandas.DataFrame, pyarrow.Table or the path of tests.parquet
+        Every test run (the ``tests.parquet`` columns); from a path or an Arrow table only the tests the
+        page shows become a frame.
     context : ReportContext
         Title, run summary, level labels and options.
     out_dir : Path
@@ -165,7 +165,7 @@ def _write_page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: lis
         split = compare_truth(linked, context.truth_edges)
         known = _graph.build_truth_graph(names, context.levels, context.truth_edges, linked)
         truth_svg = _html.inline_svg(_graph.render(known, "svg", "the known graph"), "known-")
-    if not isinstance(tests, pd.DataFrame):  # tests.parquet as an Arrow table: pick the shown tests first
+    if not isinstance(tests, pd.DataFrame):  # tests.parquet (a path or an Arrow table): pick the shown tests first
         tests = _html.shown_tests(tests, ev)
     page = _html.build_html(context, ev, tests, names, _html.inline_svg(svg), truth_svg, split)
     return atomic_write_text(out / "report.html", page)
@@ -218,8 +218,6 @@ def render_report_html(run_dir: Path, changes: dict[str, Any] | None) -> Path:
     d = Path(run_dir)
     context = context_from_run(d, changes)
     ev = _prepared(pd.read_parquet(d / "evidence.parquet"), context)
-    import pyarrow.parquet as pq
-
-    tests = pq.read_table(d / "tests.parquet")
+    tests = d / "tests.parquet"  # the page's picks are read from it column by column
     names = signal_names(ev, context.levels)
     return _write_page(ev, tests, context, names, (d / "graph.svg").read_bytes(), d)
