@@ -475,7 +475,8 @@ def shown_tests(source: Any, evidence: pd.DataFrame) -> pd.DataFrame:
     if isinstance(source, pa.Table):
         table, pf = source, None
     else:
-        pf = pq.ParquetFile(source, read_dictionary=["var_a", "var_b", "phase"])
+        present = pq.read_schema(source).names
+        pf = pq.ParquetFile(source, read_dictionary=[c for c in ("var_a", "var_b", "phase") if c in present])
         wanted = [c for c in ("var_a", "var_b", "phase", "pvalue") if c in pf.schema_arrow.names]
         table = pf.read(columns=wanted)
     if table.num_rows == 0 or len(evidence) == 0:
