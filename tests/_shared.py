@@ -17,6 +17,15 @@ def benchmark_path(name: str) -> Path:
     return folder
 
 
+def benchmark_codes(name: str) -> tuple[np.ndarray, list[str], list[int]]:
+    """A benchmark set as a coded table (variables x rows, int8), its names and level counts."""
+    path = benchmark_path(name) / "data.txt"
+    names = path.read_text().splitlines()[0].split()
+    raw = np.loadtxt(path, skiprows=1)
+    codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])]).astype(np.int8)
+    return codes, names, [int(c.max()) + 1 for c in codes]
+
+
 def reference_skeleton(name: str) -> np.ndarray:
     """Skeleton (M != 0) of causal-learn's published PC-stable chi-square result on the set."""
     return np.loadtxt(benchmark_path(name) / "reference_pc_chisq_0.05_stable.txt") != 0

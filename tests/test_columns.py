@@ -6,7 +6,7 @@ import io
 
 import numpy as np
 import pyarrow.parquet as pq
-from _shared import benchmark_path
+from _shared import benchmark_codes
 
 from pipeline.independence.columns import Candidates, TestColumns, TestLog
 from pipeline.independence.engine import CIEngine, EngineSettings
@@ -17,11 +17,7 @@ from pipeline.stages._evidence import tests_table as arrow_table
 
 
 def _child():
-    path = benchmark_path("child") / "data.txt"
-    names = path.read_text().splitlines()[0].split()
-    raw = np.loadtxt(path, skiprows=1)
-    codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])]).astype(np.int8)
-    return codes, names, [int(c.max()) + 1 for c in codes]
+    return benchmark_codes("child")
 
 
 def _search():

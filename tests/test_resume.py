@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
-from _shared import benchmark_path
+from _shared import benchmark_codes
 
 from pipeline.independence import EngineSettings
 from pipeline.independence.columns import TestColumns
@@ -20,11 +20,7 @@ from pipeline.stages.skeleton import state_doc, state_from
 
 
 def _child():
-    path = benchmark_path("child") / "data.txt"
-    names = path.read_text().splitlines()[0].split()
-    raw = np.loadtxt(path, skiprows=1)
-    codes = np.vstack([np.unique(raw[:, j], return_inverse=True)[1] for j in range(raw.shape[1])]).astype(np.int8)
-    return codes, names, [int(c.max()) + 1 for c in codes]
+    return benchmark_codes("child")
 
 
 def test_resume_from_each_level_checkpoint_matches_uninterrupted(tmp_path):
