@@ -295,26 +295,26 @@ def _publish_tests(source: Path, target: Path) -> int:
     """Copy tests.parquet from the stage cache into the run folder batch by batch, with ``effect_r``
     beside ``cmi_bits`` (see `with_effect_r`) and text as the run folder has always stored it
     (large_string): a search of millions of tests is never one table in memory. Returns the tests."""
-    import numpy as np
     import pyarrow as pa
     import pyarrow.parquet as pq
+
+    from .independence.result import effect_r_of
 
     src = pq.ParquetFile(source)
     fields = list(src.schema_arrow)
     names = [f.name for f in fields]
     add = "cmi_bits" in names and "effect_r" not in names
+    at = names.index("cmi_bits") + 1 if add else 0
     if add:
-        fields.insert(names.index("cmi_bits") + 1, pa.field("effect_r", pa.float64()))
+        fields.insert(at, pa.field("effect_r", pa.float64()))
     schema = pa.schema([f.with_type(pa.large_string()) if pa.types.is_string(f.type) else f for f in fields])
 
     def batches() -> Any:
         for batch in src.iter_batches(batch_size=1 << 18):
             if add:
-                bits = batch.column("cmi_bits").to_numpy(zero_copy_only=False).astype(np.float64)
-                r = np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0))
+                r = effect_r_of(batch.column("cmi_bits").to_numpy(zero_copy_only=False))
                 batch = pa.RecordBatch.from_arrays(
-                    [*batch.columns[:names.index("cmi_bits") + 1], pa.array(r, type=pa.float64()),
-                     *batch.columns[names.index("cmi_bits") + 1:]], names=schema.names)
+                    [*batch.columns[:at], pa.array(r, type=pa.float64()), *batch.columns[at:]], names=schema.names)
             yield batch.cast(schema)
 
     atomic_write_arrow(target, batches(), schema)

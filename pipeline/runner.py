@@ -245,7 +245,7 @@ class Runner:
         """Pull the stage's inputs, run it under its entry's lock and write its entry."""
         inputs = {name: self.get(name, before=stage) for name in stage.reads}
         workers = self.env.get("workers")
-        if stage.workers and workers is not None and hasattr(workers, "prepare"):
+        if stage.workers and workers is not None:
             workers.prepare()  # local workers warm up in the background while the stage starts
         carried = {name: self._bytes(name, before=stage) for name in stage.carries}
         self._fresh = {}

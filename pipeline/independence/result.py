@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import asdict, dataclass
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["CITestResult", "decide", "with_effect_r"]
+__all__ = ["CITestResult", "decide", "effect_r_of", "with_effect_r"]
 
 
 @dataclass(frozen=True)
@@ -44,7 +43,7 @@ class CITestResult:
     def effect_r(self) -> float:
         """Partial-association effect comparable across methods: ``sqrt(1 - 2 ** (-2 * cmi_bits))``
         (the partial correlation a Gaussian pair with this much information would have)."""
-        return math.sqrt(max(0.0, 1.0 - 2.0 ** (-2.0 * self.cmi_bits))) if self.cmi_bits == self.cmi_bits else float("nan")
+        return float(effect_r_of(self.cmi_bits))
 
     @property
     def flags(self) -> tuple[str, ...]:
@@ -81,9 +80,14 @@ def with_effect_r(frame: pd.DataFrame) -> pd.DataFrame:
     test ran (G-test, chi-square, permutation or residual covariance)."""
     if "cmi_bits" not in frame.columns or "effect_r" in frame.columns:
         return frame
+    out = frame.copy(deep=False)  # copy-on-write: the columns are shared, not copied (tests.parquet is large)
+    out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", effect_r_of(frame["cmi_bits"].to_numpy(dtype="float64")))
+    return out
+
+
+def effect_r_of(bits: Any) -> Any:
+    """``sqrt(1 - 2 ** (-2 * bits))`` of a number or an array of CMI bits (NaN stays NaN): the partial
+    correlation a Gaussian pair with that much information would have."""
     import numpy as np
 
-    bits = frame["cmi_bits"].to_numpy(dtype=np.float64)
-    out = frame.copy(deep=False)  # copy-on-write: the columns are shared, not copied (tests.parquet is large)
-    out.insert(list(frame.columns).index("cmi_bits") + 1, "effect_r", np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * bits), 0.0, 1.0)))
-    return out
+    return np.sqrt(np.clip(1.0 - 2.0 ** (-2.0 * np.asarray(bits, dtype=np.float64)), 0.0, 1.0))

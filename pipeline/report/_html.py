@@ -441,31 +441,31 @@ def _json_values(values: pd.Series) -> list:
     return [v.item() if hasattr(v, "item") else v for v in out]
 
 
-def _shown(tests: pd.DataFrame, pair: pd.Series) -> pd.Series:
-    """Which tests a pair's list in the page shows: all of them when there are at most
-    `TESTS_PER_PAIR`, else its first test, its last test before orientation (a separated pair's
-    deciding test), and the ones with the largest p-values (a linked pair's deciding test first)."""
-    order = pd.DataFrame({"pair": pair.to_numpy(), "row": np.arange(len(tests))})
-    size = order.groupby("pair")["row"].transform("size").to_numpy()
-    keep = size <= TESTS_PER_PAIR
+def _shown(pair: np.ndarray, searched: np.ndarray | None, p: np.ndarray | None) -> np.ndarray:
+    """Which tests a pair's list in the page shows (a mask over tests in decision order, `pair` the
+    pair's row of each): all of them when the pair has at most `TESTS_PER_PAIR`, else its first test,
+    its last test before orientation (`searched`: not an orientation test; a separated pair's deciding
+    test), and the ones with the largest p-values (`p`, NaN as lowest; a linked pair's deciding test first)."""
+    pair = np.asarray(pair, dtype=np.int64)
+    counts = np.bincount(pair) if pair.size else np.zeros(0, dtype=np.int64)
+    keep = counts[pair] <= TESTS_PER_PAIR
     if keep.all():
-        return pd.Series(keep, index=tests.index)
-    searched = ~_column(tests, "phase", "").astype(str).eq("orientation").to_numpy()
-    first = ~order.duplicated("pair", keep="first").to_numpy()
-    last = np.zeros(len(tests), dtype=bool)
-    last_rows = order[searched].drop_duplicates("pair", keep="last")["row"].to_numpy()
-    last[last_rows] = True
-    p = pd.to_numeric(_column(tests, "pvalue", np.nan), errors="coerce").fillna(-1.0).to_numpy()
-    ranked = pd.DataFrame({"pair": order["pair"], "p": -p, "row": order["row"]}).sort_values(
-        ["pair", "p", "row"], kind="stable")
-    rank = np.empty(len(tests), dtype=np.int64)
-    rank[ranked["row"].to_numpy()] = ranked.groupby("pair").cumcount().to_numpy()
-    keep |= first | last | (rank < TESTS_PER_PAIR - 2)
-    return pd.Series(keep, index=tests.index)
+        return keep
+    pos = np.arange(pair.size)
+    first = np.zeros(pair.size, dtype=bool)
+    first[np.unique(pair, return_index=True)[1]] = True
+    s_pos = pos if searched is None else pos[searched]
+    last = np.zeros(pair.size, dtype=bool)
+    last[s_pos[::-1][np.unique(pair[s_pos][::-1], return_index=True)[1]]] = True
+    neg_p = np.zeros(pair.size) if p is None else -np.nan_to_num(np.asarray(p, dtype=np.float64), nan=-1.0)
+    order = np.lexsort((pos, neg_p, pair))
+    rank = np.empty(pair.size, dtype=np.int64)
+    rank[order] = pos - np.searchsorted(pair[order], pair[order], side="left")
+    return keep | first | last | (rank < TESTS_PER_PAIR - 2)
 
 
 def shown_tests(source: Any, evidence: pd.DataFrame) -> pd.DataFrame:
-    """The tests the page shows (`_shown`'s rule) from tests.parquet (a path, read a few columns at a time,
+    """The tests the page shows (`_shown`) from tests.parquet (a path, read a few columns at a time,
     or an Arrow table), as a DataFrame with each pair's number of tests in ``pair_tests``: what the report
     holds grows with the pairs, not with the tests (a search of millions of tests is never a frame)."""
     import pyarrow as pa
@@ -505,27 +505,12 @@ def shown_tests(source: Any, evidence: pd.DataFrame) -> pd.DataFrame:
     pair = row[idx].astype(np.int64)
     del row
     counts = np.bincount(pair, minlength=len(evidence))
-    keep = counts[pair] <= TESTS_PER_PAIR
-    if not keep.all():
-        pos = np.arange(idx.size)
-        first = np.zeros(idx.size, dtype=bool)
-        first[np.unique(pair, return_index=True)[1]] = True
-        searched = np.ones(idx.size, dtype=bool)
-        if "phase" in table.column_names:
-            phase = table.column("phase").cast(pa.string())
-            searched = ~pc.equal(phase, "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
-        last = np.zeros(idx.size, dtype=bool)
-        s_pos = pos[searched]
-        rev = np.unique(pair[s_pos][::-1], return_index=True)[1]
-        last[s_pos[::-1][rev]] = True
-        p = np.full(idx.size, -1.0)
-        if "pvalue" in table.column_names:
-            p = np.nan_to_num(table.column("pvalue").to_numpy().astype(np.float64)[idx], nan=-1.0)
-        order = np.lexsort((pos, -p, pair))
-        starts = np.searchsorted(pair[order], pair[order], side="left")
-        rank = np.empty(idx.size, dtype=np.int64)
-        rank[order] = np.arange(idx.size) - starts
-        keep |= first | last | (rank < TESTS_PER_PAIR - 2)
+    searched = None
+    if "phase" in table.column_names:
+        phase = table.column("phase").cast(pa.string())
+        searched = ~pc.equal(phase, "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
+    p = table.column("pvalue").to_numpy().astype(np.float64)[idx] if "pvalue" in table.column_names else None
+    keep = _shown(pair, searched, p)
     picked = idx[keep]
     if pf is None:
         out = table.take(picked).to_pandas()
@@ -567,7 +552,8 @@ def tests_data(evidence: pd.DataFrame, tests: pd.DataFrame) -> dict[str, Any]:
         counts = pd.Series(t["pair_tests"].to_numpy(), index=pair.to_numpy()).groupby(level=0, sort=False).first()
     else:
         counts = pair.value_counts(sort=False)
-    keep = _shown(t, pair).to_numpy()
+    searched = ~_column(t, "phase", "").astype(str).eq("orientation").to_numpy()
+    keep = _shown(pair.to_numpy(), searched, pd.to_numeric(_column(t, "pvalue", np.nan), errors="coerce").to_numpy())
     t, pair = t.loc[keep].reset_index(drop=True), pair[keep].reset_index(drop=True)
     given = _column(t, "given", "").fillna("").astype(str)
     notes = pd.Series("", index=t.index)

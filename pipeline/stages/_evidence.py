@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from ..independence.columns import LABELLED, PHASES, VALUE_TYPES, TestColumns, TestLog
-from ..independence.result import CITestResult, with_effect_r
+from ..independence.result import CITestResult, effect_r_of, with_effect_r
 from ..report._common import p_is
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation
@@ -255,8 +255,7 @@ def _residual_words(row: dict[str, object], alpha: float) -> str:
     a, b = row["var_a"], row["var_b"]
     given = str(row["given"])
     past = str(row.get("correction", "none")) != "none"
-    bits = float(row["cmi_bits"])  # type: ignore[arg-type]
-    r = float(np.sqrt(max(0.0, 1.0 - 2.0 ** (-2.0 * bits)))) if bits == bits else float("nan")
+    r = float(effect_r_of(float(row["cmi_bits"])))  # type: ignore[arg-type]
     p = p_is(float(row["pvalue"]))  # type: ignore[arg-type]
     sources = ([_set_text(given)] if given else []) + (["its own previous window"] if past else [])
     if row["linked"]:
