@@ -18,7 +18,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from pipeline.config import load_config  # noqa: E402
+from pipeline.config import load_config, resolve_auto, search_pair_count  # noqa: E402
 from pipeline.independence.engine import EngineSettings  # noqa: E402
 from pipeline.search.knowledge import Knowledge  # noqa: E402
 from pipeline.search.skeleton import SignalExtras, pc_stable_skeleton  # noqa: E402
@@ -39,9 +39,12 @@ def search_night(frame, overrides: list[str], max_order: int | None = None):
     cards = {k: max(1, len(v)) for k, v in disc.levels.items()}
     timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg,
                          {c: v.get("method") for c, v in disc.summary["columns"].items()})
+    # `auto` settings resolved as a run resolves them (pipeline.api): rows with a previous window, level counts
+    # of the signals tested on codes, and the pairs the search tests
+    n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
+    coded = [c for c, s, lag in zip(timed.cards, timed.scores, timed.lag) if s is None and lag == 0]
+    cfg, _ = resolve_auto(cfg, n_info, coded, search_pair_count(sum(1 for lag in timed.lag if lag == 0), cfg.time.lags))
     settings = EngineSettings.from_config(cfg)
-    if settings.alpha == "auto":
-        settings = EngineSettings(**{**settings.__dict__, "alpha": 0.05})
     extras = None
     if cfg.test.method in ("auto", "gcm") or timed.timeline is not None:
         numeric = tuple(s is not None for s in timed.scores)
@@ -56,12 +59,12 @@ def search_night(frame, overrides: list[str], max_order: int | None = None):
 
 
 CASES = {
-    "before (G-test on 4 bins, rows independent; the old default)": ["test.method=g", "time.serial=off",
-                                                                       "time.test_series=true"],
+    "before (G-test on 4 bins, rows independent, alpha 0.05; the old default)": [
+        "test.method=g", "time.serial=off", "time.test_series=true", "test.alpha=0.05"],
     "auto tests, no time declared (rows independent)": ["test.method=auto", "time.serial=off"],
     "default + time and series declared": ["time.column=window_start", "time.series=[node]"],
-    "time and series declared, `test.alpha=0.02`": ["time.column=window_start", "time.series=[node]",
-                                                     "test.alpha=0.02"],
+    "time and series declared, flat `test.alpha=0.05` (not shared over the pairs)": [
+        "time.column=window_start", "time.series=[node]", "test.alpha=0.05"],
 }
 
 
@@ -74,7 +77,7 @@ def marginal_size(nights: int, first_seed: int = 500) -> tuple[int, int]:
     from itertools import combinations
 
     rejected = tested = 0
-    overrides = CASES["default + time and series declared"]
+    overrides = CASES["time and series declared, flat `test.alpha=0.05` (not shared over the pairs)"]
     for night in range(nights):
         sim = nightly_logs(seed=first_seed + night, persistence=True)
         names = [c for c in sim.frame.columns if c not in ("window_start", "node")]

@@ -369,7 +369,9 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     n_info = n_kept - int(time_doc.get("rows_without_previous", 0)) if time_doc["timed"] else n_kept
     # the level-count part of the rules is about contingency tables: only signals tested on their codes count
     coded = [c for c, numeric, lag in zip(cards, time_doc["numeric"], time_doc["lag"]) if not numeric and lag == 0]
-    cfg, auto_settings = resolve_auto(cfg, n_info, coded)
+    lag_pairs = _lag_pairs(time_doc)
+    n_pairs = len(names) * (len(names) - 1) // 2 - len(lag_pairs)
+    cfg, auto_settings = resolve_auto(cfg, n_info, coded, n_pairs)
     runner.cfg = cfg  # the stages from here on see the resolved settings (and are keyed by them)
 
     # knowledge: configuration + reviewed evidence file + the order of time (a copy from an earlier window
@@ -378,7 +380,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     knowledge = Knowledge.build(
         names,
         required=[*cfg.knowledge.required, *confirm],
-        forbidden=[*cfg.knowledge.forbidden, *_lag_pairs(time_doc)],
+        forbidden=[*cfg.knowledge.forbidden, *lag_pairs],
         rejected=reject,  # tested as usual, removed at the end (the report says when data disagree)
         tiers=time_tiers(names, time_doc["lag"], cfg.knowledge.tiers),
     )
@@ -447,6 +449,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                 "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},
                 "timings": timings,
                 "time": manifest["time"],
+                "auto_settings": auto_settings,
             },
             levels={k: v for k, v in levels_doc["levels"].items() if k in names},  # the signals tested
             alpha=float(cfg.test.alpha),

@@ -19,7 +19,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from .errors import ConfigError
 
-__all__ = ["Config", "load_config", "apply_overrides", "config_from_dict", "resolve_auto"]
+__all__ = ["Config", "load_config", "apply_overrides", "config_from_dict", "resolve_auto", "search_pair_count"]
 
 
 class _Section(BaseModel):
@@ -104,7 +104,9 @@ class TestSettings(_Section):
     # auto: G-test on codes for categorical signals on independent rows; the residual-covariance
     # test (gcm) when a numeric signal is involved or the rows are time-ordered
     method: Literal["auto", "g", "chi2", "permutation", "gcm"] = "auto"
-    # `auto`: 0.2 for small extracts (fewer than 100 * k**2 rows, k the median level count), else 0.05
+    # `auto`: 0.2 for small extracts (fewer than 100 * k**2 rows, k the median level count), else
+    # 0.05 shared over the pairs the search tests: min(0.05, 2 / pairs), so that at most about two
+    # pairs are expected to pass the first level by chance however many signals the extract has
     alpha: Union[Literal["auto"], Annotated[float, Field(gt=0.0, lt=1.0)]] = "auto"
     sparse_policy: Literal["flag", "independent", "dependent"] = "flag"
     min_rows_per_cell: float = Field(default=5.0, ge=0.0)
@@ -364,17 +366,33 @@ def _describe(err: ValidationError, data: dict[str, Any]) -> str:
     return f"Configuration key `{key[:_SHOWN_CHARS]}` = {_short(value)} is not allowed: {'; or '.join(msgs)}."
 
 
-def resolve_auto(cfg: Config, n_rows: int, cards: list[int]) -> tuple[Config, dict[str, Any]]:
+PAIRS_BY_CHANCE = 2.0  # `auto` alpha: pairs expected to pass the first level by chance, at most
+
+
+def search_pair_count(n_signals: int, lags: int = 0) -> int:
+    """The pairs a search tests: the signals with each other, and each earlier-window copy (lags 1..`lags`)
+    with every other signal of the present window (copies are never tested with each other or their own signal)."""
+    p = max(0, int(n_signals))
+    return p * (p - 1) // 2 + p * max(0, int(lags)) * max(0, p - 1)
+
+
+def resolve_auto(cfg: Config, n_rows: int, cards: list[int], n_pairs: int = 1) -> tuple[Config, dict[str, Any]]:
     """Replace `auto` settings by their values for an extract of `n_rows` rows and these level counts.
 
-    The rule comes from the study in ``bench/bench_small_samples.py`` (adjacency F1 on subsamples
-    of the four shared benchmark networks): with k the median number of levels (at least 2),
+    The small-extract rule comes from the study in ``bench/bench_small_samples.py`` (adjacency F1 on
+    subsamples of the four shared benchmark networks): with k the median number of levels (at least 2),
     ``test.alpha`` is 0.2 below ``100 * k**2`` rows (a typical two-variable table has fewer than 100
-    rows per cell) and 0.05 above; ``search.max_order`` is 2 below ``5 * k**5`` rows (a typical
-    table of order 3 would have fewer than 5 rows per cell, common practice) and uncapped above.
+    rows per cell). Above, alpha is 0.05 shared over the `n_pairs` pairs the search tests:
+    ``min(0.05, 2 / n_pairs)``. A search tests every pair at the first level, so m pairs with no link
+    pass it by chance m * alpha times on average (Bonferroni's bound on the expected number of false
+    rejections); the rule keeps that at most two however many signals there are, which is what keeps
+    false links rare in the simulations (``bench/bench_timeseries.py``, ``bench/bench_numeric.py``).
+    ``search.max_order`` is 2 below ``5 * k**5`` rows (a typical table of order 3 would have fewer
+    than 5 rows per cell, common practice) and uncapped above.
     Returns the resolved configuration and a record of what was decided and why. The caller passes the
-    rows a test can use (on time-ordered rows: the rows with a previous window) and the level counts of the
-    signals tested on their codes (signals tested on their values have no table cells to fill).
+    rows a test can use (on time-ordered rows: the rows with a previous window), the level counts of the
+    signals tested on their codes (signals tested on their values have no table cells to fill) and the
+    number of pairs the search tests (`search_pair_count`).
     """
     import statistics
 
@@ -383,11 +401,14 @@ def resolve_auto(cfg: Config, n_rows: int, cards: list[int]) -> tuple[Config, di
     test, search = cfg.test, cfg.search
     if test.alpha == "auto":
         small = n_rows < 100 * k**2
-        test = test.model_copy(update={"alpha": 0.2 if small else 0.05})
-        decided["test.alpha"] = {
-            "value": test.alpha,
-            "why": f"{n_rows} rows {'<' if small else '>='} 100 * k^2 = {100 * k**2:g} (k = {k:g} levels, median)",
-        }
+        pairs = max(1, int(n_pairs))
+        shared = min(0.05, PAIRS_BY_CHANCE / pairs)
+        test = test.model_copy(update={"alpha": 0.2 if small else float(f"{shared:.3g}")})
+        rows_why = f"{n_rows} rows {'<' if small else '>='} 100 * k^2 = {100 * k**2:g} (k = {k:g} levels, median)"
+        pairs_why = "" if small else (
+            f"; {pairs} pairs tested: min(0.05, {PAIRS_BY_CHANCE:g} / {pairs}) keeps the pairs expected to pass "
+            f"the first level by chance at {pairs * test.alpha:.2g} or fewer")
+        decided["test.alpha"] = {"value": test.alpha, "why": rows_why + pairs_why}
     if search.max_order == "auto":
         small = n_rows < 5 * k**5
         search = search.model_copy(update={"max_order": 2 if small else None})

@@ -8,7 +8,7 @@ import os
 from pathlib import Path
 from typing import Any, Sequence
 
-from .config import Config, resolve_auto
+from .config import Config, resolve_auto, search_pair_count
 from .errors import ConfigError
 from .independence.engine import EngineSettings
 from .independence.mixed import MixedEngine
@@ -39,7 +39,11 @@ def probe(cfg: Config, input_path: str | os.PathLike[str], x: str, y: str, given
     if len({x, y, *given}) != 2 + len(given):
         raise ConfigError("x, y and the --given signals must all be different.")
     n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
-    cfg, _ = resolve_auto(cfg, n_info, [c for c, s in zip(timed.cards, timed.scores) if s is None])
+    # alpha as a run on this extract would resolve it: the pairs of its signals (series columns set aside
+    # unless `time.test_series`) and of their earlier-window copies
+    series = set(timed.summary.get("series") or []) if not cfg.time.test_series else set()
+    n_pairs = search_pair_count(sum(1 for n in names if n not in series), cfg.time.lags if timed.timeline is not None else 0)
+    cfg, _ = resolve_auto(cfg, n_info, [c for c, s in zip(timed.cards, timed.scores) if s is None], n_pairs)
     settings = EngineSettings.from_config(cfg)
     engine = MixedEngine(timed.codes, timed.names, timed.cards, settings, scores=timed.scores,
                          timeline=timed.timeline, own_past=timed.own_past)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from pipeline.config import apply_overrides, config_from_dict, load_config, resolve_auto
+from pipeline.config import apply_overrides, config_from_dict, load_config, resolve_auto, search_pair_count
 from pipeline.errors import ConfigError
 
 
@@ -89,3 +89,34 @@ def test_auto_settings_follow_the_small_extract_rule():
     assert middle.test.alpha == 0.05 and middle.search.max_order == 2
     fixed, why = resolve_auto(load_config(None, ["test.alpha=0.01", "search.max_order=none"]), 300, [3, 3])
     assert (fixed.test.alpha, fixed.search.max_order, why) == (0.01, None, {})
+
+
+def test_auto_alpha_shares_005_over_the_pairs_tested():
+    """Above the small-extract rows, `auto` alpha is min(0.05, 2 / pairs) (3 significant digits): m pairs
+    with no link pass the first level by chance m * alpha times on average (Bonferroni's bound), so the
+    rule keeps that at about two. Few signals keep 0.05; the small-extract 0.2 is unchanged."""
+    cfg = load_config(None)
+    cases = {1: 0.05, 40: 0.05, 91: 0.022, 120: 0.0167, 780: 0.00256}
+    for pairs, alpha in cases.items():
+        got, why = resolve_auto(cfg, 10_000, [3, 3], pairs)
+        assert got.test.alpha == alpha, pairs
+        assert got.test.alpha * pairs <= 2.01 or alpha == 0.05
+        assert f"{pairs} pairs tested" in why["test.alpha"]["why"]
+    small, _ = resolve_auto(cfg, 300, [3, 3], 780)
+    assert small.test.alpha == 0.2
+
+
+def test_tested_pairs_counts_what_the_search_tests():
+    """`search_pair_count` equals the pairs a run leaves in the search: all pairs of its variables minus the pairs
+    the time order rules out (two earlier copies, or a signal with its own copy; `api._lag_pairs`)."""
+    from pipeline.api import _lag_pairs
+
+    for p in (2, 5, 14):
+        for lags in (0, 1, 3):
+            names, source, lag = [], [], []
+            for k in range(lags + 1):
+                for i in range(p):
+                    names.append(f"s{i}@{k}"), source.append(f"s{i}"), lag.append(k)
+            n = len(names)
+            doc = {"names": names, "source": source, "lag": lag}
+            assert search_pair_count(p, lags) == n * (n - 1) // 2 - len(_lag_pairs(doc)), (p, lags)

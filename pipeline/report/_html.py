@@ -185,7 +185,9 @@ def _details_html(ctx: Any) -> str:
         parts.append("<p>None: every input column was kept.</p>")
     settings: list[tuple[str, str]] = []
     _flatten("", s.get("settings") or {}, settings)
-    parts.append(f"<h3>Settings</h3><p>Tests at alpha = {e(f'{ctx.alpha:g}')}; orientation "
+    chosen = (s.get("auto_settings") or {}).get("test.alpha") or {}
+    why = f" (chosen by <code>test.alpha: auto</code>: {e(chosen['why'])})" if chosen.get("why") else ""
+    parts.append(f"<h3>Settings</h3><p>Tests at alpha = {e(f'{ctx.alpha:g}')}{why}; orientation "
                  f"{'on' if ctx.orient else 'off'}.</p>")
     if settings:
         parts.append("<details><summary>every setting of this run</summary><table><tbody>")
