@@ -146,8 +146,8 @@ def stable_hash(obj: Any) -> str:
 
 def fingerprint_paths(paths: list[Path], root: Path | None = None) -> str:
     """Content hash of input files: each file's path relative to `root` (so partition folder names
-    such as ``region=eu/`` count), then its bytes."""
-    h = hashlib.blake2b(digest_size=16)
+    such as ``region=eu/`` count), then its bytes (SHA-256, as `checksum`)."""
+    h = hashlib.sha256()
     for p in sorted(paths):
         try:
             label = p.relative_to(root).as_posix() if root is not None else p.name
@@ -213,8 +213,16 @@ class CacheDamaged(Exception):
 
 
 def checksum(data: bytes) -> str:
-    """The checksum a cache entry keeps for each of its files."""
-    return hashlib.blake2b(data, digest_size=16).hexdigest()
+    """The checksum a cache entry keeps for each of its files: SHA-256, named in the value (it runs on the
+    processor's SHA instructions, about twice as fast as BLAKE2b here on a stage's hundreds of megabytes)."""
+    return "sha256:" + hashlib.sha256(data).hexdigest()
+
+
+def checksum_matches(data: bytes, recorded: str) -> bool:
+    """Whether `data` has the `recorded` checksum (entries written before the algorithm was named: BLAKE2b)."""
+    if recorded.startswith("sha256:"):
+        return checksum(data) == recorded
+    return hashlib.blake2b(data, digest_size=16).hexdigest() == recorded
 
 
 class StageCache:
@@ -304,7 +312,7 @@ class StageCache:
         info = doc.get("files", {}).get(name)
         if info is None:
             raise CacheDamaged(f"{name} is not listed in {_ENTRY_FILE}")
-        if len(data) != info["size"] or checksum(data) != info["checksum"]:
+        if len(data) != info["size"] or not checksum_matches(data, str(info["checksum"])):
             raise CacheDamaged(f"{name} does not match its checksum")
         return data
 

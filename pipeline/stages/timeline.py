@@ -18,6 +18,8 @@ knows a later copy cannot cause an earlier one.
 
 from __future__ import annotations
 
+import os
+
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -177,6 +179,21 @@ def _time_column(times: pd.DataFrame, cfg: Config) -> tuple[str | None, str]:
     return str(times.columns[0]), "detected: the first column that parses as timestamps"
 
 
+def _map_threads(fn: Any, items: list[Any], jobs: int) -> list[Any]:
+    """`fn` over `items` on up to `parallel.jobs` threads (-1: every core), in order. The rank sorts behind
+    the normal scores release the GIL, so the columns of a wide extract are scored side by side."""
+    width = (os.cpu_count() or 1) if jobs == -1 else max(1, int(jobs))
+    width = min(width, len(items))
+    if width <= 1:
+        return [fn(x) for x in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    import scipy.stats  # noqa: F401  (imported once here, not by the threads side by side)
+
+    with ThreadPoolExecutor(width) as pool:
+        return list(pool.map(fn, items))
+
+
 def _series_columns(table: pd.DataFrame, kinds: dict[str, str], t: np.ndarray, cfg: Config) -> tuple[list[str], str]:
     declared = cfg.time.series
     if declared is not None:
@@ -302,9 +319,10 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
 
     in_file_order = {c: table[c].to_numpy(dtype=np.float64) for c in signals if kinds.get(c) == "numeric"}
     values = {c: in_order(v) for c, v in in_file_order.items()}  # each numeric column put in order once
-    base_scores = [normal_scores(values[c])
-                   if kinds.get(c) == "numeric" and as_numbers and c not in binned
-                   and methods.get(c, "quantile") != "categorical" else None for c in signals]
+    scored = [c for c in signals if kinds.get(c) == "numeric" and as_numbers and c not in binned
+              and methods.get(c, "quantile") != "categorical"]
+    scores = dict(zip(scored, _map_threads(normal_scores, [values[c] for c in scored], cfg.parallel.jobs)))
+    base_scores = [scores.get(c) for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
         rho = _pair_persistence(c, s, here, before)
