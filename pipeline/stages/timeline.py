@@ -19,7 +19,6 @@ knows a later copy cannot cause an earlier one.
 from __future__ import annotations
 
 import os
-
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
