@@ -76,6 +76,26 @@ def test_stage_cache_ignores_an_interrupted_attempt(tmp_path):
         assert work is None  # finished meanwhile: nothing to write
 
 
+def test_cache_entries_keep_verifying_across_the_checksum_change(tmp_path):
+    """Checksums name their algorithm (`sha256:` + the hashlib hex digest); an entry written before they did
+    (a bare 32-hex-digit BLAKE2b digest) still reads, and a wrong digest of either kind is damage."""
+    import hashlib
+
+    from pipeline.runs import CacheDamaged
+
+    assert checksum(b"abc") == "sha256:" + hashlib.sha256(b"abc").hexdigest()
+    cache = StageCache.beside(tmp_path).open()
+    old = hashlib.blake2b(b"abc", digest_size=16).hexdigest()
+    for key, recorded in (("old", old), ("new", checksum(b"abc")), ("bad-old", "0" * 32), ("bad-new", "sha256:" + "0" * 64)):
+        with cache.writing("clean", key) as work:
+            (work / "a.txt").write_bytes(b"abc")
+            cache.commit("clean", key, work, {"a.txt": {"size": 3, "checksum": recorded}})
+    assert cache.read("clean", "old", "a.txt") == cache.read("clean", "new", "a.txt") == b"abc"
+    for key in ("bad-old", "bad-new"):
+        with pytest.raises(CacheDamaged):
+            cache.read("clean", key, "a.txt")
+
+
 def test_publish_replaces_only_when_complete(tmp_path):
     """Publishing moves the finished folder into place, replacing the old one."""
     final = tmp_path / "run"
