@@ -263,7 +263,8 @@ def test_asymptotic_g_on_past_strata_misses_its_size_so_permutations_are_used():
 def test_probe_uses_the_alpha_a_run_resolves(tmp_path, capsys):
     """`probe` resolves `test.alpha: auto` as a run on the same extract and settings does: the pairs of the
     signals the run tests (series columns set aside; earlier-window copies counted with `time.lags`); the
-    report says which alpha the run used and why (14 signals: 91 pairs)."""
+    report says which alpha the run used and why (14 signals: 91 pairs), also when the nightly flow renders
+    it again from the run folder."""
     import json
 
     from pipeline.api import run_pipeline
@@ -282,5 +283,10 @@ def test_probe_uses_the_alpha_a_run_resolves(tmp_path, capsys):
         assert main(args) == 0
         probed = json.loads(capsys.readouterr().out)
         assert probed["alpha"] == res.manifest["auto_settings"]["test.alpha"]["value"], lags
+    from pipeline.stages.report import render_report_html
+
     page = (tmp_path / "run-0" / "report.html").read_text(encoding="utf-8")
+    assert "chosen by <code>test.alpha: auto</code>" in page and "91 pairs tested: min(0.05, 2 / 91)" in page
+    # the nightly flow renders the page again from the run folder (with what changed): the same words
+    page = render_report_html(tmp_path / "run-0", None).read_text(encoding="utf-8")
     assert "chosen by <code>test.alpha: auto</code>" in page and "91 pairs tested: min(0.05, 2 / 91)" in page

@@ -196,6 +196,7 @@ def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> Re
             "settings": {k: section(k) for k in ("test", "search", "discretise")},
             "timings": manifest.get("stages") or {},
             "time": manifest.get("time") or {},
+            "auto_settings": manifest.get("auto_settings") or {},
         },
         levels=levels,
         alpha=float(section("test").get("alpha", 0.05)),
