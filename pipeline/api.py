@@ -414,14 +414,13 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             f"Row counts do not reconcile: read {rows['read']} != kept {rows['kept']} + rejected "
             f"{rows['rejected']} + quarantined {rows['quarantined']}."
         )
-    timings = runner.stage_record()
     manifest: dict[str, Any] = {
         "edgeproof_version": runner.version,
         "config": cfg.model_dump(mode="json"),
         "input": {"path": str(source), "files": [str(f) for f in files], "fingerprint": fp},
         "rows": rows,
         "columns": {"kept": kept, "dropped": dropped, "tested": names},
-        "stages": timings,
+        "stages": runner.stage_record(),
         "packages": _versions(),
         "platform": {"machine": platform.machine(), "cpus": os.cpu_count()},
         "cache_keys": runner.cache_keys(),
@@ -444,13 +443,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             night=manifest["night"],
             show_changes=bool(run_name),
             near_alpha_factor=float(cfg.search.near_alpha_factor),
-            summary={
-                "input": str(source), "rows": rows, "columns_kept": kept, "columns_dropped": dropped,
-                "settings": {"test": cfg.section("test"), "search": cfg.section("search"), "discretise": cfg.section("discretise")},
-                "timings": timings,
-                "time": manifest["time"],
-                "auto_settings": auto_settings,
-            },
+            summary=report.summary_of(manifest),  # as a page rendered again from the run folder reads it
             levels={k: v for k, v in levels_doc["levels"].items() if k in names},  # the signals tested
             alpha=float(cfg.test.alpha),
             orient=cfg.search.orient,

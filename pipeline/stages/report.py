@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 import pandas as pd
 
@@ -19,7 +19,7 @@ from ..report import _exports, _graph, _html
 from ..report._common import compare_truth, near_alpha, pair_key, signal_names
 from ..runs import atomic_write_bytes, atomic_write_text
 
-__all__ = ["ReportContext", "render_report_html", "run"]
+__all__ = ["ReportContext", "render_report_html", "run", "summary_of"]
 
 _NEEDED = ("var_a", "var_b", "linked")
 
@@ -37,7 +37,8 @@ class ReportContext:
     summary : dict
         ``{"input": path, "rows": {"read", "kept", "rejected", "quarantined"}, "dropped" (or
         "columns_dropped"): {column: reason}, "settings": {...}, "timings": {stage: seconds or
-        {"seconds", "reused"}}}``; the manifest's ``columns.dropped`` and ``stages`` are accepted.
+        {"seconds", "reused"}}, "time": {...}, "auto_settings": {...}}`` (`summary_of` reads it from a
+        manifest); the manifest's ``columns.dropped`` and ``stages`` are accepted.
     levels : dict
         Signal -> level labels (code order).
     alpha : float
@@ -171,6 +172,20 @@ def _write_page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: lis
     return atomic_write_text(out / "report.html", page)
 
 
+def summary_of(manifest: Mapping[str, Any]) -> dict[str, Any]:
+    """The page's run summary (`ReportContext.summary`) from a run's manifest: one reading, for the run
+    that writes the page and for a page rendered again from the run folder."""
+    cfg = manifest.get("config") or {}
+    return {
+        "input": (manifest.get("input") or {}).get("path"), "rows": manifest.get("rows") or {},
+        "columns_dropped": (manifest.get("columns") or {}).get("dropped") or {},
+        "settings": {k: cfg.get(k) or {} for k in ("test", "search", "discretise")},
+        "timings": manifest.get("stages") or {},
+        "time": manifest.get("time") or {},
+        "auto_settings": manifest.get("auto_settings") or {},
+    }
+
+
 def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> ReportContext:
     """The report context of a finished run folder, read back from its manifest and levels."""
     d = Path(run_dir)
@@ -190,14 +205,7 @@ def context_from_run(run_dir: Path, changes: dict[str, Any] | None = None) -> Re
     return ReportContext(
         title=section("report").get("title") or cfg.get("name") or "edgeproof run",
         night=str(manifest.get("night") or d.resolve().name),
-        summary={
-            "input": (manifest.get("input") or {}).get("path"), "rows": manifest.get("rows") or {},
-            "columns_dropped": (manifest.get("columns") or {}).get("dropped") or {},
-            "settings": {k: section(k) for k in ("test", "search", "discretise")},
-            "timings": manifest.get("stages") or {},
-            "time": manifest.get("time") or {},
-            "auto_settings": manifest.get("auto_settings") or {},
-        },
+        summary=summary_of(manifest),
         levels=levels,
         alpha=float(section("test").get("alpha", 0.05)),
         orient=bool(section("search").get("orient", False)),
