@@ -309,6 +309,35 @@ def test_missing_dot_is_a_clear_error(tmp_path, monkeypatch):
 
 
 @needs_dot
+def test_background_drawing_reports_graphviz_complaint_and_cleans_up(tmp_path, monkeypatch):
+    """The drawing runs in its own Graphviz process while the page is prepared: DOT that Graphviz
+    refuses is an EdgeproofError quoting its first complaint; leaving the block early (the report
+    failed meanwhile) stops the process, and no temporary folder is left either way."""
+    import graphviz
+    import tempfile
+
+    from pipeline.report._graph import Drawing
+
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    bad = graphviz.Digraph()
+    bad.body.append("  a -> ;\n")
+    with pytest.raises(EdgeproofError, match=r"Graphviz failed to draw the test graph as svg: .*syntax error"):
+        with Drawing(bad, ("svg",), "the test graph") as drawing:
+            drawing.result()
+    good = graphviz.Digraph(engine="neato")
+    for i in range(200):
+        good.edge(f"n{i}", f"n{(i * 7) % 200}")
+    with pytest.raises(RuntimeError, match="page failed"):
+        with Drawing(good, ("svg", "png")) as drawing:
+            proc = drawing._proc
+            raise RuntimeError("page failed")
+    assert proc.poll() is not None  # stopped, not left running
+    with Drawing(good, ("svg",)) as drawing:
+        assert drawing.result()["svg"].lstrip().startswith(b"<?xml")
+    assert not list(tmp_path.glob("edgeproof-graph-*"))
+
+
+@needs_dot
 def test_no_png_when_switched_off_and_missing_columns_refused(tmp_path):
     """png=False skips graph.png; an evidence table without var_a is refused with a DataError."""
     files = run(_evidence(), _tests(), _context(png=False, truth_edges=None), tmp_path)

@@ -17,7 +17,7 @@ import pandas as pd
 from ..errors import EdgeproofError
 from ._common import compare_truth, direction, edge_classes, fmt_num, fmt_p, given_text, pair_key
 
-__all__ = ["build_graph", "build_truth_graph", "layout_engine", "render", "render_formats"]
+__all__ = ["Drawing", "build_graph", "build_truth_graph", "layout_engine", "render", "render_formats"]
 
 _FONT = "Helvetica"
 _INSTALL_HINT = "install Graphviz (`apt-get install graphviz`) so that `dot` is on PATH"
@@ -171,33 +171,68 @@ def build_truth_graph(
     return g
 
 
+class Drawing:
+    """One Graphviz process laying a graph out and writing several formats while the caller goes on
+    (the layout is the slow part of a report; the page, the exports and the tests it shows are
+    prepared meanwhile). `result()` waits and returns format -> bytes; leaving the ``with`` block
+    stops a process still running and removes its temporary folder."""
+
+    def __init__(self, graph: graphviz.Digraph, fmts: Sequence[str], what: str | None = None) -> None:
+        import subprocess
+        import tempfile
+        from pathlib import Path
+
+        self.engine, self.fmts, self.what = graph.engine, tuple(fmts), what or "the graph"
+        self._tmp = Path(tempfile.mkdtemp(prefix="edgeproof-graph-"))
+        source = self._tmp / "graph.gv"
+        source.write_text(graph.source, encoding="utf-8")
+        self._outs = {f: self._tmp / f"graph.{f}" for f in self.fmts}
+        cmd = [self.engine] + [a for f in self.fmts for a in (f"-T{f}", f"-o{self._outs[f]}")] + [str(source)]
+        self._stderr = open(self._tmp / "stderr.txt", "wb")  # a file, not a pipe: no pipe can fill and stall
+        try:
+            self._proc: Any = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                               stderr=self._stderr)
+        except FileNotFoundError as err:
+            self.close()
+            raise EdgeproofError(
+                f"Graphviz program `{self.engine}` was not found while drawing {self.what}; {_INSTALL_HINT}."
+            ) from err
+
+    def result(self) -> dict[str, bytes]:
+        """Wait for the process; format -> bytes, or an EdgeproofError naming Graphviz's first complaint."""
+        code = self._proc.wait()
+        self._stderr.close()
+        if code != 0:
+            detail = (self._tmp / "stderr.txt").read_bytes().decode("utf-8", "replace").strip().splitlines()
+            first = detail[0] if detail else f"exit status {code}"
+            raise EdgeproofError(
+                f"Graphviz failed to draw {self.what} as {'/'.join(self.fmts)}: {first}; "
+                "check the Graphviz installation (`dot -V`)."
+            )
+        return {f: self._outs[f].read_bytes() for f in self.fmts}
+
+    def close(self) -> None:
+        import shutil
+
+        proc = getattr(self, "_proc", None)
+        if proc is not None and proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        self._stderr.close()
+        shutil.rmtree(self._tmp, ignore_errors=True)
+
+    def __enter__(self) -> "Drawing":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
 def render_formats(graph: graphviz.Digraph, fmts: Sequence[str], what: str | None = None) -> dict[str, bytes]:
     """Render `graph` to several formats with one layout: one Graphviz process given one ``-T`` and
     ``-o`` per format (the layout is the slow part; two processes would lay the graph out twice)."""
-    import subprocess
-    import tempfile
-    from pathlib import Path
-
-    if len(fmts) == 1:
-        return {fmts[0]: render(graph, fmts[0], what)}
-    with tempfile.TemporaryDirectory(prefix="edgeproof-graph-") as tmp:
-        outs = {f: Path(tmp) / f"graph.{f}" for f in fmts}
-        cmd = [graph.engine] + [a for f in fmts for a in (f"-T{f}", f"-o{outs[f]}")]
-        try:
-            proc = subprocess.run(cmd, input=graph.source.encode("utf-8"), capture_output=True, check=False)
-        except FileNotFoundError as err:
-            raise EdgeproofError(
-                f"Graphviz program `{graph.engine}` was not found while drawing {what or 'the graph'}; "
-                f"{_INSTALL_HINT}."
-            ) from err
-        if proc.returncode != 0:
-            detail = proc.stderr.decode("utf-8", "replace").strip().splitlines()
-            first = detail[0] if detail else f"exit status {proc.returncode}"
-            raise EdgeproofError(
-                f"Graphviz failed to draw {what or 'the graph'} as {'/'.join(fmts)}: {first}; "
-                "check the Graphviz installation (`dot -V`)."
-            )
-        return {f: outs[f].read_bytes() for f in fmts}
+    with Drawing(graph, fmts, what) as drawing:
+        return drawing.result()
 
 
 def render(graph: graphviz.Digraph, fmt: str, what: str | None = None) -> bytes:

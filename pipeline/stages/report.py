@@ -134,7 +134,14 @@ def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Pat
     ev = _prepared(evidence, context)
     names = signal_names(ev, context.levels)
     graph = _graph.build_graph(ev, names, context.levels, context.alpha, context.orient)
-    drawn = _graph.render_formats(graph, ("svg", "png") if context.png else ("svg",), "graph.svg and graph.png")
+    # Graphviz lays the graph out in its own process while the exports and the page's tests are prepared
+    with _graph.Drawing(graph, ("svg", "png") if context.png else ("svg",), "graph.svg and graph.png") as drawing:
+        csv = _exports.evidence_csv(ev, context.levels)
+        nxg = _exports.build_nx_graph(ev, names, context.levels)
+        graphml, node_link = _exports.graphml_bytes(nxg), _exports.node_link_json(nxg)
+        if not isinstance(tests, pd.DataFrame):  # tests.parquet (a path or an Arrow table): pick the shown tests
+            tests = _html.shown_tests(tests, ev)
+        drawn = drawing.result()
     svg = drawn["svg"]
     files = {
         "graph.dot": atomic_write_text(out / "graph.dot", graph.source),
@@ -142,10 +149,9 @@ def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Pat
     }
     if context.png:
         files["graph.png"] = atomic_write_bytes(out / "graph.png", drawn["png"])
-    files["evidence.csv"] = atomic_write_bytes(out / "evidence.csv", _exports.evidence_csv(ev, context.levels))
-    nxg = _exports.build_nx_graph(ev, names, context.levels)
-    files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", _exports.graphml_bytes(nxg))
-    files["graph.json"] = atomic_write_bytes(out / "graph.json", _exports.node_link_json(nxg))
+    files["evidence.csv"] = atomic_write_bytes(out / "evidence.csv", csv)
+    files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", graphml)
+    files["graph.json"] = atomic_write_bytes(out / "graph.json", node_link)
     files["report.html"] = _write_page(ev, tests, context, names, svg, out)
     return files
 
