@@ -313,8 +313,9 @@ def test_background_drawing_reports_graphviz_complaint_and_cleans_up(tmp_path, m
     """The drawing runs in its own Graphviz process while the page is prepared: DOT that Graphviz
     refuses is an EdgeproofError quoting its first complaint; leaving the block early (the report
     failed meanwhile) stops the process, and no temporary folder is left either way."""
-    import graphviz
     import tempfile
+
+    import graphviz
 
     from pipeline.report._graph import Drawing
 
