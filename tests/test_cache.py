@@ -161,3 +161,20 @@ def test_two_runs_at_once_under_one_parent_both_succeed(tmp_path):
 def test_two_runs_at_once_repeated(tmp_path):
     """The same, eight times."""
     _concurrent_rounds(tmp_path, rounds=8)
+
+
+def test_a_run_leaves_the_collector_as_it_found_it(tmp_path, monkeypatch):
+    """A run freezes the collector's view of its long-lived heap stage by stage (`api._frozen_heap`);
+    when it ends, finished or failed in a stage, nothing stays frozen, so a long-lived process (the
+    nightly loop) collects cycles as before."""
+    import gc
+
+    freezes = []
+    real_freeze = gc.freeze
+    monkeypatch.setattr(gc, "freeze", lambda: (freezes.append(1), real_freeze())[1])
+    assert gc.get_freeze_count() == 0
+    assert _run(tmp_path / "runs" / "ok") == 0
+    assert gc.get_freeze_count() == 0 and len(freezes) > 5  # stage by stage
+    freezes.clear()
+    assert _run(tmp_path / "runs" / "bad", "--set", "time.column=X1") == 2  # X1 holds no timestamps: the timeline stage fails
+    assert gc.get_freeze_count() == 0 and len(freezes) > 1

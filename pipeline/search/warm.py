@@ -41,4 +41,7 @@ def warm_worker(_shared: Any, task: int) -> int:
     # the kernels a search level uses, over distinct weighted rows and over plain rows
     for compress in (True, False):
         pc_stable_skeleton(data, names, [2] * 5, EngineSettings(compress_rows=compress))
+    import gc
+
+    gc.freeze()  # the modules just loaded are long-lived: the collector need not rescan them (see api._frozen_heap)
     return task
