@@ -165,6 +165,25 @@ _COMMANDS = {"run": _cmd_run, "probe": _cmd_probe, "nightly": _cmd_nightly, "com
              "history": _cmd_history, "demo": _cmd_demo}
 
 
+def program() -> int:
+    """The `edgeproof` program (`python -m pipeline` and the installed command): `main` on the command
+    line, then the collector's view of the heap is frozen before the interpreter ends.
+
+    An ending interpreter clears every module and collects between the steps, rescanning the whole
+    heap that a run leaves (pandas, numba, scipy and the run's tables): about 1 s after a 70-signal
+    run, where freezing first takes 0.07 s (measured at exit). Nothing is skipped by it: every file
+    is written, flushed and closed by then, the standard streams are flushed by the interpreter, and
+    exit handlers (worker pools, temporary folders) still run. Calls of `main` from Python (the
+    tests) leave the collector as it was."""
+    code = main()
+    import gc
+
+    sys.stdout.flush()
+    sys.stderr.flush()
+    gc.freeze()
+    return code
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the `edgeproof` command; returns the exit code."""
     argv = list(sys.argv[1:] if argv is None else argv)
