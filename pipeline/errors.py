@@ -8,6 +8,7 @@ __all__ = [
     "DataError",
     "LimitError",
     "LockHeldError",
+    "CacheWriteError",
     "EXIT_OK",
     "EXIT_FAILURE",
     "EXIT_USAGE",
@@ -54,3 +55,7 @@ class LockHeldError(EdgeproofError):
     """Another run holds the lock on this output folder (exit code 4)."""
 
     exit_code = EXIT_LOCKED
+
+
+class CacheWriteError(EdgeproofError):
+    """A stage cache entry could not be written (disk full, no permission); exit code 1."""

@@ -45,8 +45,8 @@ def _ingest(call: StageCall) -> dict[str, Any]:
 
     res = ingest.run(call["input"], call.cfg.input, call.cfg.limits)
     return {
-        "ingest.parquet": res.table,
-        # the table's index (each row's line in its file) beside it: the Parquet file keeps no index
+        "ingest.arrow": res.table,
+        # the table's index (each row's line in its file) beside it: the table file keeps no index
         "ingest-lines.npy": res.table.index.to_numpy(dtype=np.int64),
         "ingest-rejected.parquet": res.rejected,
         "ingest.json": {"rows_read": res.rows_read, "sources": res.sources, "summary": res.summary},
@@ -57,7 +57,7 @@ def _clean(call: StageCall) -> dict[str, Any]:
     from .stages import clean, ingest
 
     meta = call["ingest.json"]
-    table = call["ingest.parquet"]
+    table = call["ingest.arrow"]
     table.index = pd.Index(np.array(call["ingest-lines.npy"], dtype=np.int64), name="line")
     ingested = ingest.Ingested(
         table=table, rejected=call["ingest-rejected.parquet"],
@@ -66,7 +66,7 @@ def _clean(call: StageCall) -> dict[str, Any]:
     call.inputs.clear()  # the stage holds the only reference: the raw table goes with `ingested`
     cleaned = clean.run(ingested, call.cfg)
     return {
-        "clean.parquet": cleaned.table,
+        "clean.arrow": cleaned.table,
         "clean-times.parquet": cleaned.times,
         "quarantined.parquet": cleaned.quarantined,
         "rejected.parquet": pd.concat([ingested.rejected, cleaned.quarantined], ignore_index=True),
@@ -83,7 +83,7 @@ def _discretise(call: StageCall) -> dict[str, Any]:
 
     meta = call["clean-meta.json"]
     cleaned = clean.Cleaned(
-        table=call["clean.parquet"], kinds=meta["kinds"], columns=meta["columns"],
+        table=call["clean.arrow"], kinds=meta["kinds"], columns=meta["columns"],
         quarantined=call["quarantined.parquet"], summary=call["cleaning.json"],
     )
     reuse_levels = call["reuse_levels"]
@@ -103,7 +103,7 @@ def _timeline(call: StageCall) -> dict[str, Any]:
     from .stages import timeline  # loads scipy.stats (rank scores): only when the stage runs, not on a cache hit
 
     methods = {c: v.get("method") for c, v in (call["discretise.json"].get("columns") or {}).items()}
-    timed = timeline.run(call["clean.parquet"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg,
+    timed = timeline.run(call["clean.arrow"], call["clean-times.parquet"], levels["kinds"], codes, cards, call.cfg,
                          methods)
     n = timed.codes.shape[1]
     # one row per variable (NaN rows for those tested on codes); no columns at all when none is numeric,
@@ -207,17 +207,17 @@ _SEARCH_DATA = ("search-codes.npy", "search-scores.npy", "search-prev.npy", "tim
 # The stages in order. A new stage is one entry here plus its function above (see DEVELOPERS.md).
 STAGES: tuple[Stage, ...] = (
     Stage("ingest", _ingest, reads=("input",), settings=("input", "limits"),
-          writes=("ingest.parquet", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json")),
-    Stage("clean", _clean, reads=("ingest.parquet", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json"),
+          writes=("ingest.arrow", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json")),
+    Stage("clean", _clean, reads=("ingest.arrow", "ingest-lines.npy", "ingest-rejected.parquet", "ingest.json"),
           settings=("clean", "columns"),
-          writes=("clean.parquet", "clean-times.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
+          writes=("clean.arrow", "clean-times.parquet", "quarantined.parquet", "rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("discretise", _discretise,
-          reads=("clean.parquet", "quarantined.parquet", "clean-meta.json", "cleaning.json", "reuse_levels"),
+          reads=("clean.arrow", "quarantined.parquet", "clean-meta.json", "cleaning.json", "reuse_levels"),
           settings=("discretise", "test.missing"),
           writes=("discretised.parquet", "levels.json", "discretise.json"),
           carries=("rejected.parquet", "cleaning.json", "clean-meta.json")),
     Stage("timeline", _timeline,
-          reads=("clean.parquet", "clean-times.parquet", "discretised.parquet", "levels.json", "discretise.json"),
+          reads=("clean.arrow", "clean-times.parquet", "discretised.parquet", "levels.json", "discretise.json"),
           settings=("time", "discretise.default", "columns"),
           writes=("timeline.parquet", "search-codes.npy", "search-scores.npy", "search-prev.npy", "timeline.json")),
     Stage("battery", _battery, reads=_SEARCH_DATA, settings=("test",),

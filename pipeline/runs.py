@@ -324,12 +324,14 @@ class StageCache:
     @contextlib.contextmanager
     def writing(self, stage: str, key: str, *, resume: bool = False) -> Iterator[Path | None]:
         """Hold the entry's lock and give its work folder, or None when another run finished the entry
-        while this one waited for the lock. Without `resume` the work folder starts empty."""
+        while this one waited for the lock. Without `resume` the work folder starts empty. The context
+        may be left on another thread than the one that entered it (the runner's entry writer)."""
         from filelock import FileLock
 
         locks = self.root / ".locks"
         locks.mkdir(parents=True, exist_ok=True)
-        with FileLock(str(locks / f"{stage}-{key}.lock")):
+        # not tied to this thread: the runner's writer thread releases it once it has committed the entry
+        with FileLock(str(locks / f"{stage}-{key}.lock"), thread_local=False):
             try:
                 finished = self.lookup(stage, key) is not None
             except CacheDamaged:

@@ -303,3 +303,28 @@ def test_fast_and_careful_csv_paths_agree(tmp_path, monkeypatch, body):
     careful = _read(path)
     pd.testing.assert_frame_equal(fast.table, careful.table)
     pd.testing.assert_frame_equal(fast.rejected, careful.rejected)
+
+
+def test_quote_check_matches_a_byte_by_byte_scan(monkeypatch):
+    """The vectorised check that no line break falls inside quotes agrees with a plain scan of the bytes
+    (quote state flipped at each quote, a line break while inside fails), across block sizes small enough
+    to cut every file into many blocks (property test on random bytes)."""
+    import random
+
+    from pipeline.stages import _data_read
+
+    def scan(data: bytes) -> bool:
+        inside = False
+        for x in data:
+            if x == ord('"'):
+                inside = not inside
+            elif x == ord("\n") and inside:
+                return False
+        return True
+
+    rng = random.Random(7)
+    for block in (1, 5, 64, 1 << 24):
+        monkeypatch.setattr(_data_read, "_QUOTE_BLOCK_BYTES", block)
+        for _ in range(500):
+            data = bytes(rng.choice(b'ab,"\n\n"') for _ in range(rng.randint(0, 40)))
+            assert _data_read._quotes_close_on_each_line(data, '"') == scan(data), (block, data)

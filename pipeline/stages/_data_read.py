@@ -8,14 +8,13 @@ from __future__ import annotations
 
 import codecs
 import csv
-import functools
 import glob
 import io
 import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 from urllib.parse import unquote
 
 import numpy as np
@@ -330,47 +329,32 @@ _THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; th
 
 def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
     """True when no line break falls inside quotes (every quoted value opens and closes on its
-    line; a doubled quote inside a value flips the state twice). One pass over the bytes."""
+    line; a doubled quote inside a value flips the state twice), i.e. every line up to the last
+    line break holds an even number of quote characters. Vectorised, a block of lines at a time
+    (bounded memory): the parity of each line's quotes by one XOR reduction per line."""
     q = quote.encode("utf-8")
     if len(q) != 1:
         return False
     if q not in data:
         return True
     b = np.frombuffer(data, dtype=np.uint8)
-    kernel = _quote_kernel()
-    if kernel is not None:
-        return not kernel(b, q[0])
-    # without numba: the parity of the quotes before each line break, a block at a time
-    inside = False
-    for start in range(0, b.size, 1 << 22):
-        block = b[start:start + (1 << 22)]
-        parity = np.logical_xor.accumulate(block == q[0])
-        if inside:
-            parity = ~parity
-        if parity[block == 10].any():
+    start = 0
+    while start < b.size:
+        stop = data.rfind(b"\n", start, start + _QUOTE_BLOCK_BYTES) + 1  # the block ends at a line break
+        if stop <= start:  # a line longer than the block: take up to its end
+            stop = data.find(b"\n", start + _QUOTE_BLOCK_BYTES) + 1
+        if stop <= 0:  # no line break after `start`: nothing left that could fall inside quotes
+            return True
+        block = b[start:stop]
+        line_starts = np.flatnonzero(block[:-1] == 10) + 1
+        odd = np.bitwise_xor.reduceat((block == q[0]).view(np.uint8), np.concatenate(([0], line_starts)))
+        if odd.any():
             return False
-        inside = bool(parity[-1])
+        start = stop
     return True
 
 
-def _break_in_quotes(b: np.ndarray, q: int) -> bool:
-    inside = False
-    for x in b:
-        if x == q:
-            inside = not inside
-        elif x == 10 and inside:
-            return True
-    return False
-
-
-@functools.lru_cache(maxsize=1)
-def _quote_kernel() -> Callable[[np.ndarray, int], bool] | None:
-    """`_break_in_quotes` compiled (numba is loaded only when a large file holds quotes)."""
-    try:
-        from numba import njit
-    except ImportError:  # pragma: no cover - numba is a dependency
-        return None
-    return njit(cache=True, nogil=True)(_break_in_quotes)  # type: ignore[no-any-return]
+_QUOTE_BLOCK_BYTES = 1 << 24
 
 
 def _record_start_lines(text: str, delimiter: str, quote_char: str) -> np.ndarray:

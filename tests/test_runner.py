@@ -1,0 +1,148 @@
+"""The stage runner writes each cache entry on a thread while the next stage runs: an entry is never
+seen before it is complete, readers wait for it, and a write that fails stops the run with one line
+and leaves no finished entry (invented two-stage plans; the published networks for a whole run)."""
+
+from __future__ import annotations
+
+import json
+import threading
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from _shared import benchmark_path
+from filelock import FileLock
+
+import pipeline.runner as runner_mod
+from pipeline.cli import main
+from pipeline.errors import CacheWriteError
+from pipeline.runner import Runner, Stage
+from pipeline.runs import CACHE_FOLDER, StageCache
+
+ASIA = benchmark_path("asia") / "data.txt"  # published network, 10,000 rows (tests/data/benchmarks/README.md)
+
+
+def _first(call):
+    return {"a.arrow": pd.DataFrame({"x": np.arange(5.0), "s": list("abcde")}),
+            "a-lines.npy": np.arange(5, dtype=np.int64), "a.json": {"n": 5}}
+
+
+def _second(call):
+    table = call["a.arrow"]
+    return {"b.parquet": pd.DataFrame({"y": table["x"] * 2 + np.asarray(call["a-lines.npy"])})}
+
+
+PLAN = [Stage("a", _first, writes=("a.arrow", "a-lines.npy", "a.json")),
+        Stage("b", _second, reads=("a.arrow", "a-lines.npy"), writes=("b.parquet",))]
+
+
+def _runner(tmp_path: Path) -> tuple[Runner, StageCache]:
+    cache = StageCache(tmp_path / CACHE_FOLDER).open()
+    return Runner(list(PLAN), cache, cfg=None, version="test"), cache
+
+
+def _hold_encoding(monkeypatch, name: str) -> threading.Event:
+    """Make the writer of the entry holding `name` wait at that file until the event is set."""
+    gate = threading.Event()
+    real = runner_mod.encode
+
+    def held(artifact, value):
+        if artifact == name:
+            assert gate.wait(20)
+        return real(artifact, value)
+
+    monkeypatch.setattr(runner_mod, "encode", held)
+    return gate
+
+
+def _fail_encoding(monkeypatch, name: str) -> None:
+    """Make writing `name` fail as a full disk does."""
+    real = runner_mod.encode
+
+    def failing(artifact, value):
+        if artifact == name:
+            raise OSError(28, "No space left on device")
+        return real(artifact, value)
+
+    monkeypatch.setattr(runner_mod, "encode", failing)
+
+
+def test_entry_is_not_done_until_written_and_a_reader_waits_for_it(tmp_path, monkeypatch):
+    """While stage a's entry is being written, stage b runs on a's outputs in memory, a's entry is not
+    visible as finished (only its work folder exists), and reading a's file waits for the writer; the
+    wait counts in a's seconds."""
+    gate = _hold_encoding(monkeypatch, "a.arrow")
+    runner, cache = _runner(tmp_path)
+    b = runner.get("b.parquet")
+    assert b["y"].tolist() == [0.0, 3.0, 6.0, 9.0, 12.0]
+    key_a = runner.key(PLAN[0])
+    assert cache.lookup("a", key_a) is None
+    assert (cache.root / f"a-{key_a}.work").is_dir()
+    threading.Timer(0.3, gate.set).start()
+    path = runner.path("a.arrow")  # waits for the writer, then checks the file's checksum
+    assert cache.lookup("a", key_a) is not None and path.is_file()
+    assert runner.stage_record()["a"]["seconds"] >= 0.3
+    again, _ = _runner(tmp_path)  # a later run reads both entries back
+    assert again.get("b.parquet")["y"].tolist() == b["y"].tolist()
+    assert again.get("a.arrow")["s"].tolist() == list("abcde")
+
+
+def test_failed_write_raises_at_the_next_wait_and_leaves_no_finished_entry(tmp_path, monkeypatch):
+    """A write that fails (disk full) raises `CacheWriteError` naming the entry and the cause when the
+    run next waits for it; no finished entry is left, its lock is free, and the next run recomputes it."""
+    _fail_encoding(monkeypatch, "a.arrow")
+    runner, cache = _runner(tmp_path)
+    runner.get("b.parquet")
+    key_a = runner.key(PLAN[0])
+    with pytest.raises(CacheWriteError, match=r"`a-[0-9a-f]+` could not be written .*No space left on device.*free space"):
+        runner.finish()
+    assert cache.lookup("a", key_a) is None and not cache.entry("a", key_a).exists()
+    lock = FileLock(str(cache.root / ".locks" / f"a-{key_a}.lock"), timeout=5)
+    lock.acquire()  # the failed writer released the entry's lock
+    lock.release()
+    monkeypatch.undo()
+    again, _ = _runner(tmp_path)
+    assert again.get("a.arrow")["x"].tolist() == [0.0, 1.0, 2.0, 3.0, 4.0]
+    assert again.stage_record()["a"]["reused"] is False and cache.lookup("a", key_a) is not None
+
+
+def test_run_whose_cache_write_fails_exits_non_zero_and_keeps_the_last_good_run(tmp_path, monkeypatch, capsys):
+    """A whole run whose clean entry cannot be written (disk full) prints one error line naming the entry,
+    exits 1, publishes nothing, leaves the earlier run folder as it was and no finished clean entry."""
+    parent = tmp_path / "runs"
+    out = parent / "night"
+    assert main(["run", "--input", str(ASIA), "--out", str(out), "--quiet"]) == 0
+    before = {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()}
+    cache = parent / CACHE_FOLDER
+    cleans = {p.name for p in cache.iterdir() if p.name.startswith("clean-")}
+    capsys.readouterr()
+    _fail_encoding(monkeypatch, "clean.arrow")
+    code = main(["run", "--input", str(ASIA), "--out", str(out), "--quiet", "--set", "clean.min_rows=11"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1
+    assert len(err) == 1 and "stage cache entry `clean-" in err[0] and "No space left on device" in err[0], err
+    assert {p.name: p.read_bytes() for p in out.iterdir() if p.is_file()} == before
+    finished = {p.name for p in cache.iterdir() if p.name.startswith("clean-") and (p / "entry.json").is_file()}
+    assert finished == cleans  # the failed entry is at most a work folder
+    assert json.loads((out / "manifest.json").read_text())["status"] == "ok"
+
+
+def test_next_stage_without_workers_gets_arrays_from_memory_read_only(tmp_path):
+    """The stage run next gets an array output from memory as a read-only view (as a memory map of the
+    cache would be), and the entry still holds the same array."""
+    seen = {}
+
+    def second(call):
+        seen["lines"] = call["a-lines.npy"]
+        return {"b.parquet": pd.DataFrame({"y": [1]})}
+
+    plan = [PLAN[0], Stage("b", second, reads=("a-lines.npy",), writes=("b.parquet",))]
+    cache = StageCache(tmp_path / CACHE_FOLDER).open()
+    runner = Runner(plan, cache, cfg=None, version="test")
+    runner.get("b.parquet")
+    assert not seen["lines"].flags.writeable
+    with pytest.raises(ValueError):
+        seen["lines"][0] = 7
+    runner.finish()
+    assert np.load(runner.path("a-lines.npy")).tolist() == [0, 1, 2, 3, 4]
