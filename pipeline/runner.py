@@ -9,7 +9,10 @@ damaged entry is discarded and recomputed with one warning.
 
 Artifacts are typed by their file name: ``.parquet`` a DataFrame, ``.json`` plain data, ``.npy`` a
 numpy array (read back as a read-only memory map, so local workers share it). Values that the plan
-makes itself (the input files, the knowledge) are `provide`d with a key of their own.
+makes itself (the input files, the knowledge) are `provide`d with a key of their own. A stage may
+also return an artifact as the `Path` of the file it wrote itself in its work folder (``call.work /
+name``, e.g. a Parquet file of millions of rows written row group by row group): it is checked in
+blocks, never read into memory whole.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
 
-from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, json_text, stable_hash
+from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, file_checksum, json_text, stable_hash
 
 __all__ = ["Stage", "StageCall", "Runner", "encode", "decode"]
 
@@ -233,10 +236,14 @@ class Runner:
             return self._bytes(name, before)
 
     def path(self, name: str) -> Path:
-        """Where an artifact's file is in the cache, checked (for publishing it into a run folder)."""
-        self._bytes(name)
+        """Where an artifact's file is in the cache, checked in blocks (for publishing it into a run folder)."""
         stage = self._producer_of(name)
-        return self.cache.entry(stage.name, self.key(stage)) / name
+        self.ensure(stage)
+        try:
+            return self.cache.check(stage.name, self.key(stage), name)
+        except CacheDamaged as why:
+            self._damaged(stage, why)
+            return self.path(name)
 
     def ensure(self, stage: Stage) -> None:
         """Make sure the stage's entry exists: a checked hit, or a run."""
@@ -273,7 +280,11 @@ class Runner:
             if missing:
                 raise RuntimeError(f"stage `{stage.name}` did not write {sorted(missing)}")
             files: dict[str, dict[str, Any]] = {}
-            encoded = [(name, encode(name, outputs[name])) for name in stage.writes] + list(carried.items())
+            for name in [n for n in stage.writes if isinstance(outputs[n], Path)]:  # written by the stage itself
+                if outputs[name] != work / name:
+                    raise RuntimeError(f"stage `{stage.name}` wrote `{name}` outside its work folder")
+                files[name] = {"size": (work / name).stat().st_size, "checksum": file_checksum(work / name)}
+            encoded = [(name, encode(name, outputs[name])) for name in stage.writes if name not in files] + list(carried.items())
             for name, data in encoded:
                 if name.endswith(".json"):  # what a later hit would read (e.g. keys sorted)
                     outputs[name] = decode(name, data)
@@ -282,7 +293,7 @@ class Runner:
             del encoded
             self.cache.commit(stage.name, key, work, files)
         self._fresh = {(stage.name, name): outputs[name] for name in stage.writes
-                       if not name.endswith(".npy") and not isinstance(outputs[name], bytes)}  # those decode from the cache
+                       if not name.endswith(".npy") and not isinstance(outputs[name], (bytes, Path))}  # those decode from the cache
 
     def _damaged(self, stage: Stage, why: CacheDamaged) -> None:
         key = self.key(stage)
