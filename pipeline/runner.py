@@ -17,7 +17,10 @@ no finished entry (only its work folder) and the next wait raises `CacheWriteErr
 Artifacts are typed by their file name: ``.parquet`` a DataFrame, ``.arrow`` a DataFrame kept as an
 Arrow IPC file (an intermediate table no run folder publishes), ``.json`` plain data, ``.npy`` a
 numpy array (read back as a read-only memory map, so local workers share it). Values that the plan
-makes itself (the input files, the knowledge) are `provide`d with a key of their own.
+makes itself (the input files, the knowledge) are `provide`d with a key of their own. A stage may
+also return an artifact as the `Path` of the file it wrote itself in its work folder (``call.work /
+name``, e.g. a Parquet file of millions of rows written row group by row group): it is checked in
+blocks, never read into memory whole.
 """
 
 from __future__ import annotations
@@ -32,7 +35,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, Mapping
 
 from .errors import CacheWriteError
-from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, json_text, stable_hash
+from .runs import CacheDamaged, StageCache, atomic_write_bytes, checksum, file_checksum, json_text, stable_hash
 
 __all__ = ["Stage", "StageCall", "Runner", "encode", "decode"]
 
@@ -202,6 +205,9 @@ class _EntryWriter:
                 files: dict[str, dict[str, Any]] = {}
                 while self._files:
                     name, value = self._files.pop(0)  # the value is dropped as soon as it is written
+                    if isinstance(value, Path):  # written by the stage itself: checksummed in blocks
+                        files[name] = {"size": value.stat().st_size, "checksum": file_checksum(value)}
+                        continue
                     data = encode(name, value)
                     del value
                     atomic_write_bytes(self.work / name, data)
@@ -367,10 +373,15 @@ class Runner:
             return self._bytes(name, before)
 
     def path(self, name: str) -> Path:
-        """Where an artifact's file is in the cache, checked (for publishing it into a run folder)."""
-        self._bytes(name)
+        """Where an artifact's file is in the cache, checked in blocks (for publishing it into a run folder)."""
         stage = self._producer_of(name)
-        return self.cache.entry(stage.name, self.key(stage)) / name
+        self.ensure(stage)
+        self._wait(stage.name)
+        try:
+            return self.cache.check(stage.name, self.key(stage), name)
+        except CacheDamaged as why:
+            self._damaged(stage, why)
+            return self.path(name)
 
     def ensure(self, stage: Stage) -> None:
         """Make sure the stage's entry exists: a checked hit, or a run."""
@@ -411,7 +422,10 @@ class Runner:
             files: list[tuple[str, Any]] = []
             for name in stage.writes:
                 value = outputs[name]
-                if name.endswith(".json") or self._carried_later(name):  # small: encoded here
+                if isinstance(value, Path):  # a file the stage wrote itself (too large to hold whole)
+                    if value != work / name:
+                        raise RuntimeError(f"stage `{stage.name}` wrote `{name}` outside its work folder")
+                elif name.endswith(".json") or self._carried_later(name):  # small: encoded here
                     value = encode(name, value)
                     if name.endswith(".json"):  # what a later hit would read (e.g. keys sorted)
                         outputs[name] = decode(name, value)
@@ -425,7 +439,7 @@ class Runner:
             # the writer owns the entry's lock and work folder from here on
             self._writing[stage.name] = _EntryWriter(self.cache, stage.name, key, work, entry.pop_all(), files)
         self._fresh = {(stage.name, name): outputs[name] for name in stage.writes
-                       if not isinstance(outputs[name], bytes)}  # those decode from the cache
+                       if not isinstance(outputs[name], (bytes, Path))}  # those decode from the cache
 
     def _carried_later(self, name: str) -> bool:
         """Whether a later stage carries the artifact into its own entry (it then needs the bytes)."""

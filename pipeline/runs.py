@@ -41,6 +41,7 @@ __all__ = [
     "CacheDamaged",
     "CACHE_FOLDER",
     "checksum",
+    "file_checksum",
     "publish_run",
     "is_run_folder",
     "default_run_dir",
@@ -225,6 +226,15 @@ def checksum_matches(data: bytes, recorded: str) -> bool:
     return hashlib.blake2b(data, digest_size=16).hexdigest() == recorded
 
 
+def file_checksum(path: str | os.PathLike[str], recorded: str = "sha256:") -> str:
+    """`checksum` of a file's bytes, read in blocks (a file of a million tests is never one bytes object
+    in memory); with the algorithm of `recorded` (see `checksum_matches`)."""
+    with open(path, "rb") as fh:
+        if recorded.startswith("sha256:"):
+            return "sha256:" + hashlib.file_digest(fh, "sha256").hexdigest()
+        return hashlib.file_digest(fh, lambda: hashlib.blake2b(digest_size=16)).hexdigest()
+
+
 class StageCache:
     """Artifacts of a stage keyed by its inputs, its slice of the configuration and the version.
 
@@ -315,6 +325,23 @@ class StageCache:
         if len(data) != info["size"] or not checksum_matches(data, str(info["checksum"])):
             raise CacheDamaged(f"{name} does not match its checksum")
         return data
+
+    def check(self, stage: str, key: str, name: str) -> Path:
+        """The path of one file of a finished entry, its bytes checked against its checksum as `read`
+        checks them, read in blocks."""
+        folder = self.entry(stage, key)
+        try:
+            doc = json.loads((folder / _ENTRY_FILE).read_text(encoding="utf-8"))
+            info = doc.get("files", {}).get(name)
+            if info is None:
+                raise CacheDamaged(f"{name} is not listed in {_ENTRY_FILE}")
+            size = (folder / name).stat().st_size
+            digest = file_checksum(folder / name, str(info["checksum"]))
+        except (OSError, ValueError) as err:
+            raise CacheDamaged(f"{name} unreadable ({type(err).__name__})") from err
+        if size != info["size"] or digest != info["checksum"]:
+            raise CacheDamaged(f"{name} does not match its checksum")
+        return folder / name
 
     def listed(self, stage: str, key: str, name: str) -> dict[str, Any]:
         """Size and checksum of one file of a finished entry, as written."""

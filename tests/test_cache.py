@@ -41,12 +41,14 @@ def _rewrite(path: Path, data: bytes) -> None:
     os.replace(tmp, path)
 
 
-def test_flipped_byte_in_cached_codes_gives_the_uncached_answer_and_one_warning(tmp_path, capsys):
-    """One flipped byte in a cached discretised.parquet: the entry is discarded and recomputed with
-    one warning line (manifest and command output), and the answer equals an uncached run's."""
+@pytest.mark.parametrize("stage, name", [("discretise", "discretised.parquet"), ("skeleton", "tests.parquet")])
+def test_flipped_byte_in_cached_codes_gives_the_uncached_answer_and_one_warning(tmp_path, capsys, stage, name):
+    """One flipped byte in a cached file (the codes, read whole; tests.parquet, written by its stage and
+    checked in blocks when published): the entry is discarded and recomputed with one warning line
+    (manifest and command output), and the answer equals an uncached run's."""
     parent = tmp_path / "runs"
     assert _run(parent / "first") == 0
-    target = _entry_file(parent, "discretise", "discretised.parquet")
+    target = _entry_file(parent, stage, name)
     data = bytearray(target.read_bytes())
     data[len(data) // 2] ^= 0x10
     _rewrite(target, bytes(data))
@@ -58,9 +60,9 @@ def test_flipped_byte_in_cached_codes_gives_the_uncached_answer_and_one_warning(
     for name in ("evidence.parquet", "tests.parquet", "discretised.parquet"):
         assert (second / name).read_bytes() == (fresh / name).read_bytes(), name
     warnings = [w for w in _manifest(second)["warnings"] if "damaged" in w]
-    assert len(warnings) == 1 and "discretise" in warnings[0]
+    assert len(warnings) == 1 and f"`{stage}-" in warnings[0]
     assert sum("damaged" in line for line in err.splitlines()) == 1
-    assert not _manifest(second)["stages"]["discretise"]["reused"]
+    assert not _manifest(second)["stages"][stage]["reused"]
 
 
 @pytest.mark.parametrize("stage, name", [("skeleton", "tests.parquet"), ("battery", "marginal.parquet"), ("clean", "clean-meta.json")])

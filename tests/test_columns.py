@@ -90,15 +90,25 @@ def test_candidates_split_keeps_order_and_every_set():
         assert sum(len(c) for c in chunks) == len(cand)
 
 
-def test_tests_parquet_by_parts_equals_one_table():
-    """tests.parquet written table by table reads back as the table of every test at once."""
+def test_tests_parquet_by_parts_equals_one_table(tmp_path, monkeypatch):
+    """tests.parquet written table by table, in row groups that cut across the tables, reads back as the
+    table of every test at once (with effect_r, text as large_string), as bytes and as a file."""
+    import pipeline.stages._evidence as evidence
+
     names, res = _search()
-    whole = arrow_table(res.tests.columns(), names).to_pandas()
-    by_parts = pq.read_table(io.BytesIO(parquet_bytes(res.tests.parts, names))).to_pandas()
-    assert by_parts.equals(whole)
-    assert list(by_parts["test_id"]) == list(range(len(res.tests)))
+    whole = evidence.published(arrow_table(res.tests.columns(), names))
+    assert whole.column_names.index("effect_r") == whole.column_names.index("cmi_bits") + 1
+    sizes = [len(p) for p in res.tests.parts]
+    monkeypatch.setattr(evidence, "ROW_GROUP", max(sizes) // 2 + 1)  # groups both within and across tables
+    by_parts = pq.read_table(io.BytesIO(parquet_bytes(res.tests.parts, names)))
+    assert by_parts.schema.equals(whole.schema) and by_parts.equals(whole)
+    assert list(by_parts.column("test_id").to_pylist()) == list(range(len(res.tests)))
+    groups = pq.ParquetFile(io.BytesIO(parquet_bytes(res.tests.parts, names))).metadata
+    assert len(sizes) > 1 and groups.num_row_groups == -(-len(res.tests) // evidence.ROW_GROUP)  # full groups but the last
+    path = parquet_bytes(res.tests.parts, names, tmp_path / "tests.parquet")
+    assert path == tmp_path / "tests.parquet" and pq.read_table(path).equals(whole)
     empty = pq.read_table(io.BytesIO(parquet_bytes([], names)))
-    assert empty.num_rows == 0 and empty.schema.names == list(whole.columns)
+    assert empty.num_rows == 0 and empty.schema.equals(whole.schema)
 
 
 def test_log_reads_field_by_field():
@@ -113,3 +123,20 @@ def test_log_reads_field_by_field():
     for start in (0, 1, len(log) // 3, len(log) - 1):
         assert TestColumns.concat(log.since(start)).equals(TestColumns.concat(TestLog([whole]).since(start)))
     assert [log.given(int(i)) for i in rows] == [whole.given(int(i)) for i in rows]
+
+
+def test_published_tests_equal_from_an_older_entry_and_from_the_stage(tmp_path):
+    """A run folder's tests.parquet is the same table whether the stage wrote it in the run folder's form
+    (linked as it is) or an older cache entry held text as string and no effect_r (copied batch by batch)."""
+    from pipeline.api import _publish_tests
+    from pipeline.stages._evidence import ROW_GROUP, published
+
+    names, res = _search()
+    new = parquet_bytes(res.tests.parts, names, tmp_path / "new.parquet")
+    old = tmp_path / "old.parquet"
+    pq.write_table(arrow_table(res.tests.columns(), names), old, row_group_size=ROW_GROUP // 7)
+    assert "effect_r" not in pq.read_schema(old).names
+    assert _publish_tests(new, tmp_path / "a" / "tests.parquet") == _publish_tests(old, tmp_path / "b" / "tests.parquet") == len(res.tests)
+    a, b = pq.read_table(tmp_path / "a" / "tests.parquet"), pq.read_table(tmp_path / "b" / "tests.parquet")
+    assert a.schema.equals(b.schema) and a.equals(b) and a.equals(published(arrow_table(res.tests.columns(), names)))
+    assert (tmp_path / "a" / "tests.parquet").read_bytes() == new.read_bytes()  # the stage's file as it is

@@ -578,6 +578,9 @@ def test_shown_tests_from_arrow_equal_the_frame_path(tmp_path):
                      "statistic": float(rng.random()), "dof": 1, "pvalue": float(rng.random()) if t % 7 else np.nan,
                      "n": 100, "method": "g", "independent": bool(rng.random() < .5), "sparse": False,
                      "degenerate": False, "policy": "flag", "policy_applied": False})
+    for a, b in pairs:  # each pair's last search test has the smallest p-value and an orientation test after it
+        for phase in ("skeleton", "orientation"):
+            rows.append({**rows[-1], "test_id": len(rows), "phase": phase, "var_a": a, "var_b": b, "pvalue": 0.0})
     tests = pd.DataFrame(rows)
     ev = pd.DataFrame({"var_a": [a for a, _ in pairs][:-1], "var_b": [b for _, b in pairs][:-1]})  # one pair absent
     assert tests.groupby(["var_a", "var_b"]).size().max() > TESTS_PER_PAIR
@@ -590,3 +593,7 @@ def test_shown_tests_from_arrow_equal_the_frame_path(tmp_path):
     path = tmp_path / "tests.parquet"
     pq.write_table(table, path, row_group_size=100)  # several row groups: the picks cross batch bounds
     assert json.dumps(tests_data(ev, shown_tests(path, ev)), sort_keys=False) == json.dumps(whole, sort_keys=False)
+    for rows in (7, 64, 333):  # candidates kept batch by batch: the same picks and counts
+        for source in (table, path):
+            picks = shown_tests(source, ev, batch_rows=rows)
+            assert json.dumps(tests_data(ev, picks), sort_keys=False) == json.dumps(whole, sort_keys=False)

@@ -198,6 +198,10 @@ class TestColumns:
         a, b = int(self.given_offsets[i]), int(self.given_offsets[i + 1])
         return tuple(self.given_flat[a:b].tolist())
 
+    def rows(self, a: int, b: int) -> "TestColumns":
+        """Tests ``a:b`` (views, not copies)."""
+        return _slice(self, a, b)
+
     def text(self, name: str) -> np.ndarray:
         """A `LABELLED` field as an array of strings (object dtype)."""
         return np.asarray(self.labels, dtype=object)[self.codes[name]] if self.labels else np.full(len(self), "", dtype=object)

@@ -443,13 +443,16 @@ def _json_values(values: pd.Series) -> list:
     return [v.item() if hasattr(v, "item") else v for v in out]
 
 
-def _shown(pair: np.ndarray, searched: np.ndarray | None, p: np.ndarray | None) -> np.ndarray:
+def _shown(pair: np.ndarray, searched: np.ndarray | None, p: np.ndarray | None,
+           counts: np.ndarray | None = None) -> np.ndarray:
     """Which tests a pair's list in the page shows (a mask over tests in decision order, `pair` the
     pair's row of each): all of them when the pair has at most `TESTS_PER_PAIR`, else its first test,
     its last test before orientation (`searched`: not an orientation test; a separated pair's deciding
-    test), and the ones with the largest p-values (`p`, NaN as lowest; a linked pair's deciding test first)."""
+    test), and the ones with the largest p-values (`p`, NaN as lowest; a linked pair's deciding test
+    first). `counts`: each pair's tests when these are only some of them (`shown_tests`)."""
     pair = np.asarray(pair, dtype=np.int64)
-    counts = np.bincount(pair) if pair.size else np.zeros(0, dtype=np.int64)
+    if counts is None:
+        counts = np.bincount(pair) if pair.size else np.zeros(0, dtype=np.int64)
     keep = counts[pair] <= TESTS_PER_PAIR
     if keep.all():
         return keep
@@ -466,67 +469,81 @@ def _shown(pair: np.ndarray, searched: np.ndarray | None, p: np.ndarray | None) 
     return keep | first | last | (rank < TESTS_PER_PAIR - 2)
 
 
-def shown_tests(source: Any, evidence: pd.DataFrame) -> pd.DataFrame:
-    """The tests the page shows (`_shown`) from tests.parquet (a path, read a few columns at a time,
-    or an Arrow table), as a DataFrame with each pair's number of tests in ``pair_tests``: what the report
-    holds grows with the pairs, not with the tests (a search of millions of tests is never a frame)."""
+def shown_tests(source: Any, evidence: pd.DataFrame, batch_rows: int = 1 << 16) -> pd.DataFrame:
+    """The tests the page shows (`_shown`) from tests.parquet (a path or an Arrow table), as a DataFrame
+    with each pair's number of tests in ``pair_tests``. The picking columns are read `batch_rows` tests at
+    a time, and after each batch only the tests `_shown` picks among those kept so far stay (a test it
+    leaves out of some tests of a pair it also leaves out of all of them), so what the report holds
+    grows with the pairs, not with the tests."""
     import pyarrow as pa
     import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
     if isinstance(source, pa.Table):
-        table, pf = source, None
+        pf, n_rows = None, source.num_rows
+        wanted = [c for c in ("var_a", "var_b", "phase", "pvalue") if c in source.column_names]
+        batches = source.select(wanted).to_batches(max_chunksize=batch_rows)
     else:
         present = pq.read_schema(source).names
-        pf = pq.ParquetFile(source, read_dictionary=[c for c in ("var_a", "var_b", "phase") if c in present])
-        wanted = [c for c in ("var_a", "var_b", "phase", "pvalue") if c in pf.schema_arrow.names]
-        table = pf.read(columns=wanted)
-    if table.num_rows == 0 or len(evidence) == 0:
-        return (table if pf is None else pf.schema_arrow.empty_table()).slice(0, 0).to_pandas()
+        # pre_buffer off: by default the reader loads every row group's bytes before the first batch
+        pf = pq.ParquetFile(source, read_dictionary=[c for c in ("var_a", "var_b", "phase") if c in present],
+                            pre_buffer=False)
+        wanted = [c for c in ("var_a", "var_b", "phase", "pvalue") if c in present]
+        n_rows, batches = pf.metadata.num_rows, pf.iter_batches(batch_size=batch_rows, columns=wanted)
+    if n_rows == 0 or len(evidence) == 0:
+        return (source.schema if pf is None else pf.schema_arrow).empty_table().to_pandas()
     names = sorted(set(map(str, evidence["var_a"])) | set(map(str, evidence["var_b"])))
     code = {n: i for i, n in enumerate(names)}
 
     def codes(column: Any) -> np.ndarray:
-        out = []
-        for chunk in column.chunks:  # each chunk's own dictionary
-            enc = chunk if pa.types.is_dictionary(chunk.type) else pc.dictionary_encode(chunk)
-            lookup = np.array([code.get(str(v), -1) for v in enc.dictionary.to_pylist()] + [-1], dtype=np.int64)
-            out.append(lookup[enc.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)])
-        return np.concatenate(out) if out else np.zeros(0, dtype=np.int64)
+        enc = column if pa.types.is_dictionary(column.type) else pc.dictionary_encode(column)
+        lookup = np.array([code.get(str(v), -1) for v in enc.dictionary.to_pylist()] + [-1], dtype=np.int64)
+        return lookup[enc.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)]
 
     k = len(names) + 1
-    a, b = codes(table.column("var_a")), codes(table.column("var_b"))
     ea = np.array([code[str(v)] for v in evidence["var_a"]], dtype=np.int64)
     eb = np.array([code[str(v)] for v in evidence["var_b"]], dtype=np.int64)
     rows_of = pd.Series(np.arange(len(evidence)), index=np.minimum(ea, eb) * k + np.maximum(ea, eb))
     rows_of = rows_of[~rows_of.index.duplicated(keep="last")]
-    row = rows_of.reindex(np.minimum(a, b) * k + np.maximum(a, b)).to_numpy(dtype=np.float64, copy=True)
-    row[(a < 0) | (b < 0)] = np.nan
-    del a, b
-    idx = np.flatnonzero(~np.isnan(row))
-    pair = row[idx].astype(np.int64)
-    del row
-    counts = np.bincount(pair, minlength=len(evidence))
-    searched = None
-    if "phase" in table.column_names:
-        phase = table.column("phase").cast(pa.string())
-        searched = ~pc.equal(phase, "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
-    p = table.column("pvalue").to_numpy().astype(np.float64)[idx] if "pvalue" in table.column_names else None
-    keep = _shown(pair, searched, p)
-    picked = idx[keep]
+    counts = np.zeros(len(evidence), dtype=np.int64)
+    # the candidates so far: position in tests.parquet, pair row, searched (not orientation), p-value
+    pos, pair = np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    searched: np.ndarray | None = np.zeros(0, dtype=bool) if "phase" in wanted else None
+    p: np.ndarray | None = np.zeros(0) if "pvalue" in wanted else None
+    start = 0
+    for batch in batches:
+        a, b = codes(batch.column("var_a")), codes(batch.column("var_b"))
+        row = rows_of.reindex(np.minimum(a, b) * k + np.maximum(a, b)).to_numpy(dtype=np.float64, copy=True)
+        row[(a < 0) | (b < 0)] = np.nan
+        idx = np.flatnonzero(~np.isnan(row))
+        new = row[idx].astype(np.int64)
+        counts += np.bincount(new, minlength=len(evidence))
+        pos, pair = np.concatenate([pos, idx + start]), np.concatenate([pair, new])
+        if searched is not None:
+            phase = batch.column("phase").cast(pa.string())
+            here = ~pc.equal(phase, "orientation").fill_null(False).to_numpy(zero_copy_only=False)[idx]
+            searched = np.concatenate([searched, here])
+        if p is not None:
+            p = np.concatenate([p, batch.column("pvalue").to_numpy(zero_copy_only=False).astype(np.float64)[idx]])
+        keep = _shown(pair, searched, p)
+        pos, pair = pos[keep], pair[keep]
+        searched = None if searched is None else searched[keep]
+        p = None if p is None else p[keep]
+        start += batch.num_rows
+    keep = _shown(pair, searched, p, counts=counts)
+    picked, pair = pos[keep], pair[keep]
     if pf is None:
-        out = table.take(picked).to_pandas()
+        out = source.take(picked).to_pandas()
     else:  # the picked rows, one batch of every column at a time
-        del table
         parts, start = [], 0
-        plain = pq.ParquetFile(source)
-        for batch in plain.iter_batches(batch_size=1 << 18):
+        plain = pq.ParquetFile(source, pre_buffer=False)
+        for batch in plain.iter_batches(batch_size=batch_rows):
             lo, hi = np.searchsorted(picked, [start, start + batch.num_rows])
             if hi > lo:
                 parts.append(pa.Table.from_batches([batch]).take(picked[lo:hi] - start))
             start += batch.num_rows
         out = pa.concat_tables(parts).to_pandas() if parts else plain.schema_arrow.empty_table().to_pandas()
-    out["pair_tests"] = counts[pair[keep]]
+    out["pair_tests"] = counts[pair]
     return out
 
 

@@ -26,12 +26,13 @@ __all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
 
 @dataclass(frozen=True)
 class SearchOutcome:
-    """The skeleton, its orientation and the two tables that explain them (the tests as the bytes of
-    tests.parquet, written from the search's tables without one table of every test in memory)."""
+    """The skeleton, its orientation and the two tables that explain them (the tests as tests.parquet,
+    written from the search's tables without one table of every test in memory: its bytes, or its path
+    when the search was given one)."""
 
     skeleton: SkeletonResult
     orientation: Orientation | None
-    tests: bytes
+    tests: bytes | Path
     evidence: pd.DataFrame
 
 
@@ -121,11 +122,13 @@ def run(
     stability: dict[tuple[str, str], float] | None = None,
     progress: Callable[[int, int], None] | None = None,
     extras: SignalExtras | None = None,
+    tests_to: Path | None = None,
 ) -> SearchOutcome:
     """Go on from the marginal battery to the full skeleton.
 
     `checkpoint` is a folder: after every level its tests are appended there as one Parquet part
     and the state is saved; a search given a folder holding a checkpoint resumes after its last level.
+    `tests_to`: write tests.parquet there (the outcome holds its path) rather than keeping its bytes.
     """
     m = marginal_state  # its test columns are never changed: shared, not copied
     state = SearchState(level=m.level, edges=set(m.edges), separating_sets=dict(m.separating_sets),
@@ -165,6 +168,6 @@ def run(
         )
     oriented = TestColumns.from_results(asked_tests, {n: i for i, n in enumerate(names)},
                                         phase=PHASES.index("orientation"))
-    tests = tests_parquet([*skeleton.tests.parts, oriented], names)
+    tests = tests_parquet([*skeleton.tests.parts, oriented], names, tests_to)
     evidence = evidence_frame(skeleton, knowledge, settings.alpha, orientation, stability)
     return SearchOutcome(skeleton=skeleton, orientation=orientation, tests=tests, evidence=evidence)
