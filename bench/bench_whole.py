@@ -250,19 +250,22 @@ def _floor(runs: dict[str, tuple[Path, Path, dict]], cls: dict[str, float] | Non
              "| what | seconds |", "|---|---:|"]
     lines += [f"| {what} | {sec:.2f} |" for what, sec in rows]
     libs = rows[1][1]
+    workers = {"alarm-100k": 2}
     ceiling = [(name, cl, _kernel_seconds(runs[name][1], runs[name][0], ("battery", "skeleton", "orientation")))
-               for name, cl in (cls or {}).items() if name in ("hepar2-like", "barley-like")]
+               for name, cl in (cls or {}).items() if name in ("hepar2-like", "barley-like", "alarm-100k")]
     if ceiling:
         lines += ["", "What 10x would need: the run's wall seconds at most a tenth of causal-learn's. Any run pays at "
                   "least the libraries it loads (the row above: numpy, pandas, pyarrow) plus its tests in the kernels "
                   "(every test of the run, battery, skeleton and orientation, in one `test_columns` call, best of 3); "
-                  "the drawing runs beside the page in its own process. The best ratio a run could reach is "
-                  "causal-learn's seconds over that floor.", "",
-                  "| set | causal-learn s | a tenth | libraries s | every test in the kernels s | floor s | best ratio possible |",
+                  "the drawing runs beside the page in its own process; with two workers the tests are counted as "
+                  "split evenly between them. The best ratio a run could reach is causal-learn's seconds over that "
+                  "floor (targets: 10x one worker, 5x for alarm-100k with two).", "",
+                  "| set | workers | causal-learn s | libraries s | every test in the kernels s | floor s | best ratio possible |",
                   "|---|---:|---:|---:|---:|---:|---:|"]
         for name, cl, kern in ceiling:
-            floor = libs + kern
-            lines.append(f"| {name} | {cl:.1f} | {cl / 10:.2f} | {libs:.2f} | {kern:.2f} | {floor:.2f} | {cl / floor:.1f}x |")
+            jobs = workers.get(name, 1)
+            floor = libs + kern / jobs
+            lines.append(f"| {name} | {jobs} | {cl:.1f} | {libs:.2f} | {kern:.2f} | {floor:.2f} | {cl / floor:.1f}x |")
     return lines
 
 
@@ -316,6 +319,7 @@ def main(argv: list[str] | None = None) -> int:
             ours = edgeproof(csv, out, jobs=2)
             cl = causal_learn(csv)
             runs["alarm-100k"] = (csv, out, ours)
+            cl_walls["alarm-100k"] = cl[0]
             lines.append(_row("alarm forward-sampled", 100_000, 2, ours, cl, 5.0))
         lines += ["", "Targets of issue 16: at least 10x on HEPAR2 and BARLEY (one worker), at least 5x on "
                   "ALARM forward-sampled to 100,000 rows (two workers).", ""]
