@@ -362,26 +362,23 @@ class Runner:
 
     def _bytes(self, name: str, before: Stage | None = None) -> bytes:
         """The checked bytes of an artifact in the cache (a damaged entry is recomputed first)."""
+        return self._checked(name, before, self.cache.read)
+
+    def path(self, name: str) -> Path:
+        """Where an artifact's file is in the cache, checked in blocks (for publishing it into a run folder)."""
+        return self._checked(name, None, self.cache.check)
+
+    def _checked(self, name: str, before: Stage | None, how: Callable[[str, str, str], Any]) -> Any:
+        """``how(stage, key, name)`` on the artifact's finished entry; a damaged entry is discarded and
+        the stage run again first."""
         stage = self._producer_of(name, before)
         self.ensure(stage)
         self._wait(stage.name)
         try:
-            return self.cache.read(stage.name, self.key(stage), name)
+            return how(stage.name, self.key(stage), name)
         except CacheDamaged as why:
             self._damaged(stage, why)
-            self.ensure(stage)
-            return self._bytes(name, before)
-
-    def path(self, name: str) -> Path:
-        """Where an artifact's file is in the cache, checked in blocks (for publishing it into a run folder)."""
-        stage = self._producer_of(name)
-        self.ensure(stage)
-        self._wait(stage.name)
-        try:
-            return self.cache.check(stage.name, self.key(stage), name)
-        except CacheDamaged as why:
-            self._damaged(stage, why)
-            return self.path(name)
+            return self._checked(name, before, how)
 
     def ensure(self, stage: Stage) -> None:
         """Make sure the stage's entry exists: a checked hit, or a run."""
