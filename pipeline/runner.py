@@ -56,7 +56,9 @@ class Stage:
     resumable : the stage keeps per-level parts in ``call.work``; an interrupted attempt leaves them
         for the next attempt with the same key.
     workers : the stage maps work to the pool (``call.env["workers"]``); the pool opens, and its
-        workers warm up, when the first such stage runs (not while the data stages use the cores).
+        workers warm up in the background, when the first stage that runs has such a stage ahead (a
+        fresh extract: from ingest on, so their start-up overlaps the data stages; a run whose search
+        stages are all reused never starts a worker).
     """
 
     name: str
@@ -401,8 +403,11 @@ class Runner:
         """Pull the stage's inputs, run it under its entry's lock and start writing its entry."""
         inputs = {name: self.get(name, before=stage) for name in stage.reads}
         workers = self.env.get("workers")
-        if stage.workers and workers is not None:
-            workers.prepare()  # local workers warm up in the background while the stage starts
+        if workers is not None and any(st.workers for st in self.stages[self.stages.index(stage):]):
+            # local workers warm up in the background (imports, compiled kernels) from the first stage
+            # that runs while a stage that maps work to them is still ahead: on a fresh extract their
+            # start-up overlaps the data stages; a run whose search is reused never starts them
+            workers.prepare()
         carried = {name: self._carried(name, stage) for name in stage.carries}
         self._fresh = {}
         _EntryWriter.settle(self.cache, stage.name, key)

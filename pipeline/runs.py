@@ -100,19 +100,20 @@ def atomic_write_text(path: str | os.PathLike[str], text: str) -> Path:
 _INDENT_UP_TO = 64 * 1024  # JSON longer than this (compact) is written compact: indenting runs in pure Python
 
 
-def json_text(data: Any) -> str:
+def json_text(data: Any, *, for_reading: bool = True) -> str:
     """Sorted-key JSON (no NaN) with a final newline: indented for reading, or compact when it is
-    long (indenting takes json's pure-Python encoder, seconds for a large search state). The same
-    data always gives the same text."""
+    long (indenting takes json's pure-Python encoder, seconds for a large search state) or when
+    only the program reads it (`for_reading` False: a search checkpoint). The same data always gives
+    the same text."""
     compact = json.dumps(data, sort_keys=True, default=str, allow_nan=False, separators=(",", ":"))
-    if len(compact) > _INDENT_UP_TO:
+    if len(compact) > _INDENT_UP_TO or not for_reading:
         return compact + "\n"
     return json.dumps(data, indent=2, sort_keys=True, default=str, allow_nan=False) + "\n"
 
 
-def atomic_write_json(path: str | os.PathLike[str], data: Any) -> Path:
+def atomic_write_json(path: str | os.PathLike[str], data: Any, *, for_reading: bool = True) -> Path:
     """Write JSON (sorted keys, no NaN; see `json_text`) atomically."""
-    return atomic_write_text(path, json_text(data))
+    return atomic_write_text(path, json_text(data, for_reading=for_reading))
 
 
 def atomic_write_parquet(path: str | os.PathLike[str], frame: pd.DataFrame) -> Path:

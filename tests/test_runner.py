@@ -146,3 +146,41 @@ def test_next_stage_without_workers_gets_arrays_from_memory_read_only(tmp_path):
         seen["lines"][0] = 7
     runner.finish()
     assert np.load(runner.path("a-lines.npy")).tolist() == [0, 1, 2, 3, 4]
+
+
+class _Pool:
+    """Stands in for the run's `ParallelContext`: records when the runner asks it to open."""
+
+    def __init__(self) -> None:
+        self.opened_in: list[str] = []
+        self.stage = ""
+
+    def prepare(self) -> None:
+        self.opened_in.append(self.stage)
+
+
+def test_workers_open_at_the_first_stage_run_and_never_for_a_reused_plan(tmp_path):
+    """The pool starts warming up when the first stage that runs still has a stage with workers ahead
+    (its start-up overlaps the stages before), and a run whose stages are all reused never opens it."""
+    pool = _Pool()
+
+    def first(call):
+        pool.stage = "a"
+        return _first(call)
+
+    def with_workers(call):
+        pool.stage = "b"
+        return _second(call)
+
+    plan = [Stage("a", first, writes=("a.arrow", "a-lines.npy", "a.json")),
+            Stage("b", with_workers, reads=("a.arrow", "a-lines.npy"), writes=("b.parquet",), workers=True)]
+    cache = StageCache(tmp_path / CACHE_FOLDER).open()
+    runner = Runner(plan, cache, cfg=None, version="test", env={"workers": pool})
+    runner.get("b.parquet")
+    runner.finish()
+    assert pool.opened_in and pool.opened_in[0] == ""  # asked before stage a's own work began
+    again = _Pool()
+    rerun = Runner(plan, cache, cfg=None, version="test", env={"workers": again})
+    rerun.get("b.parquet")
+    rerun.finish()
+    assert again.opened_in == []  # every stage reused: no worker started

@@ -113,16 +113,14 @@ def level_candidates(pairs: Sequence[tuple[int, int]], adjacency: np.ndarray, ra
     """
     xs, ys, counts, blocks = [], [], [], []
     member = np.zeros(adjacency.shape[0], dtype=bool)
+    by_name = np.argsort(rank, kind="stable")  # the variables in name order
+    neighbours = [by_name[adjacency[v, by_name]] for v in range(adjacency.shape[0])] if level else []
     for a, b in pairs:
-        pool_a = np.flatnonzero(adjacency[a])
-        pool_a = pool_a[pool_a != b]
-        pool_a = pool_a[np.argsort(rank[pool_a], kind="stable")]
-        pool_b = np.flatnonzero(adjacency[b])
-        pool_b = pool_b[pool_b != a]
-        pool_b = pool_b[np.argsort(rank[pool_b], kind="stable")]
         if level == 0:
             sets = np.zeros((1, 0), dtype=np.int32)
         else:
+            pool_a = neighbours[a][neighbours[a] != b]  # in name order
+            pool_b = neighbours[b][neighbours[b] != a]
             from_a = pool_a[_combination_rows(pool_a.size, level)] if pool_a.size >= level else np.zeros((0, level), np.int32)
             from_b = pool_b[_combination_rows(pool_b.size, level)] if pool_b.size >= level else np.zeros((0, level), np.int32)
             if from_a.shape[0] and from_b.shape[0]:
@@ -274,6 +272,7 @@ def pc_stable_skeleton(
     index = {n: i for i, n in enumerate(names)}
     rank = np.empty(len(names), dtype=np.int64)
     rank[np.argsort(np.array(names, dtype=object), kind="stable")] = np.arange(len(names))
+    serial: CIEngine | MixedEngine | None = None
     while max_order is None or state.level <= max_order:
         level = state.level
         adjacency = np.zeros((len(names), len(names)), dtype=bool)
@@ -288,8 +287,11 @@ def pc_stable_skeleton(
         n_sets = int(work.bounds[-1])
         chunks = work.split(max(1 if width <= 1 else min(len(work), 4 * width), -(-n_sets // _CHUNK_SETS)))
         del work
-        if context is None:
-            outcome = [_battery_worker(shared, c) for c in chunks]
+        if context is None:  # one engine for the whole search: built (and its kernels readied) once
+            if serial is None:
+                serial = _worker_engine(data, names, list(cards), settings,
+                                        None if weights is None else (distinct, weights), extras)
+            outcome = [serial.first_independent_many(c) for c in chunks]
         else:
             outcome = context.map(_battery_worker, shared, chunks)
         removals = []

@@ -6,7 +6,7 @@ from __future__ import annotations
 import dataclasses
 from itertools import combinations
 from pathlib import Path
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 import pandas as pd
@@ -15,9 +15,11 @@ from ..independence.columns import LABELLED, PHASES, VALUE_TYPES, TestColumns, T
 from ..independence.result import CITestResult, effect_r_of, with_effect_r
 from ..report._common import p_is
 from ..runs import atomic_write_with
-from ..search.knowledge import Knowledge
-from ..search.orient import Orientation
-from ..search.skeleton import SkeletonResult
+
+if TYPE_CHECKING:  # annotations only: publishing a cached run's tests loads no search (nor numba)
+    from ..search.knowledge import Knowledge
+    from ..search.orient import Orientation
+    from ..search.skeleton import SkeletonResult
 
 __all__ = ["with_effect_r", "tests_frame", "tests_table", "tests_parquet", "published", "evidence_frame", "benjamini_hochberg", "EVIDENCE_COLUMNS",
            "TEST_COLUMNS"]

@@ -18,7 +18,7 @@ from ..parallel import ParallelContext
 from ..runs import atomic_write_json
 from ..search.knowledge import Knowledge
 from ..search.orient import Orientation, orient
-from ..search.skeleton import SearchState, SignalExtras, SkeletonResult, pc_stable_skeleton
+from ..search.skeleton import Pair, SearchState, SignalExtras, SkeletonResult, pc_stable_skeleton
 from ._evidence import evidence_frame, tests_parquet
 
 __all__ = ["SearchOutcome", "run", "state_doc", "state_from"]
@@ -65,21 +65,29 @@ def state_from(doc: dict[str, Any], tests: TestLog | TestColumns) -> SearchState
 _STATE = "state.json"
 
 
-def _save_level(folder: Path, state: SearchState, first_new: int, parts: list[str]) -> None:
-    """Checkpoint after a level: the level's tests as one Parquet part, then the state naming every
-    part so far (`parts`, extended here; written last: a state file only ever names parts that are
-    complete)."""
+def _save_level(folder: Path, state: SearchState, first_new: int, parts: list[str], saved: set[Pair]) -> None:
+    """Checkpoint after a level: the level's tests as one Parquet part, the pairs it removed (with their
+    separating sets) beside it as ``level-NNNN.json``, then the state naming every part so far (`parts`,
+    extended here; written last: a state file only ever names parts that are complete). Each level
+    writes only what it added (`saved`: the removed pairs already written, extended here), so a
+    checkpoint costs the level's work, not the search's so far."""
     import pyarrow.parquet as pq
 
-    part = f"level-{state.level - 1:04d}.parquet"
-    tmp = folder / f".{part}.tmp"
+    stem = f"level-{state.level - 1:04d}"
+    tmp = folder / f".{stem}.parquet.tmp"
     tables = state.tests.since(first_new) or [TestColumns.empty()]
     with pq.ParquetWriter(tmp, tables[0].to_arrow().schema, compression="zstd") as writer:
         for table in tables:  # one table at a time: the level is never copied whole
             writer.write_table(table.to_arrow())
-    tmp.replace(folder / part)
-    parts.append(part)
-    atomic_write_json(folder / _STATE, {**state_doc(state), "parts": parts})
+    new = sorted(state.removed_by.keys() - saved)
+    atomic_write_json(folder / f"{stem}.json", {"removed": [[a, b, state.removed_by[(a, b)], list(state.separating_sets[(a, b)])]
+                                                            for a, b in new]}, for_reading=False)
+    tmp.replace(folder / f"{stem}.parquet")
+    saved.update(new)
+    parts.append(f"{stem}.parquet")
+    doc = {"level": state.level, "edges": sorted(state.edges), "disagreements": sorted(state.disagreements),
+           "n_tests": len(state.tests), "parts": parts}
+    atomic_write_json(folder / _STATE, doc, for_reading=False)  # read by resume only
 
 
 def _read_doc(folder: Path) -> dict[str, Any] | None:
@@ -99,9 +107,18 @@ def _resume(folder: Path, start: SearchState) -> tuple[SearchState, list[str]]:
         return start, []
     try:
         tests = start.tests.copy()
+        separating, removed = dict(start.separating_sets), dict(start.removed_by)
         for part in doc["parts"]:
             tests.append(TestColumns.from_arrow(pq.read_table(folder / part)))
-        return state_from(doc, tests), list(doc["parts"])
+            side = json.loads((folder / part).with_suffix(".json").read_text(encoding="utf-8"))
+            for a, b, row, given in side["removed"]:
+                removed[(a, b)], separating[(a, b)] = int(row), tuple(given)
+        if int(doc["n_tests"]) != len(tests):
+            raise ValueError(f"the state counts {doc['n_tests']} tests, its parts hold {len(tests)}")
+        state = SearchState(level=int(doc["level"]), edges={tuple(e) for e in doc["edges"]},  # type: ignore[misc]
+                            separating_sets=separating, removed_by=removed, tests=tests,
+                            disagreements={tuple(e) for e in doc["disagreements"]})  # type: ignore[misc]
+        return state, list(doc["parts"])
     except (OSError, ValueError, KeyError, TypeError):
         return start, []  # a checkpoint that does not fit this search: start over
 
@@ -137,10 +154,10 @@ def run(
     if checkpoint is not None:
         checkpoint.mkdir(parents=True, exist_ok=True)
         state, parts = _resume(checkpoint, state)
-        written = [len(state.tests)]
+        written, saved = [len(state.tests)], set(state.removed_by)
 
         def save(s: SearchState) -> None:
-            _save_level(checkpoint, s, written[0], parts)
+            _save_level(checkpoint, s, written[0], parts, saved)
             written[0] = len(s.tests)
 
     skeleton = pc_stable_skeleton(

@@ -314,13 +314,15 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
     binned = {c for c, spec in cfg.columns.items() if spec.discretise is not None}
     as_numbers = cfg.discretise.default == "auto"
     methods = methods or {}
-    from ..independence.residual import normal_scores
-
     in_file_order = {c: table[c].to_numpy(dtype=np.float64) for c in signals if kinds.get(c) == "numeric"}
     values = {c: in_order(v) for c, v in in_file_order.items()}  # each numeric column put in order once
     scored = [c for c in signals if kinds.get(c) == "numeric" and as_numbers and c not in binned
               and methods.get(c, "quantile") != "categorical"]
-    scores = dict(zip(scored, _map_threads(normal_scores, [values[c] for c in scored], cfg.parallel.jobs)))
+    scores: dict[str, np.ndarray] = {}
+    if scored:  # the scores' module loads the compiled kernels: not for an extract of categories only
+        from ..independence.residual import normal_scores
+
+        scores = dict(zip(scored, _map_threads(normal_scores, [values[c] for c in scored], cfg.parallel.jobs)))
     base_scores = [scores.get(c) for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
