@@ -139,8 +139,16 @@ def _link_or_copy(src: Path, dst: Path) -> None:
 
 
 def _versions() -> dict[str, str]:
+    """The versions of the packages a run uses: a loaded module's own ``__version__`` (reading every
+    package's installed metadata takes tens of milliseconds), else the installed metadata."""
+    import sys
+
     out = {"python": platform.python_version(), "edgeproof": __version__}
     for name in _PACKAGES:
+        loaded = getattr(sys.modules.get(name), "__version__", None)
+        if isinstance(loaded, str):
+            out[name] = loaded
+            continue
         try:
             out[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
@@ -421,7 +429,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     runner.provide("signals", {"names": names, "cards": cards}, key=[names, cards])
     runner.provide("knowledge", knowledge, key=[sorted(knowledge.required), sorted(knowledge.forbidden),
                                                  [list(t) for t in knowledge.tiers], sorted(knowledge.rejected)])
-    atomic_write_parquet(out / "marginal.parquet", runner.get("marginal.parquet"))
+    _link_or_copy(runner.path("marginal.parquet"), out / "marginal.parquet")  # as the cache holds it
     evidence = runner.get("evidence.parquet")
     _release_freed_memory()  # the search's tests are written and gone
     stability_info = None
