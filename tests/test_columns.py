@@ -140,3 +140,17 @@ def test_published_tests_equal_from_an_older_entry_and_from_the_stage(tmp_path):
     a, b = pq.read_table(tmp_path / "a" / "tests.parquet"), pq.read_table(tmp_path / "b" / "tests.parquet")
     assert a.schema.equals(b.schema) and a.equals(b) and a.equals(published(arrow_table(res.tests.columns(), names)))
     assert (tmp_path / "a" / "tests.parquet").read_bytes() == new.read_bytes()  # the stage's file as it is
+
+
+def test_given_texts_equal_one_set_at_a_time():
+    """The conditioning sets of any rows of a log of several tables, gathered at once, equal the sets
+    read one test at a time (published CHILD network; the search's own tables)."""
+    codes, names, cards = benchmark_codes("child")
+    log = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), max_order=2).tests
+    assert len(log.parts) > 2
+    rng = np.random.default_rng(3)
+    rows = np.concatenate([rng.integers(0, len(log), 300), [0, len(log) - 1], np.flatnonzero(log.given_sizes == 2)[:5]])
+    expected = [";".join(names[g] for g in log.given(int(r))) for r in rows]
+    assert log.given_texts(rows, names) == expected
+    assert any(";" in text for text in expected) and "" in expected  # sets of two and the empty set
+    assert log.given_texts(np.zeros(0, dtype=np.int64), names) == []

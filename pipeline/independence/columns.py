@@ -414,6 +414,29 @@ class TestLog:
         k = int(np.searchsorted(ends, i, side="right"))
         return self.parts[k].given(i - (int(ends[k - 1]) if k else 0))
 
+    def given_texts(self, rows: np.ndarray, names: Sequence[str]) -> list[str]:
+        """The conditioning sets of the tests at `rows` as names joined with ``;`` (one gather per table,
+        no call per test)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        out = [""] * rows.size
+        ends = self.ends
+        part_of = np.searchsorted(ends, rows, side="right")
+        named = np.asarray(list(names) or [""], dtype=object)
+        for k in np.unique(part_of).tolist():
+            at = np.flatnonzero(part_of == k)
+            part = self.parts[k]
+            local = rows[at] - (int(ends[k - 1]) if k else 0)
+            starts, stops = part.given_offsets[local], part.given_offsets[local + 1]
+            sizes = stops - starts
+            bounds = np.concatenate([[0], np.cumsum(sizes)]).tolist()
+            # every set's members side by side: position j of set i is starts[i] + j
+            gather = np.repeat(starts - bounds[:-1], sizes) + np.arange(bounds[-1])
+            members = named[part.given_flat[gather]].tolist()
+            for i, a, b in zip(at.tolist(), bounds[:-1], bounds[1:]):
+                if b > a:
+                    out[i] = ";".join(members[a:b])
+        return out
+
     def take(self, name: str, rows: np.ndarray) -> np.ndarray:
         """One field (as in `field`, or a text field) at the given rows of the whole log."""
         rows = np.asarray(rows, dtype=np.int64)

@@ -238,54 +238,67 @@ def evidence_frame(
     has = deciding >= 0
     rows_at = deciding[has]
 
-    def at(name: str, missing: Any) -> list[Any]:
-        out = np.full(n_pairs, missing, dtype=object)
+    def at(name: str, missing: Any, dtype: Any = object) -> np.ndarray:
+        out = np.full(n_pairs, missing, dtype=dtype)
         out[has] = t.take(name, rows_at)
-        return out.tolist()
+        return out
 
-    cols = {
-        "pvalue": at("pvalue", np.nan), "statistic": at("statistic", np.nan), "dof": at("dof", 0),
-        "n": at("n", 0), "level": at("given_sizes", -1), "method": at("method", ""), "cmi_bits": at("cmi_bits", np.nan),
-        "correction": at("correction", "none"), "dec_sparse": at("sparse", False),
-    }
+    def marked(pairs_in: Any) -> np.ndarray:
+        out = np.zeros(n_pairs, dtype=bool)
+        for a, b in pairs_in:
+            if a in index and b in index:
+                out[rows[index[a], index[b]]] = True
+        return out
+
+    # column by column (no row object per pair); lists of Python values where the wording reads them
+    var_a, var_b = [a for a, _ in pairs], [b for _, b in pairs]
+    linked, disagrees = marked(skeleton.edges), marked(skeleton.disagreements)
+    required, forbidden, rejected = marked(knowledge.required), marked(knowledge.forbidden), marked(knowledge.rejected)
+    know = np.where(required, "required", np.where(forbidden, "forbidden", np.where(rejected, "rejected", ""))).tolist()
+    pvalue, cmi = at("pvalue", np.nan, np.float64), at("cmi_bits", np.nan, np.float64)
+    method, correction = at("method", "").tolist(), at("correction", "none").tolist()
+    given = [""] * n_pairs
+    for r, text in zip(np.flatnonzero(has).tolist(), t.given_texts(rows_at, names)):
+        given[r] = text
     cramers = np.full(n_pairs, np.nan)
     cramers[marginal >= 0] = t.take("cramers_v", marginal[marginal >= 0])
-    sparse_above, sparse_below = seen["sparse_above"], seen["sparse_below"]
+    dependent = linked | disagrees
+    # a sparse table decided the pair's fate, or a sparse test read alone would have flipped it
+    sparse = at("sparse", False, bool) | np.where(dependent, seen["sparse_above"], seen["sparse_below"])
     degenerate, applied = seen["degenerate"], seen["policy_applied"]
-    out_rows = []
-    for r, (a, b) in enumerate(pairs):
-        pair = (a, b)
-        linked = pair in skeleton.edges
-        know = ("required" if knowledge.is_required(a, b) else "forbidden" if knowledge.is_forbidden(a, b)
-                else "rejected" if knowledge.is_rejected(a, b) else "")
-        dependent = linked or pair in skeleton.disagreements
-        row: dict[str, object] = {
-            "var_a": a, "var_b": b, "linked": linked, "knowledge": know,
-            "pvalue": cols["pvalue"][r], "statistic": cols["statistic"][r], "dof": cols["dof"][r],
-            "given": ";".join(names[g] for g in t.given(int(deciding[r]))) if has[r] else "",
-            "n": cols["n"][r], "level": cols["level"][r], "method": cols["method"][r],
-            "n_tests": int(n_tests[r]), "max_given_size": int(max_size[r]), "cmi_bits": cols["cmi_bits"][r],
-            "cramers_v": float(cramers[r]),
-            # a sparse table decided the pair's fate, or a sparse test read alone would have flipped it
-            "sparse": bool(cols["dec_sparse"][r]) or bool(sparse_above[r] if dependent else sparse_below[r]),
-            "degenerate": bool(degenerate[r]), "policy_applied": bool(applied[r]),
-            "data_disagrees": pair in skeleton.disagreements,
-            "orientation": orientation.label(a, b) if (orientation is not None and linked) else "",
-            "stability": (stability or {}).get(pair, np.nan),
-            "correction": cols["correction"][r],  # for the wording only, not a column
-        }
-        flags = []
-        for word in ("sparse", "degenerate", "policy_applied", "data_disagrees"):
-            if row[word]:
-                flags.append(word)
-        if know:
-            flags.append("reviewer_rejected" if know == "rejected" else know)
-        if row["orientation"] == "ambiguous":
-            flags.append("ambiguous_orientation")
-        row["flags"] = ";".join(flags)
-        row["explanation"] = _explain(row, alpha)
-        out_rows.append(row)
-    frame = pd.DataFrame(out_rows)
+    orientation_col = [""] * n_pairs
+    if orientation is not None:
+        for r in np.flatnonzero(linked).tolist():
+            orientation_col[r] = orientation.label(var_a[r], var_b[r])
+    stab = stability or {}
+    flag_words = (("sparse", sparse), ("degenerate", degenerate), ("policy_applied", applied), ("data_disagrees", disagrees))
+    flags = [[word for word, on in flag_words if on[r]] for r in np.flatnonzero(sparse | degenerate | applied | disagrees).tolist()]
+    flag_text = [""] * n_pairs
+    for r, words in zip(np.flatnonzero(sparse | degenerate | applied | disagrees).tolist(), flags):
+        flag_text[r] = ";".join(words)
+    for r in np.flatnonzero(required | forbidden | rejected).tolist():
+        word = "reviewer_rejected" if know[r] == "rejected" else know[r]
+        flag_text[r] = f"{flag_text[r]};{word}" if flag_text[r] else word
+    for r, o in enumerate(orientation_col):
+        if o == "ambiguous":
+            flag_text[r] = f"{flag_text[r]};ambiguous_orientation" if flag_text[r] else "ambiguous_orientation"
+    n_tests_l, p_l, cmi_l, linked_l, disagrees_l = n_tests.tolist(), pvalue.tolist(), cmi.tolist(), linked.tolist(), disagrees.tolist()
+    explanation = [
+        _explain({"var_a": var_a[r], "var_b": var_b[r], "linked": linked_l[r], "knowledge": know[r], "pvalue": p_l[r],
+                  "given": given[r], "n_tests": n_tests_l[r], "cmi_bits": cmi_l[r], "method": method[r],
+                  "correction": correction[r], "data_disagrees": disagrees_l[r]}, alpha)
+        for r in range(n_pairs)
+    ]
+    frame = pd.DataFrame({
+        "var_a": var_a, "var_b": var_b, "linked": linked, "knowledge": know, "pvalue": pvalue,
+        "statistic": at("statistic", np.nan, np.float64), "dof": at("dof", 0, np.int64), "given": given,
+        "n": at("n", 0, np.int64), "level": at("given_sizes", -1, np.int64), "method": method,
+        "n_tests": n_tests, "max_given_size": max_size, "cmi_bits": cmi, "cramers_v": cramers, "sparse": sparse,
+        "degenerate": degenerate, "policy_applied": applied, "data_disagrees": disagrees,
+        "orientation": orientation_col, "stability": [stab.get(p, np.nan) for p in pairs] if stab else np.full(n_pairs, np.nan),
+        "correction": correction, "flags": flag_text, "explanation": explanation,
+    })
+
     if frame.empty:
         frame = pd.DataFrame(columns=EVIDENCE_COLUMNS)
     # q-values over every pair that was tested (linked or separated), each at its deciding p-value
