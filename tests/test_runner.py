@@ -43,29 +43,30 @@ def _runner(tmp_path: Path) -> tuple[Runner, StageCache]:
 
 
 def _hold_encoding(monkeypatch, name: str) -> threading.Event:
-    """Make the writer of the entry holding `name` wait at that file until the event is set."""
+    """Make the writer of the entry holding the table `name` wait at that file until the event is set
+    (`write_table` encodes every table artifact, into bytes or straight into its file)."""
     gate = threading.Event()
-    real = runner_mod.encode
+    real = runner_mod.write_table
 
-    def held(artifact, value):
+    def held(artifact, value, sink):
         if artifact == name:
             assert gate.wait(20)
-        return real(artifact, value)
+        return real(artifact, value, sink)
 
-    monkeypatch.setattr(runner_mod, "encode", held)
+    monkeypatch.setattr(runner_mod, "write_table", held)
     return gate
 
 
 def _fail_encoding(monkeypatch, name: str) -> None:
-    """Make writing `name` fail as a full disk does."""
-    real = runner_mod.encode
+    """Make writing the table `name` fail as a full disk does."""
+    real = runner_mod.write_table
 
-    def failing(artifact, value):
+    def failing(artifact, value, sink):
         if artifact == name:
             raise OSError(28, "No space left on device")
-        return real(artifact, value)
+        return real(artifact, value, sink)
 
-    monkeypatch.setattr(runner_mod, "encode", failing)
+    monkeypatch.setattr(runner_mod, "write_table", failing)
 
 
 def test_entry_is_not_done_until_written_and_a_reader_waits_for_it(tmp_path, monkeypatch):
