@@ -382,8 +382,6 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     reuse_levels = _reuse_levels(cfg, out)
     runner.provide("input", source, key=fp)
     runner.provide("reuse_levels", reuse_levels, key=reuse_levels)
-    for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json"):
-        _link_or_copy(runner.path(name), out / name)
     clean_meta = runner.get("clean-meta.json")
     levels_doc = runner.get("levels.json")
     codes = runner.get("discretised.parquet")
@@ -399,6 +397,9 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     # `time.test_series`), and their copies from earlier windows when `time.lags` asks for them
     kept = names
     time_doc = runner.get("timeline.json")
+    # published once the timeline stage has run: the discretise stage's entry is written meanwhile
+    for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json"):
+        _link_or_copy(runner.path(name), out / name)
     _link_or_copy(runner.path("timeline.parquet"), out / "timeline.parquet")
     names, cards = list(time_doc["names"]), [int(c) for c in time_doc["cards"]]
     if len(names) < 2:

@@ -66,7 +66,7 @@ def _clean(call: StageCall) -> dict[str, Any]:
     call.inputs.clear()  # the stage holds the only reference: the raw table goes with `ingested`
     cleaned = clean.run(ingested, call.cfg)
     return {
-        "clean.arrow": cleaned.table,
+        "clean.arrow": cleaned.stored(),  # categorical columns as codes: Arrow never reads a string per row
         "clean-times.parquet": cleaned.times,
         "quarantined.parquet": cleaned.quarantined,
         "rejected.parquet": pd.concat([ingested.rejected, cleaned.quarantined], ignore_index=True),

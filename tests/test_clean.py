@@ -322,3 +322,27 @@ def test_quarantined_rows_keep_their_file_lines_when_the_ingest_entry_is_reused(
     for run in (first, second):
         lines = pd.read_parquet(run.out_dir / "rejected.parquet")["line"].tolist()
         assert lines == [5, 15]  # rows 3 and 13 sit on lines 5 and 15 of the file (line 1 is the header)
+
+
+def test_stored_table_keeps_text_columns_as_categoricals_of_the_same_values(tmp_path):
+    """The table the stage stores (``clean.arrow``) holds each categorical column read from text as a
+    categorical whose values equal the cleaned table's, cell by cell (pandas' own comparison of the
+    two columns as Python objects): padded spellings of one level share a code, missing spellings are
+    missing, quarantined rows are left out and renames apply (property test on invented rows)."""
+    rows = ["zone,load,site"]
+    zones = ["a", " a", "b", "n/a", "", "c ", "b"]
+    for i in range(70):
+        load = "oops" if i == 5 else str(i % 9)
+        rows.append(f"{zones[i % len(zones)]},{load},s{i % 3}")
+    cfg = _cfg(columns={"site": {"rename": "place"}})
+    got = clean.run(_ingest_csv(tmp_path, "\n".join(rows) + "\n", cfg), cfg)
+    stored = got.stored()
+    assert list(stored.columns) == list(got.table.columns)
+    assert set(got.categories) == {"zone", "place"}
+    for name in got.categories:
+        assert isinstance(stored[name].dtype, pd.CategoricalDtype)
+        assert got.table[name].dtype == object
+        as_objects = stored[name].astype(object).where(stored[name].notna(), None)
+        assert as_objects.tolist() == got.table[name].tolist()
+    assert sorted(stored["zone"].cat.categories) == ["a", "b", "c"]
+    pd.testing.assert_series_equal(stored["load"], got.table["load"])

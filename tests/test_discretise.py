@@ -276,3 +276,23 @@ def test_reuse_of_whole_number_levels_maps_new_values_to_minus_one():
     )
     assert later.codes["k"].tolist() == [2, -1, 0, -1]
     assert later.summary["unknown_levels"] == {"k": 1}
+
+
+def test_categorical_columns_code_as_their_object_values():
+    """A text column handed over as a pandas categorical (as the clean stage stores it) gets the same
+    codes and levels as the same values as Python objects, with a category no row holds left out
+    (property test on invented values; pandas' factorize of the objects is the reference)."""
+    values = ["b", None, "a", "c", "a", None, "b"] * 5
+    as_objects = pd.Series(values, dtype=object)
+    as_categorical = pd.Series(pd.Categorical(values, categories=["c", "unused", "b", "a"]))
+    cfg = _cfg()
+    kinds = {"s": "categorical", "t": "categorical"}
+    for mode in ("drop", "level"):
+        cfg = _cfg(test={"missing": mode})
+        plain = discretise.run(_cleaned({"s": as_objects, "t": as_objects}, kinds), cfg)
+        coded = discretise.run(_cleaned({"s": as_categorical, "t": as_objects}, kinds), cfg)
+        assert coded.levels == plain.levels
+        pd.testing.assert_frame_equal(coded.codes, plain.codes)
+        assert coded.summary == plain.summary
+    codes, uniques = pd.factorize(as_objects)
+    assert plain.levels["s"][: len(uniques)] == sorted(uniques)

@@ -299,7 +299,7 @@ def test_fast_and_careful_csv_paths_agree(tmp_path, monkeypatch, body):
     assert _data_read._quotes_close_on_each_line(body.encode(), '"') == ("y\nz" not in body)
     monkeypatch.setattr(_data_read, "_THREADED_FROM_BYTES", 0)  # the threaded path for this small file too
     fast = _read(path)
-    monkeypatch.setattr(_data_read, "_quotes_close_on_each_line", lambda data, quote: False)
+    monkeypatch.setattr(_data_read, "_scan_quotes", lambda data, quote: (False, None))
     careful = _read(path)
     pd.testing.assert_frame_equal(fast.table, careful.table)
     pd.testing.assert_frame_equal(fast.rejected, careful.rejected)
@@ -328,3 +328,5 @@ def test_quote_check_matches_a_byte_by_byte_scan(monkeypatch):
         for _ in range(500):
             data = bytes(rng.choice(b'ab,"\n\n"') for _ in range(rng.randint(0, 40)))
             assert _data_read._quotes_close_on_each_line(data, '"') == scan(data), (block, data)
+            closes, lines = _data_read._scan_quotes(data, '"')
+            assert lines is None or lines == _data_read._line_count(data), (block, data)

@@ -43,29 +43,30 @@ def _runner(tmp_path: Path) -> tuple[Runner, StageCache]:
 
 
 def _hold_encoding(monkeypatch, name: str) -> threading.Event:
-    """Make the writer of the entry holding `name` wait at that file until the event is set."""
+    """Make the writer of the entry holding the table `name` wait at that file until the event is set
+    (`write_table` encodes every table artifact, into bytes or straight into its file)."""
     gate = threading.Event()
-    real = runner_mod.encode
+    real = runner_mod.write_table
 
-    def held(artifact, value):
+    def held(artifact, value, sink):
         if artifact == name:
             assert gate.wait(20)
-        return real(artifact, value)
+        return real(artifact, value, sink)
 
-    monkeypatch.setattr(runner_mod, "encode", held)
+    monkeypatch.setattr(runner_mod, "write_table", held)
     return gate
 
 
 def _fail_encoding(monkeypatch, name: str) -> None:
-    """Make writing `name` fail as a full disk does."""
-    real = runner_mod.encode
+    """Make writing the table `name` fail as a full disk does."""
+    real = runner_mod.write_table
 
-    def failing(artifact, value):
+    def failing(artifact, value, sink):
         if artifact == name:
             raise OSError(28, "No space left on device")
-        return real(artifact, value)
+        return real(artifact, value, sink)
 
-    monkeypatch.setattr(runner_mod, "encode", failing)
+    monkeypatch.setattr(runner_mod, "write_table", failing)
 
 
 def test_entry_is_not_done_until_written_and_a_reader_waits_for_it(tmp_path, monkeypatch):
@@ -184,3 +185,22 @@ def test_workers_open_at_the_first_stage_run_and_never_for_a_reused_plan(tmp_pat
     rerun.get("b.parquet")
     rerun.finish()
     assert again.opened_in == []  # every stage reused: no worker started
+
+
+def test_table_written_into_its_file_has_the_bytes_of_encode(tmp_path):
+    """A table artifact the entry's writer encodes straight into its file holds exactly the bytes
+    `encode` gives in memory (Arrow IPC and Parquet), and pyarrow reads the same table back from it
+    (invented table with numbers, a categorical and missing booleans)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    frame = pd.DataFrame({"x": np.arange(50_000) / 7.0, "s": pd.Categorical(["u", None, "v", "u"] * 12_500),
+                          "b": pd.array([True, None, False, True] * 12_500, dtype="boolean")})
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    for name in ("t.arrow", "t.parquet"):
+        path = tmp_path / name
+        runner_mod._write_table_file(name, table, path)
+        assert path.read_bytes() == runner_mod.encode(name, table)
+        back = pq.read_table(path) if name.endswith(".parquet") else pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+        assert back.to_pydict() == table.to_pydict()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["t.arrow", "t.parquet"]  # no temporary file left

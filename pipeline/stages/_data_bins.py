@@ -138,7 +138,7 @@ def _quantile_cuts(present: np.ndarray, bins: int) -> list[float]:
 def apply_cuts(x: np.ndarray, cuts: list[float]) -> np.ndarray:
     """Bin index of each value (-1 for missing) for the cut points `cuts`."""
     if len(cuts) <= 8:  # the number of cut points at or below each value, one comparison per cut point
-        codes = np.zeros(x.shape, dtype=np.int64)
+        codes = np.zeros(x.shape, dtype=np.int8)  # at most 9 bins: the codes the stage keeps, no wider copy
         for c in cuts:
             codes += x >= float(c)
     else:
@@ -178,7 +178,14 @@ def number_labels(uniques: np.ndarray) -> list[str]:
 def _text_levels(
     name: str, values: pd.Series, max_levels: int, order_hint: list[str] | None
 ) -> Coded:
-    codes, uniques = pd.factorize(values.astype(object), use_na_sentinel=True)
+    if isinstance(values.dtype, pd.CategoricalDtype):  # codes already (the clean stage's text columns)
+        codes = np.asarray(values.cat.codes, dtype=np.int64)
+        seen = np.bincount(codes + 1, minlength=len(values.cat.categories) + 1)[1:] > 0
+        uniques = values.cat.categories[seen]  # levels no kept row holds are left out, as factorize does
+        codes = (np.cumsum(seen) - 1)[codes]
+        codes[np.asarray(values.cat.codes) < 0] = -1
+    else:
+        codes, uniques = pd.factorize(values.astype(object), use_na_sentinel=True)
     levels = sort_levels([str(u) for u in uniques], order_hint)
     check_levels(name, len(levels), max_levels)
     position = {lv: i for i, lv in enumerate(levels)}

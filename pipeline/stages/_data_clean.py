@@ -105,14 +105,15 @@ def _from_number(name: str, series: pd.Series, declared: str | None) -> Typed:
             )
         out = pd.array(np.where(np.isnan(arr), pd.NA, arr == 1), dtype="boolean")
         return Typed(
-            name, "boolean", pd.Series(out, index=series.index), True, non_finite=non_finite
+            name, "boolean", pd.Series(out, index=series.index, copy=False), True, non_finite=non_finite
         )
     if declared == "timestamp":
         raise DataError(
             f"Column `{name}` holds numbers and cannot be declared a timestamp; "
             "fix `columns:` or write the times as ISO 8601 text."
         )
-    typed = Typed(name, "numeric", pd.Series(arr, index=series.index), declared is not None)
+    # copy=False: pandas 3 copies a numpy array handed to Series by default (8 MB per million rows)
+    typed = Typed(name, "numeric", pd.Series(arr, index=series.index, copy=False), declared is not None)
     typed.non_finite = non_finite
     return typed
 
@@ -158,7 +159,7 @@ def _from_text(
     missing |= parsed_inf
     parsed = ~missing & np.isfinite(numbers)
     is_text = ~missing & ~parsed
-    counts = np.bincount(codes[codes >= 0], minlength=len(text))
+    counts = np.bincount(codes + 1, minlength=len(text) + 1)[1:]  # codes[i] == -1: no value
     n_present = int(counts[~missing].sum())
     n_text = int(counts[is_text].sum())
     non_finite = int(counts[infinite].sum())
@@ -181,7 +182,7 @@ def _from_text(
 
     if kind == "numeric":
         per_unique = np.where(parsed, numbers, np.nan)
-        values = pd.Series(_take(per_unique, codes, np.nan), index=series.index)
+        values = pd.Series(_take(per_unique, codes, np.nan), index=series.index, copy=False)
         typed = Typed(name, "numeric", values, declared is not None, non_finite=non_finite)
         if n_text:
             rows = np.flatnonzero(is_text[codes] & (codes >= 0))
@@ -219,7 +220,7 @@ def _from_text(
         return Typed(name, "timestamp", values, declared is not None)
     labels = np.asarray(text, dtype=object).copy()
     labels[missing] = None
-    values = pd.Series(_take(labels, codes, None), index=series.index, dtype=object)
+    values = pd.Series(_take(labels, codes, None), index=series.index, dtype=object, copy=False)
     typed = Typed(name, "categorical", values, declared is not None, non_finite=non_finite,
                   codes=codes, labels=labels)
     if nul:  # a NUL byte is never part of a level: it would break every text format downstream
@@ -370,6 +371,15 @@ def decide(
                     facts,
                 )
     return None, values, facts
+
+
+def as_categorical(codes: np.ndarray, labels: np.ndarray) -> pd.Categorical:
+    """``labels[codes]`` (code -1: missing, a label None: missing) as a categorical: one code per row and
+    each distinct label once (labels that became equal once stripped share a code)."""
+    label_codes, levels = pd.factorize(pd.Index(labels, dtype=object), use_na_sentinel=True)
+    lookup = np.append(label_codes, -1)  # the last entry: rows without a value
+    return pd.Categorical.from_codes(lookup[np.where(codes >= 0, codes, len(labels))],
+                                     categories=pd.Index(levels, dtype=object))
 
 
 def _count_codes(codes: np.ndarray, labels: np.ndarray) -> tuple[int, int]:

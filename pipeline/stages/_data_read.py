@@ -236,8 +236,7 @@ def to_utf8(raw: bytes, path: Path, settings: InputSettings) -> tuple[bytes, lis
     if encoding == "utf-8":
         if raw.startswith(codecs.BOM_UTF8):
             raw = raw[3:]
-        arr = np.frombuffer(raw, dtype=np.uint8)
-        if arr.size == 0 or int(arr.max()) < 128:
+        if raw.isascii():  # one pass in C that stops at the first byte above 127
             return raw, []
         try:
             raw.decode("utf-8")
@@ -330,28 +329,35 @@ _THREADED_FROM_BYTES = 16 << 20  # smaller files parse quickly on one thread; th
 def _quotes_close_on_each_line(data: bytes, quote: str) -> bool:
     """True when no line break falls inside quotes (every quoted value opens and closes on its
     line; a doubled quote inside a value flips the state twice), i.e. every line up to the last
-    line break holds an even number of quote characters. Vectorised, a block of lines at a time
-    (bounded memory): the parity of each line's quotes by one XOR reduction per line."""
+    line break holds an even number of quote characters."""
+    return _scan_quotes(data, quote)[0]
+
+
+def _scan_quotes(data: bytes, quote: str) -> tuple[bool, int | None]:
+    """`_quotes_close_on_each_line`, and the number of lines (`_line_count`) when the whole file was
+    scanned on the way (None otherwise: no need to count them twice). Vectorised, a block of lines at
+    a time (bounded memory): the parity of each line's quotes by one XOR reduction per line."""
     q = quote.encode("utf-8")
     if len(q) != 1:
-        return False
+        return False, None
     if q not in data:
-        return True
+        return True, None
     b = np.frombuffer(data, dtype=np.uint8)
-    start = 0
+    start, breaks = 0, 0
     while start < b.size:
         stop = data.rfind(b"\n", start, start + _QUOTE_BLOCK_BYTES) + 1  # the block ends at a line break
         if stop <= start:  # a line longer than the block: take up to its end
             stop = data.find(b"\n", start + _QUOTE_BLOCK_BYTES) + 1
         if stop <= 0:  # no line break after `start`: nothing left that could fall inside quotes
-            return True
+            break
         block = b[start:stop]
         line_starts = np.flatnonzero(block[:-1] == 10) + 1
         odd = np.bitwise_xor.reduceat((block == q[0]).view(np.uint8), np.concatenate(([0], line_starts)))
         if odd.any():
-            return False
+            return False, None
+        breaks += line_starts.size + 1  # the block's line breaks: one before each line start, one at its end
         start = stop
-    return True
+    return True, breaks + (0 if data.endswith(b"\n") else 1)
 
 
 _QUOTE_BLOCK_BYTES = 1 << 24
@@ -460,7 +466,12 @@ def read_csv(
             f"{delimiter!r}; set `input.delimiter` to the character between the fields."
         )
     _check_columns(names, path, limits, wanted)
-    n_lines = _line_count(data)
+    # Fast path: when no quoted value can span lines, parse in blocks on pyarrow's threads. Rows it
+    # rejects may lack their numbers there, so any rejected row sends the file down the careful path.
+    fast, n_scanned = False, None
+    if len(data) >= _THREADED_FROM_BYTES:
+        fast, n_scanned = _scan_quotes(data, quote) if quote else (True, None)
+    n_lines = n_scanned if n_scanned is not None else _line_count(data)
     records: np.ndarray | None = None  # the record lines, found only when not every line is one record
     if n_lines - int(settings.header) + rows_before > limits.max_rows:  # the count of lines bounds it
         records = nonempty_lines(data)
@@ -479,9 +490,6 @@ def read_csv(
         return "skip"
 
     column_types: dict[str, pa.DataType] = {}
-    # Fast path: when no quoted value can span lines, parse in blocks on pyarrow's threads. Rows it
-    # rejects may lack their numbers there, so any rejected row sends the file down the careful path.
-    fast = len(data) >= _THREADED_FROM_BYTES and (not quote or _quotes_close_on_each_line(data, quote))
     for _ in range(2 * len(names) + 2):
         rejected.clear()
         read_opts = pa_csv.ReadOptions(

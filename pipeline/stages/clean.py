@@ -47,6 +47,19 @@ class Cleaned:
     quarantined: pd.DataFrame
     summary: dict[str, Any]
     times: pd.DataFrame = field(default_factory=pd.DataFrame)  # timestamp columns, int64 ns UTC (NaT: min int64)
+    # categorical columns read from text, the same values as codes and their levels (see `stored`)
+    categories: dict[str, pd.Categorical] = field(default_factory=dict)
+
+    def stored(self) -> pd.DataFrame:
+        """The table as the stage's artifact keeps it: the columns of `categories` as pandas categoricals
+        (an Arrow dictionary column in ``clean.arrow``, read back as a categorical) instead of one Python
+        string per row, which Arrow would have to read one by one; every value is the same."""
+        if not self.categories:
+            return self.table
+        out = self.table.copy(deep=False)
+        for name, values in self.categories.items():
+            out[name] = values
+        return out
 
 
 def run(ingested: Ingested, cfg: Config) -> Cleaned:
@@ -93,12 +106,15 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
             f"{len(bad_rows)} quarantined, {int(duplicate.sum())} duplicates dropped); "
             f"`clean.min_rows` = {cfg.clean.min_rows}; supply a longer extract or lower the minimum."
         )
-    out, kinds, records = _apply_rules(typed, derived, keep, cfg)
+    out, kinds, records, categories = _apply_rules(typed, derived, keep, cfg)
     quarantined = _quarantine(ingested, bad_rows, bad_reasons, duplicate)
     cleaned = _package(ingested, out, kinds, records, quarantined, order, cfg, int(duplicate.sum()))
     times = pd.DataFrame({name: _utc_nanoseconds(col.values[keep]) for name, col in typed.items()
                           if col.kind == "timestamp"})
-    return Cleaned(cleaned.table, cleaned.kinds, cleaned.columns, cleaned.quarantined, cleaned.summary, times)
+    renamed = {old: new for new, old in cleaned.summary["renamed"].items()}
+    categories = {renamed.get(n, n): v for n, v in categories.items()}
+    return Cleaned(cleaned.table, cleaned.kinds, cleaned.columns, cleaned.quarantined, cleaned.summary, times,
+                   categories)
 
 
 def _utc_nanoseconds(values: pd.Series) -> np.ndarray:
@@ -207,9 +223,11 @@ def _duplicates(table: pd.DataFrame, keep: np.ndarray, cfg: Config) -> np.ndarra
 
 def _apply_rules(
     typed: dict[str, _rules.Typed], derived: dict[str, _rules.Typed], keep: np.ndarray, cfg: Config
-) -> tuple[dict[str, pd.Series], dict[str, str], list[dict[str, Any]]]:
-    """Drop or keep each column on the kept rows and record what happened."""
+) -> tuple[dict[str, pd.Series], dict[str, str], list[dict[str, Any]], dict[str, pd.Categorical]]:
+    """Drop or keep each column on the kept rows and record what happened; the kept categorical columns
+    read from text also as categoricals (their values unchanged by the rules)."""
     out: dict[str, pd.Series] = {}
+    categories: dict[str, pd.Categorical] = {}
     kinds: dict[str, str] = {}
     records: list[dict[str, Any]] = []
     has_features = bool(derived)
@@ -229,6 +247,8 @@ def _apply_rules(
                 )
             out[name] = _final_dtype(col.kind, values, none_for_missing=col.labels is not None)
             kinds[name] = col.kind
+            if col.kind == "categorical" and codes is not None and col.labels is not None and not facts["pooled_levels"]:
+                categories[name] = _rules.as_categorical(codes, col.labels)
             how = "declared in `columns:`" if col.declared else "inferred from the values"
             reason = "; ".join([f"{col.kind}, {how}"] + col.notes)
         elif col.notes:
@@ -246,7 +266,7 @@ def _apply_rules(
                 "pooled_levels": facts["pooled_levels"],
             }
         )
-    return out, kinds, records
+    return out, kinds, records, categories
 
 
 def _final_dtype(kind: str, values: pd.Series, none_for_missing: bool = False) -> pd.Series:

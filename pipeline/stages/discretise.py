@@ -103,7 +103,7 @@ def run(cleaned: Cleaned, cfg: Config, reuse: dict | None = None) -> Discretised
             present = values.notna().to_numpy()
         coded = _bins.attach_missing(coded, present, cfg.test.missing)
         _bins.check_levels(name, len(coded.levels), cfg.limits.max_levels)
-        codes[name] = coded.codes.astype(smallest_int_dtype(len(coded.levels)))
+        codes[name] = coded.codes.astype(smallest_int_dtype(len(coded.levels)), copy=False)
         levels[name], edges[name] = coded.levels, coded.edges
         info[name] = dict(
             kind=kind,
