@@ -533,6 +533,9 @@ class CIEngine:
             )
             idx = _ranges(g_start, ran)
             independent[idx] = self._batch_values(idx, arrays, gn)["independent"]
+            top = int(arrays[2][idx].max(initial=0))
+            if stop_first and top >= crit.shape[0]:  # a group stopped at a dof beyond the critical values known
+                crit = self._critical(2 * top)  # (tables of thousands of cells): grown, so the next round goes on
             run[idx] = True
             nxt = []
             for k, a, r, s in zip(live.tolist(), g_start.tolist(), ran.tolist(), status.tolist()):
