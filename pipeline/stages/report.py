@@ -139,8 +139,7 @@ def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Pat
         csv = _exports.evidence_csv(ev, context.levels)
         nxg = _exports.build_nx_graph(ev, names, context.levels)
         graphml, node_link = _exports.graphml_bytes(nxg), _exports.node_link_json(nxg)
-        if not isinstance(tests, pd.DataFrame):  # tests.parquet (a path or an Arrow table): pick the shown tests
-            tests = _html.shown_tests(tests, ev)
+        page = _page(ev, tests, context, names)  # the drawing goes in once Graphviz has made it
         drawn = drawing.result()
     svg = drawn["svg"]
     files = {
@@ -152,7 +151,7 @@ def run(evidence: pd.DataFrame, tests: Any, context: ReportContext, out_dir: Pat
     files["evidence.csv"] = atomic_write_bytes(out / "evidence.csv", csv)
     files["graph.graphml"] = atomic_write_bytes(out / "graph.graphml", graphml)
     files["graph.json"] = atomic_write_bytes(out / "graph.json", node_link)
-    files["report.html"] = _write_page(ev, tests, context, names, svg, out)
+    files["report.html"] = atomic_write_text(out / "report.html", page.replace(_DRAWING, _html.inline_svg(svg), 1))
     return files
 
 
@@ -164,8 +163,11 @@ def _prepared(evidence: pd.DataFrame, context: ReportContext) -> pd.DataFrame:
     return ev
 
 
-def _write_page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: list[str], svg: bytes,
-                out: Path) -> Path:
+_DRAWING = "\x00edgeproof: the drawn graph\x00"  # where the page's drawing goes (no page text holds a NUL)
+
+
+def _page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: list[str]) -> str:
+    """report.html with `_DRAWING` where the drawn graph goes (built while Graphviz draws it)."""
     truth_svg, split = None, None
     if context.truth_edges is not None:
         linked = [(str(a), str(b)) for a, b, k in zip(ev["var_a"], ev["var_b"], ev["linked"]) if bool(k)]
@@ -174,8 +176,10 @@ def _write_page(ev: pd.DataFrame, tests: Any, context: ReportContext, names: lis
         truth_svg = _html.inline_svg(_graph.render(known, "svg", "the known graph"), "known-")
     if not isinstance(tests, pd.DataFrame):  # tests.parquet (a path or an Arrow table): pick the shown tests first
         tests = _html.shown_tests(tests, ev)
-    page = _html.build_html(context, ev, tests, names, _html.inline_svg(svg), truth_svg, split)
-    return atomic_write_text(out / "report.html", page)
+    page = _html.build_html(context, ev, tests, names, _DRAWING, truth_svg, split)
+    if page.count(_DRAWING) != 1:
+        raise RuntimeError("report.html: the page has no single place for the drawn graph")
+    return page
 
 
 def summary_of(manifest: Mapping[str, Any]) -> dict[str, Any]:
@@ -235,4 +239,5 @@ def render_report_html(run_dir: Path, changes: dict[str, Any] | None) -> Path:
     ev = _prepared(pd.read_parquet(d / "evidence.parquet"), context)
     tests = d / "tests.parquet"  # the page's picks are read from it column by column
     names = signal_names(ev, context.levels)
-    return _write_page(ev, tests, context, names, (d / "graph.svg").read_bytes(), d)
+    page = _page(ev, tests, context, names).replace(_DRAWING, _html.inline_svg((d / "graph.svg").read_bytes()), 1)
+    return atomic_write_text(d / "report.html", page)
