@@ -597,3 +597,38 @@ def test_shown_tests_from_arrow_equal_the_frame_path(tmp_path):
         for source in (table, path):
             picks = shown_tests(source, ev, batch_rows=rows)
             assert json.dumps(tests_data(ev, picks), sort_keys=False) == json.dumps(whole, sort_keys=False)
+
+
+def test_shown_tests_in_one_pass_equal_the_frame_path_with_ties_and_many_thinnings():
+    """The one-pass picker (tests dropped under their pair's bar, candidates thinned many times) gives
+    the page exactly the lists and counts of the whole-frame path: p-values with many ties and NaN,
+    orientation tests, pairs with few and with thousands of tests (property check, three seeds)."""
+    import pyarrow as pa
+
+    from pipeline.report._html import shown_tests, tests_data
+
+    for seed in (1, 2, 3):
+        rng = np.random.default_rng(seed)
+        names = ["a", "b", "c", "d"]
+        pairs = [(x, y) for i, x in enumerate(names) for y in names[i + 1:]]
+        weights = np.array([0.5, 0.3, 0.15, 0.04, 0.01, 0.0])
+        n = 6000
+        which = rng.choice(len(pairs), size=n, p=weights / weights.sum())
+        few = [*range(10, 20), n - 3, n - 2]  # a pair of 12 tests, all listed: two late ones side by side
+        which[few] = 5
+        p = np.round(rng.random(n), 2)  # many ties
+        p[few] = 0.0  # at the bar its own earlier tests set
+        p[rng.random(n) < 0.05] = np.nan
+        phase = rng.choice(["skeleton", "orientation"], size=n, p=[.9, .1])
+        phase[few] = "skeleton"
+        tests = pd.DataFrame({
+            "test_id": np.arange(n), "phase": phase,
+            "level": rng.integers(0, 4, n), "var_a": [pairs[w][0] for w in which], "var_b": [pairs[w][1] for w in which],
+            "given": "", "statistic": rng.random(n), "dof": 1, "pvalue": p, "n": 100, "method": "g",
+            "independent": rng.random(n) < .5, "sparse": False, "degenerate": False, "policy": "flag",
+            "policy_applied": False})
+        ev = pd.DataFrame({"var_a": [x for x, _ in pairs], "var_b": [y for _, y in pairs]})
+        whole = json.dumps(tests_data(ev, tests), sort_keys=False)
+        table = pa.Table.from_pandas(tests, preserve_index=False)
+        for rows in (5, 50, 500):
+            assert json.dumps(tests_data(ev, shown_tests(table, ev, batch_rows=rows)), sort_keys=False) == whole

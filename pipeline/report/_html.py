@@ -431,6 +431,9 @@ def _row_html(i: int, row: Mapping[str, Any], cols: Sequence[tuple[str, str, str
 # The tests of each pair travel as arrays in this field order (one array per test, not one object).
 TEST_FIELDS = ("test_id", "level", "given_text", "statistic", "dof", "pvalue", "n", "method", "independent", "notes")
 TESTS_PER_PAIR = 12  # report.html carries at most this many tests per pair; tests.parquet holds them all
+# the columns of tests.parquet the page's test lists read (`tests_data`): the picks are read with these only
+_PAGE_COLUMNS = ("test_id", "phase", "level", "var_a", "var_b", "given", "given_size", "statistic", "dof", "pvalue",
+                 "n", "method", "independent", "sparse", "degenerate", "policy", "policy_applied")
 
 
 def _column(tests: pd.DataFrame, name: str, default: Any) -> pd.Series:
@@ -533,11 +536,11 @@ def shown_tests(source: Any, evidence: pd.DataFrame, batch_rows: int = 1 << 16) 
     keep = _shown(pair, searched, p, counts=counts)
     picked, pair = pos[keep], pair[keep]
     if pf is None:
-        out = source.take(picked).to_pandas()
-    else:  # the picked rows, one batch of every column at a time
+        out = source.select([c for c in source.column_names if c in _PAGE_COLUMNS]).take(picked).to_pandas()
+    else:  # the picked rows, one batch of the page's columns at a time
         parts, start = [], 0
         plain = pq.ParquetFile(source, pre_buffer=False)
-        for batch in plain.iter_batches(batch_size=batch_rows):
+        for batch in plain.iter_batches(batch_size=batch_rows, columns=[c for c in present if c in _PAGE_COLUMNS]):
             lo, hi = np.searchsorted(picked, [start, start + batch.num_rows])
             if hi > lo:
                 parts.append(pa.Table.from_batches([batch]).take(picked[lo:hi] - start))
