@@ -65,9 +65,9 @@ class Stage:
     resumable : the stage keeps per-level parts in ``call.work``; an interrupted attempt leaves them
         for the next attempt with the same key.
     workers : the stage maps work to the pool (``call.env["workers"]``); the pool opens, and its
-        workers warm up in the background, when the first stage that runs has such a stage ahead (a
-        fresh extract: from ingest on, so their start-up overlaps the data stages; a run whose search
-        stages are all reused never starts a worker).
+        workers warm up in the background, when the stage right before it runs (their start-up
+        overlaps that stage), or when it runs itself; a run whose search stages are all reused never
+        starts a worker.
     """
 
     name: str
@@ -449,10 +449,11 @@ class Runner:
         """Pull the stage's inputs, run it under its entry's lock and start writing its entry."""
         inputs = {name: self.get(name, before=stage) for name in stage.reads}
         workers = self.env.get("workers")
-        if workers is not None and any(st.workers for st in self.stages[self.stages.index(stage):]):
-            # local workers warm up in the background (imports, compiled kernels) from the first stage
-            # that runs while a stage that maps work to them is still ahead: on a fresh extract their
-            # start-up overlaps the data stages; a run whose search is reused never starts them
+        at = self.stages.index(stage)
+        if workers is not None and any(st.workers for st in self.stages[at:at + 2]):
+            # local workers warm up in the background (imports, compiled kernels) from the stage right
+            # before the first that maps work to them: their start-up overlaps that stage, not the data
+            # stages (which use both cores on a large extract); a run whose search is reused never starts them
             workers.prepare()
         carried = {name: self._carried(name, stage) for name in stage.carries}
         self._fresh = self._read_later(stage)

@@ -160,26 +160,26 @@ class _Pool:
         self.opened_in.append(self.stage)
 
 
-def test_workers_open_at_the_first_stage_run_and_never_for_a_reused_plan(tmp_path):
-    """The pool starts warming up when the first stage that runs still has a stage with workers ahead
-    (its start-up overlaps the stages before), and a run whose stages are all reused never opens it."""
+def test_workers_open_one_stage_ahead_and_never_for_a_reused_plan(tmp_path):
+    """The pool starts warming up when the stage right before the first stage with workers runs (its
+    start-up overlaps that stage, not the ones before), and a run whose stages are all reused never
+    opens it."""
     pool = _Pool()
 
-    def first(call):
-        pool.stage = "a"
-        return _first(call)
+    def stage(name, make):
+        def run(call):
+            pool.stage = name
+            return make(call)
+        return run
 
-    def with_workers(call):
-        pool.stage = "b"
-        return _second(call)
-
-    plan = [Stage("a", first, writes=("a.arrow", "a-lines.npy", "a.json")),
-            Stage("b", with_workers, reads=("a.arrow", "a-lines.npy"), writes=("b.parquet",), workers=True)]
+    plan = [Stage("z", stage("z", lambda call: {"z.json": {"n": 1}}), writes=("z.json",)),
+            Stage("a", stage("a", _first), reads=("z.json",), writes=("a.arrow", "a-lines.npy", "a.json")),
+            Stage("b", stage("b", _second), reads=("a.arrow", "a-lines.npy"), writes=("b.parquet",), workers=True)]
     cache = StageCache(tmp_path / CACHE_FOLDER).open()
     runner = Runner(plan, cache, cfg=None, version="test", env={"workers": pool})
     runner.get("b.parquet")
     runner.finish()
-    assert pool.opened_in and pool.opened_in[0] == ""  # asked before stage a's own work began
+    assert pool.opened_in and pool.opened_in[0] == "z"  # asked after stage z ran, before stage a's own work
     again = _Pool()
     rerun = Runner(plan, cache, cfg=None, version="test", env={"workers": again})
     rerun.get("b.parquet")
