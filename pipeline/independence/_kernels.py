@@ -198,6 +198,12 @@ if HAVE_NUMBA:
                 o[(np.uint64(r) & lane) * cells + (((np.uint64(a0) * u1 + np.uint64(a1)) * u2 + np.uint64(a2)) * u3 + np.uint64(a3)) * ukxy + np.uint64(xs) * uky + np.uint64(ys)] += 1
 
     @njit(cache=True, nogil=True)
+    def _closing(g_half, dof, observed, m):  # pragma: no cover
+        """G from its half sum (never below 0), dof (never below 0), and m kept for one stratum only."""
+        g = max(2.0 * g_half, 0.0)
+        return g, max(dof, 0), (m if observed == 1 else 0)
+
+    @njit(cache=True, nogil=True)
     def _flat_statistics_nb(counts, kx, ky):  # pragma: no cover
         n_strata = counts.shape[0] // (kx * ky)
         rows = np.zeros(kx)
@@ -242,13 +248,7 @@ if HAVE_NUMBA:
                         chi2 += d * d / e
                         if o > 0.0:
                             g += o * np.log(o / e)
-        g = 2.0 * g
-        if g < 0.0:
-            g = 0.0
-        if dof < 0:
-            dof = 0
-        if observed != 1:
-            m = 0
+        g, dof, m = _closing(g, dof, observed, m)
         return g, chi2, dof, n, observed, m
 
 
@@ -324,7 +324,8 @@ _BLOCK = 4096
 # Status of a group (a pair's candidate list) after a batched run.
 GROUP_DONE = 0  # ran to its end, or stopped at a test the kernel is sure is independent
 GROUP_UNSURE = 1  # stopped at a test whose decision lies within the margin of the critical value
-GROUP_TOO_BIG = 2  # stopped at a test whose table does not fit the kernel's dense scratch table
+GROUP_TOO_BIG = 2  # stopped at a test counted one at a time (cells past 2**62, or past `max_cells`)
+_INDEX_LIMIT = 1 << 62  # largest cell code the kernels index (as `counting._INT64_SAFE`)
 
 
 if HAVE_NUMBA:
@@ -508,9 +509,145 @@ if HAVE_NUMBA:
         return counts
 
     @njit(cache=True, nogil=True)
+    def _sparse_scratch(rows, kmax):  # pragma: no cover
+        """Scratch arrays of `_sparse_stats` for tables of `rows` rows (a hash table twice as large)."""
+        size = 2
+        while size < 2 * rows:
+            size *= 2
+        if rows == 0:
+            size = 0
+        return (np.zeros(size, dtype=np.int64), np.zeros(size, dtype=np.int64), np.zeros(size, dtype=np.int64),
+                np.zeros(1, dtype=np.int64), np.empty(rows, dtype=np.int64), np.empty(rows, dtype=np.int64),
+                np.empty(rows + 1, dtype=np.int64), np.empty(rows, dtype=np.int64))
+
+    @njit(cache=True, nogil=True)
+    def _sparse_stats(data, w, cards, colmiss, x, y, g, ng, sp, tab, rowc, colc):  # pragma: no cover
+        """G, X^2, dof, n, observed strata, m and the strata met of one test, visiting only the
+        cells that occur (for tables of many more cells than rows).
+
+        Rows are grouped by stratum (a hash of the stratum code, then a counting sort); each stratum
+        is counted into a table of x by y that is cleared cell by cell after use. X^2 adds the cells
+        that occur and, for the cells of present levels that do not, their expected counts, which
+        sum to the stratum's rows less the expected counts of the cells that occur. The sums are
+        added in another order than `_flat_statistics_nb`'s, so the statistics agree with it to
+        rounding (relative 1e-12); dof, n, the strata and m are the same integers.
+        `sp` holds the scratch arrays (`_sparse_scratch`); `tab`, `rowc` and `colc` are zero on entry
+        and on return.
+        """
+        hkey, hid, hstamp, stamp_box, rid, rs, start, perm = sp
+        n_rows = data.shape[1]
+        ky = cards[y]
+        checked = colmiss[x] or colmiss[y]
+        for j in range(ng):
+            if colmiss[g[j]]:
+                checked = True
+        mask = hkey.shape[0] - 1
+        bits = 0
+        while (1 << bits) < hkey.shape[0]:
+            bits += 1
+        shift = np.uint64(64 - bits)
+        mult = np.uint64(0x9E3779B97F4A7C15)
+        stamp_box[0] += 1
+        cur = stamp_box[0]
+        xs = data[x]
+        ys = data[y]
+        n_strata = 0
+        nv = 0
+        for r in range(n_rows):
+            if checked:
+                if xs[r] < 0 or ys[r] < 0:
+                    continue
+                skip = False
+                for j in range(ng):
+                    if data[g[j], r] < 0:
+                        skip = True
+                        break
+                if skip:
+                    continue
+            sc = np.int64(0)
+            for j in range(ng):
+                sc = sc * cards[g[j]] + np.int64(data[g[j], r])
+            h = np.int64((np.uint64(sc) * mult) >> shift)
+            while hstamp[h] == cur and hkey[h] != sc:
+                h = (h + 1) & mask
+            if hstamp[h] != cur:
+                hstamp[h] = cur
+                hkey[h] = sc
+                hid[h] = n_strata
+                n_strata += 1
+            rid[nv] = r
+            rs[nv] = hid[h]
+            nv += 1
+        if n_strata == 0:
+            return 0.0, 0.0, 0, 0, 0, 0, 0
+        for k in range(n_strata + 1):
+            start[k] = 0
+        for i in range(nv):
+            start[rs[i] + 1] += 1
+        for k in range(n_strata):
+            start[k + 1] += start[k]
+        for i in range(nv):
+            k = rs[i]
+            perm[start[k]] = rid[i]
+            start[k] += 1
+        # start[k] now ends stratum k
+        g_sum = 0.0
+        chi2 = 0.0
+        dof = 0
+        n = 0
+        m = 0
+        observed = 0
+        a = 0
+        for k in range(n_strata):
+            b = start[k]
+            tot = 0.0
+            rp = 0
+            cp = 0
+            for i in range(a, b):
+                r = perm[i]
+                c = 1.0 if w is None else np.float64(w[r])
+                xi = xs[r]
+                yi = ys[r]
+                if c > 0.0:
+                    if rowc[xi] == 0.0:
+                        rp += 1
+                    if colc[yi] == 0.0:
+                        cp += 1
+                tab[xi * ky + yi] += c
+                rowc[xi] += c
+                colc[yi] += c
+                tot += c
+            if tot > 0.0:
+                observed += 1
+                n += np.int64(tot)
+                dof += (rp - 1) * (cp - 1)
+                m = min(rp, cp) - 1
+                e_seen = 0.0
+                for i in range(a, b):
+                    r = perm[i]
+                    cell = xs[r] * ky + ys[r]
+                    o = tab[cell]
+                    if o > 0.0:
+                        e = rowc[xs[r]] * colc[ys[r]] / tot
+                        d = o - e
+                        chi2 += d * d / e
+                        g_sum += o * np.log(o / e)
+                        e_seen += e
+                        tab[cell] = 0.0
+                chi2 += max(tot - e_seen, 0.0)  # the cells of present levels that do not occur: (0 - e)^2 / e
+            for i in range(a, b):
+                r = perm[i]
+                tab[xs[r] * ky + ys[r]] = 0.0
+                rowc[xs[r]] = 0.0
+                colc[ys[r]] = 0.0
+            a = b
+        g_sum, dof, m = _closing(g_sum, dof, observed, m)
+        return g_sum, chi2, dof, n, observed, m, n_strata
+
+    @njit(cache=True, nogil=True)
     def _run_groups_nb(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
                        use_chi2, crit, margin, alpha, min_rows, policy, cap, table,
-                       planes, off, bit_cost,
+                       planes, off, bit_cost, sparse_from, max_cells,
                        out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible,
                        group_ran, group_status):  # pragma: no cover
         """Run groups of tests; with `stop_first`, a group stops at its first independent test."""
@@ -525,6 +662,13 @@ if HAVE_NUMBA:
         nz = np.zeros(depth, dtype=np.int64)
         lev = np.zeros(depth, dtype=np.int64)
         rows = data.shape[1]
+        sp = _sparse_scratch(0, 0)
+        kmax = 1
+        for v in range(cards.shape[0]):
+            kmax = max(kmax, cards[v])
+        tab = np.zeros(0)
+        rowc = np.zeros(0)
+        colc = np.zeros(0)
         for k in range(group_start.shape[0]):
             status = 0
             ran = 0
@@ -534,22 +678,35 @@ if HAVE_NUMBA:
                 ng = gn[t]
                 g = gs[t]
                 possible = cards[x] * cards[y]
-                too_big = possible > cap
+                overflow = False
                 for j in range(ng):
-                    if too_big:
+                    c = cards[g[j]]
+                    if possible > (_INDEX_LIMIT - 1) // c:
+                        overflow = True
                         break
-                    possible *= cards[g[j]]
-                    too_big = possible > cap
-                lanes = 4 if possible <= 8192 else 1
-                if too_big or lanes * possible > scratch:
+                    possible *= c
+                if overflow:
                     status = 2
                     break
-                if use_bits and nwords * possible * bit_cost * (1 << ng) < rows * (1.0 + 0.1 * ng):
-                    counts = _count_bits(planes, off, cards, x, y, g, ng, possible, st_idx, st_mask, nz, lev)
+                lanes = 4 if possible <= 8192 else 1
+                if possible > sparse_from or possible > cap or lanes * possible > scratch:
+                    if sp[0].shape[0] == 0:
+                        sp = _sparse_scratch(rows, kmax)
+                        tab = np.zeros(kmax * kmax)
+                        rowc = np.zeros(kmax)
+                        colc = np.zeros(kmax)
+                    gv, cv, dof, n, obs, m, strata = _sparse_stats(data, w, cards, colmiss, x, y, g, ng, sp,
+                                                                   tab, rowc, colc)
+                    if strata * cards[x] * cards[y] > max_cells:
+                        status = 2  # counted one at a time, which refuses it (`limits.max_table_cells`)
+                        break
                 else:
-                    counts = _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes,
-                                                table, code, bad)
-                gv, cv, dof, n, obs, m = _flat_statistics_nb(counts, cards[x], cards[y])
+                    if use_bits and nwords * possible * bit_cost * (1 << ng) < rows * (1.0 + 0.1 * ng):
+                        counts = _count_bits(planes, off, cards, x, y, g, ng, possible, st_idx, st_mask, nz, lev)
+                    else:
+                        counts = _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes,
+                                                    table, code, bad)
+                    gv, cv, dof, n, obs, m = _flat_statistics_nb(counts, cards[x], cards[y])
                 out_g[t] = gv
                 out_chi2[t] = cv
                 out_dof[t] = dof
@@ -585,14 +742,15 @@ if HAVE_NUMBA:
 
 def run_groups(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
                use_chi2, crit, margin, alpha, min_rows, policy, cap, table, planes, off, bit_cost,
-               out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible):
+               sparse_from, max_cells, out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible):
     """Compiled batch runner (see `_run_groups_nb`); fills the per-test arrays at the tests it runs
     and returns, per group, the number of tests run and a GROUP_* status."""
     group_ran = np.zeros(group_start.shape[0], dtype=np.int64)
     group_status = np.zeros(group_start.shape[0], dtype=np.int64)
     _run_groups_nb(data, w, cards, colmiss, xs, ys, gs, gn, group_start, group_stop, stop_first,
                    use_chi2, crit, margin, alpha, min_rows, policy, cap, table, planes, off, bit_cost,
-                   out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible, group_ran, group_status)
+                   sparse_from, max_cells, out_g, out_chi2, out_dof, out_n, out_obs, out_m, out_possible,
+                   group_ran, group_status)
     return group_ran, group_status
 
 

@@ -8,8 +8,11 @@ How a test is counted (every path gives the same integer counts, so the same CIT
   candidate lists, which stops each pair at its first independent test);
 * small tables are counted from bit planes of the original rows (one bit per row and level;
   a cell is a popcount of ANDed planes) when that is cheaper than a pass over the rows;
-* tables with more cells than the kernel's dense cap, and permutation tests, go one at a time
-  through `count_flat` / `count_table`.
+* tables with more cells than the kernel's dense cap (many levels, large conditioning sets) are
+  counted in the same compiled call over the cells that occur, stratum by stratum; their
+  statistics agree with the dense count to rounding (relative 1e-12), the integers exactly;
+* permutation tests, tables whose cells cannot be indexed in 64 bits and tables refused by
+  `max_table_cells` go one at a time through `count_flat` / `count_table`.
 
 Inside the compiled loop a pair's decision is read off a table of critical values
 ``chi2.isf(alpha, dof)``; a statistic within a relative ``1e-7`` of its critical value is handed back
@@ -92,6 +95,7 @@ class EngineSettings:
     compress_max_ratio: float = 0.75
     bit_cost: float = 0.6  # bit planes when words * cells * bit_cost * 2**ng < rows * (1 + ng / 10); 0: off
     bit_planes_bytes: int = 64 * 1024 * 1024
+    sparse_ratio: float = -1.0  # tables of more cells than this many times the rows: counted over the cells that occur; < 0: only tables past the dense cap
 
     def __post_init__(self) -> None:
         if self.method not in {"auto", "g", "chi2", "permutation", "gcm"}:
@@ -272,7 +276,8 @@ class CIEngine:
         _, status = run_groups(
             self._cdata, self._kw, self._cards_arr, self._colmiss, xs, ys, gs, gn, one["start"], one["stop"],
             False, False, one["crit"], _MARGIN, st.alpha, st.min_rows_per_cell, 0,
-            self._cap, self._scratch, self._planes, self._off, self._bit_cost, *arrays,
+            self._cap, self._scratch, self._planes, self._off, self._bit_cost, self._sparse_from,
+            st.max_table_cells, *arrays,
         )
         if status[0] == GROUP_TOO_BIG:
             return self._single(xi, yi, gi)
@@ -460,6 +465,8 @@ class CIEngine:
         rows = data.shape[1]
         st = self.settings
         self._cap = min(max(4 * min(rows, st.partition_rows), 1 << 16), st.max_table_cells)
+        # tables of more cells than this are counted over the cells that occur (`_sparse_stats`)
+        self._sparse_from = int(st.sparse_ratio * rows) if st.sparse_ratio >= 0 else 1 << 62
         dtype = np.int32 if self._rows < (1 << 31) else np.int64
         self._scratch = np.zeros(max(4 * _LANES_MAX_CELLS, min(4 * self._cap, _SCRATCH_CELLS)), dtype=dtype)
         self._kw = None if self._cw is None else (
@@ -529,7 +536,8 @@ class CIEngine:
             ran, status = run_groups(
                 self._cdata, self._kw, self._cards_arr, self._colmiss, xs, ys, gs, gn, g_start, g_stop,
                 stop_first, st.method == "chi2", crit, _MARGIN, st.alpha, st.min_rows_per_cell, policy,
-                self._cap, self._scratch, self._planes, self._off, self._bit_cost, *arrays,
+                self._cap, self._scratch, self._planes, self._off, self._bit_cost, self._sparse_from,
+                st.max_table_cells, *arrays,
             )
             idx = _ranges(g_start, ran)
             independent[idx] = self._batch_values(idx, arrays, gn)["independent"]
