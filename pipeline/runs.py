@@ -314,17 +314,25 @@ class StageCache:
             os.utime(folder / _ENTRY_FILE)
         return doc
 
-    def read(self, stage: str, key: str, name: str) -> bytes:
-        """The bytes of one file of a finished entry, checked against its checksum."""
+    def _listing(self, stage: str, key: str, name: str) -> tuple[Path, dict[str, Any]]:
+        """The path of one file of a finished entry and what its entry file lists for it."""
         folder = self.entry(stage, key)
         try:
             doc = json.loads((folder / _ENTRY_FILE).read_text(encoding="utf-8"))
-            data = (folder / name).read_bytes()
         except (OSError, ValueError) as err:
             raise CacheDamaged(f"{name} unreadable ({type(err).__name__})") from err
-        info = doc.get("files", {}).get(name)
-        if info is None:
+        info = doc.get("files", {}).get(name) if isinstance(doc, dict) else None
+        if not isinstance(info, dict):
             raise CacheDamaged(f"{name} is not listed in {_ENTRY_FILE}")
+        return folder / name, info
+
+    def read(self, stage: str, key: str, name: str) -> bytes:
+        """The bytes of one file of a finished entry, checked against its checksum."""
+        path, info = self._listing(stage, key, name)
+        try:
+            data = path.read_bytes()
+        except OSError as err:
+            raise CacheDamaged(f"{name} unreadable ({type(err).__name__})") from err
         if len(data) != info["size"] or not checksum_matches(data, str(info["checksum"])):
             raise CacheDamaged(f"{name} does not match its checksum")
         return data
@@ -332,24 +340,15 @@ class StageCache:
     def check(self, stage: str, key: str, name: str) -> Path:
         """The path of one file of a finished entry, its bytes checked against its checksum as `read`
         checks them, read in blocks."""
-        folder = self.entry(stage, key)
+        path, info = self._listing(stage, key, name)
         try:
-            doc = json.loads((folder / _ENTRY_FILE).read_text(encoding="utf-8"))
-            info = doc.get("files", {}).get(name)
-            if info is None:
-                raise CacheDamaged(f"{name} is not listed in {_ENTRY_FILE}")
-            size = (folder / name).stat().st_size
-            digest = file_checksum(folder / name, str(info["checksum"]))
-        except (OSError, ValueError) as err:
+            size = path.stat().st_size
+            digest = file_checksum(path, str(info["checksum"]))
+        except OSError as err:
             raise CacheDamaged(f"{name} unreadable ({type(err).__name__})") from err
         if size != info["size"] or digest != info["checksum"]:
             raise CacheDamaged(f"{name} does not match its checksum")
-        return folder / name
-
-    def listed(self, stage: str, key: str, name: str) -> dict[str, Any]:
-        """Size and checksum of one file of a finished entry, as written."""
-        doc = json.loads((self.entry(stage, key) / _ENTRY_FILE).read_text(encoding="utf-8"))
-        return dict(doc["files"][name])
+        return path
 
     @contextlib.contextmanager
     def writing(self, stage: str, key: str, *, resume: bool = False) -> Iterator[Path | None]:
