@@ -205,9 +205,13 @@ if HAVE_NUMBA:
 
     @njit(cache=True, nogil=True)
     def _flat_statistics_nb(counts, kx, ky):  # pragma: no cover
-        n_strata = counts.shape[0] // (kx * ky)
-        rows = np.zeros(kx)
-        cols = np.zeros(ky)
+        """`flat_statistics_numpy` compiled: margins summed as integers (an empty stratum is seen from
+        one integer sum of its cells), expected counts only where both levels are present. The
+        statistics add the same terms in the same order as a cell-by-cell pass, so the same bits."""
+        kxy = kx * ky
+        n_strata = counts.shape[0] // kxy
+        rows = np.zeros(kx, dtype=np.int64)
+        cols = np.zeros(ky, dtype=np.int64)
         g = 0.0
         chi2 = 0.0
         dof = 0
@@ -215,20 +219,24 @@ if HAVE_NUMBA:
         observed = 0
         m = 0
         for s in range(n_strata):
-            base = s * kx * ky
-            tot = 0.0
-            rows[:] = 0.0
-            cols[:] = 0.0
-            for i in range(kx):
-                for j in range(ky):
-                    c = counts[base + i * ky + j]
-                    rows[i] += c
-                    cols[j] += c
-                    tot += c
-            if tot == 0.0:
+            base = s * kxy
+            tot_i = np.int64(0)
+            for c in range(base, base + kxy):
+                tot_i += counts[c]
+            if tot_i == 0:
                 continue
+            cols[:] = 0
+            for i in range(kx):
+                row = np.int64(0)
+                at = base + i * ky
+                for j in range(ky):
+                    c = counts[at + j]
+                    row += c
+                    cols[j] += c
+                rows[i] = row
+            tot = np.float64(tot_i)
             observed += 1
-            n += np.int64(tot)
+            n += tot_i
             rp = 0
             cp = 0
             for i in range(kx):
@@ -240,14 +248,19 @@ if HAVE_NUMBA:
             dof += (rp - 1) * (cp - 1)
             m = min(rp, cp) - 1
             for i in range(kx):
+                if rows[i] == 0:
+                    continue
+                ri = np.float64(rows[i])
+                at = base + i * ky
                 for j in range(ky):
-                    e = rows[i] * cols[j] / tot
-                    if e > 0.0:
-                        o = np.float64(counts[base + i * ky + j])
-                        d = o - e
-                        chi2 += d * d / e
-                        if o > 0.0:
-                            g += o * np.log(o / e)
+                    if cols[j] == 0:
+                        continue
+                    e = ri * np.float64(cols[j]) / tot
+                    o = np.float64(counts[at + j])
+                    d = o - e
+                    chi2 += d * d / e
+                    if o > 0.0:
+                        g += o * np.log(o / e)
         g, dof, m = _closing(g, dof, observed, m)
         return g, chi2, dof, n, observed, m
 
