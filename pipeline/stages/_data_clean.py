@@ -390,17 +390,29 @@ def _count_codes(codes: np.ndarray, labels: np.ndarray) -> tuple[int, int]:
     return missing, len(set(labels[(counts[1:] > 0) & ~no_label].tolist()))
 
 
+def distinct_floats(arr: np.ndarray) -> int:
+    """The number of distinct values of a float array without NaN (-0.0 equals 0.0).
+
+    Values are hashed (pandas' table) unless an evenly spaced sample of about 16,000 is nearly all
+    distinct; then the runs of a sorted copy are counted (numpy's vectorised sort). Measured on the
+    generated 1,000,000-row extract (bench/gen_extract.py), per column: hashing 12-65 ms up to about
+    100,000 distinct values, sorting 45-78 ms whatever their number, hashing 90-100 ms at 300,000+.
+    """
+    if arr.size > 65_536:
+        sample = arr[:: arr.size // 16_384]
+        if len(pd.unique(sample)) < 0.9 * sample.size:
+            return len(pd.unique(arr))
+    ordered = np.sort(arr)
+    return int(ordered.size > 0) + int(np.count_nonzero(ordered[1:] != ordered[:-1]))
+
+
 def _count(kind: str, values: pd.Series) -> tuple[int, int]:
     """Missing and distinct counts, computed the cheap way for each kind."""
     if kind == "numeric":
         arr = values.to_numpy(dtype=float)
         nan = np.isnan(arr)
         n_nan = int(nan.sum())
-        # distinct values of a sorted copy (-0.0 equals 0.0): numpy's vectorised sort is quicker than
-        # hashing a million floats with Arrow or pandas
-        ordered = np.sort(arr[~nan] if n_nan else arr)
-        distinct = int(ordered.size > 0) + int(np.count_nonzero(ordered[1:] != ordered[:-1]))
-        return n_nan, distinct
+        return n_nan, distinct_floats(arr[~nan] if n_nan else arr)
     try:
         codes, uniques = pd.factorize(values, use_na_sentinel=True)
     except TypeError:
