@@ -18,7 +18,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from pipeline.config import load_config, resolve_auto, search_pair_count  # noqa: E402
+from pipeline.config import load_config, resolve_auto  # noqa: E402
 from pipeline.independence.engine import EngineSettings  # noqa: E402
 from pipeline.search.knowledge import Knowledge  # noqa: E402
 from pipeline.search.skeleton import SignalExtras, pc_stable_skeleton  # noqa: E402
@@ -39,11 +39,7 @@ def search_night(frame, overrides: list[str], max_order: int | None = None):
     cards = {k: max(1, len(v)) for k, v in disc.levels.items()}
     timed = timeline.run(cleaned.table, cleaned.times, cleaned.kinds, disc.codes, cards, cfg,
                          {c: v.get("method") for c, v in disc.summary["columns"].items()})
-    # `auto` settings resolved as a run resolves them (pipeline.api): rows with a previous window, level counts
-    # of the signals tested on codes, and the pairs the search tests
-    n_info = len(disc.codes) - int(timed.summary.get("rows_without_previous", 0)) if timed.timeline is not None else len(disc.codes)
-    coded = [c for c, s, lag in zip(timed.cards, timed.scores, timed.lag) if s is None and lag == 0]
-    cfg, _ = resolve_auto(cfg, n_info, coded, search_pair_count(sum(1 for lag in timed.lag if lag == 0), cfg.time.lags))
+    cfg, _ = resolve_auto(cfg, *timeline.auto_inputs(timed.doc(), len(disc.codes)))  # as a run resolves them
     settings = EngineSettings.from_config(cfg)
     extras = None
     if cfg.test.method in ("auto", "gcm") or timed.timeline is not None:

@@ -54,7 +54,7 @@ from .runs import (
 )
 from .search.knowledge import Knowledge
 from .stages import report
-from .stages.timeline import orient_lagged, time_tiers
+from .stages.timeline import auto_inputs, lag_pairs, orient_lagged, time_tiers
 
 if TYPE_CHECKING:  # networkx loads when a graph is asked for, not on every command
     import networkx as nx
@@ -363,17 +363,6 @@ def _release_freed_memory() -> None:
     trim(0)
 
 
-def _lag_pairs(time_doc: dict[str, Any]) -> list[tuple[str, str]]:
-    """Pairs the search never tests: two earlier-window copies, or a signal and its own earlier copy."""
-    names, source, lags = time_doc["names"], time_doc["source"], time_doc["lag"]
-    out = []
-    for i in range(len(names)):
-        for j in range(i + 1, len(names)):
-            if (lags[i] > 0 and lags[j] > 0) or source[i] == source[j]:
-                out.append((names[i], names[j]))
-    return out
-
-
 def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: Reporter,
               run_name: str | None = None) -> dict[str, Any]:
     """Pull the plan's artifacts through the runner and assemble the run folder and its manifest."""
@@ -407,14 +396,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
             f"Only {len(names)} signal(s) left to test ({', '.join(names) or 'none'}) once the series columns "
             f"({', '.join(time_doc.get('series') or []) or 'none'}) are set aside; see cleaning.json, or set `time.test_series: true`."
         )
-    # `auto` rules count the rows a test can use: on time-ordered rows the tests condition on the previous
-    # window, so a row counts once it has one (its news since that window is what the tests see)
-    n_info = n_kept - int(time_doc.get("rows_without_previous", 0)) if time_doc["timed"] else n_kept
-    # the level-count part of the rules is about contingency tables: only signals tested on their codes count
-    coded = [c for c, numeric, lag in zip(cards, time_doc["numeric"], time_doc["lag"]) if not numeric and lag == 0]
-    lag_pairs = _lag_pairs(time_doc)
-    n_pairs = len(names) * (len(names) - 1) // 2 - len(lag_pairs)
-    cfg, auto_settings = resolve_auto(cfg, n_info, coded, n_pairs)
+    cfg, auto_settings = resolve_auto(cfg, *auto_inputs(time_doc, n_kept))
     runner.cfg = cfg  # the stages from here on see the resolved settings (and are keyed by them)
 
     # knowledge: configuration + reviewed evidence file + the order of time (a copy from an earlier window
@@ -423,7 +405,7 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     knowledge = Knowledge.build(
         names,
         required=[*cfg.knowledge.required, *confirm],
-        forbidden=[*cfg.knowledge.forbidden, *lag_pairs],
+        forbidden=[*cfg.knowledge.forbidden, *lag_pairs(time_doc)],
         rejected=reject,  # tested as usual, removed at the end (the report says when data disagree)
         tiers=time_tiers(names, time_doc["lag"], cfg.knowledge.tiers),
     )

@@ -119,10 +119,7 @@ def _timeline(call: StageCall) -> dict[str, Any]:
         "search-codes.npy": timed.codes,
         "search-scores.npy": scores,
         "search-prev.npy": prev,
-        "timeline.json": {**timed.summary, "names": timed.names, "cards": timed.cards, "source": timed.source,
-                          "lag": timed.lag, "numeric": numeric,
-                          "timed": timed.timeline is not None,
-                          "series_length": timed.timeline.series_length if timed.timeline is not None else 0.0},
+        "timeline.json": timed.doc(),
     }
 
 

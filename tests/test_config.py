@@ -108,8 +108,8 @@ def test_auto_alpha_shares_005_over_the_pairs_tested():
 
 def test_tested_pairs_counts_what_the_search_tests():
     """`search_pair_count` equals the pairs a run leaves in the search: all pairs of its variables minus the pairs
-    the time order rules out (two earlier copies, or a signal with its own copy; `api._lag_pairs`)."""
-    from pipeline.api import _lag_pairs
+    the time order rules out (two earlier copies, or a signal with its own copy; `timeline.lag_pairs`)."""
+    from pipeline.stages.timeline import lag_pairs
 
     for p in (2, 5, 14):
         for lags in (0, 1, 3):
@@ -119,4 +119,16 @@ def test_tested_pairs_counts_what_the_search_tests():
                     names.append(f"s{i}@{k}"), source.append(f"s{i}"), lag.append(k)
             n = len(names)
             doc = {"names": names, "source": source, "lag": lag}
-            assert search_pair_count(p, lags) == n * (n - 1) // 2 - len(_lag_pairs(doc)), (p, lags)
+            assert search_pair_count(p, lags) == n * (n - 1) // 2 - len(lag_pairs(doc)), (p, lags)
+
+
+def test_auto_inputs_from_a_timeline_doc():
+    """What a run gives `resolve_auto`: rows with a previous window (time-ordered rows), the levels of the
+    signals tested on their codes (no numeric signal, no earlier-window copy), the pairs the search tests."""
+    from pipeline.stages.timeline import auto_inputs
+
+    doc = {"names": ["a", "b", "c", "a@t-1", "b@t-1", "c@t-1"], "source": ["a", "b", "c", "a", "b", "c"],
+           "lag": [0, 0, 0, 1, 1, 1], "cards": [3, 4, 1, 3, 4, 1], "numeric": [False, False, True, False, False, True],
+           "timed": True, "rows_without_previous": 12}
+    assert auto_inputs(doc, 1000) == (988, [3, 4], search_pair_count(3, 1))
+    assert auto_inputs({**doc, "timed": False}, 1000)[0] == 1000

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
 import pandas as pd
@@ -31,7 +31,8 @@ from ..errors import ConfigError, DataError
 if TYPE_CHECKING:  # the residual test's module (and scipy under it) loads when a stage runs, not on import
     from ..independence.residual import Timeline
 
-__all__ = ["Timed", "run", "persistence", "lag_name", "lag_of", "time_tiers", "orient_lagged", "HIGH_PERSISTENCE"]
+__all__ = ["Timed", "run", "persistence", "lag_name", "lag_of", "time_tiers", "orient_lagged", "lag_pairs",
+           "auto_inputs", "HIGH_PERSISTENCE"]
 
 HIGH_PERSISTENCE = 0.3  # lag-1 persistence above this makes independent-row tests unreliable (see README)
 
@@ -130,6 +131,36 @@ class Timed:
     def own_past(self) -> list[bool]:
         """Whether each variable's own previous window enters its tests (not for lag copies)."""
         return [lag == 0 for lag in self.lag]
+
+    def doc(self) -> dict[str, Any]:
+        """``timeline.json``: the summary and the search's variables (name, levels, the signal each copies,
+        its lag, whether it is tested on its values), whether rows are time-ordered, the series length."""
+        return {**self.summary, "names": self.names, "cards": self.cards, "source": self.source, "lag": self.lag,
+                "numeric": [s is not None for s in self.scores], "timed": self.timeline is not None,
+                "series_length": self.timeline.series_length if self.timeline is not None else 0.0}
+
+
+def lag_pairs(doc: Mapping[str, Any]) -> list[tuple[str, str]]:
+    """Pairs of `doc`'s variables (``timeline.json``) the search never tests: two earlier-window copies,
+    or a signal and its own earlier copy."""
+    names, source, lags = doc["names"], doc["source"], doc["lag"]
+    out = []
+    for i in range(len(names)):
+        for j in range(i + 1, len(names)):
+            if (lags[i] > 0 and lags[j] > 0) or source[i] == source[j]:
+                out.append((names[i], names[j]))
+    return out
+
+
+def auto_inputs(doc: Mapping[str, Any], n_rows: int) -> tuple[int, list[int], int]:
+    """What `config.resolve_auto` is given for a search over `doc`'s variables (``timeline.json``) on
+    `n_rows` kept rows: the rows a test can use (on time-ordered rows the tests condition on the previous
+    window, so a row counts once it has one), the level counts of the signals tested on their codes (the
+    rules are about contingency tables) and the pairs the search tests (`lag_pairs` left out)."""
+    n_info = n_rows - int(doc.get("rows_without_previous", 0)) if doc["timed"] else n_rows
+    coded = [int(c) for c, numeric, lag in zip(doc["cards"], doc["numeric"], doc["lag"]) if not numeric and lag == 0]
+    n = len(doc["names"])
+    return n_info, coded, n * (n - 1) // 2 - len(lag_pairs(doc))
 
 
 def persistence(codes: np.ndarray, scores: np.ndarray | None, prev: np.ndarray) -> float:
