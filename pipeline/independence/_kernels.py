@@ -531,32 +531,37 @@ if HAVE_NUMBA:
             size = 0
         return (np.zeros(size, dtype=np.int64), np.zeros(size, dtype=np.int64), np.zeros(size, dtype=np.int64),
                 np.zeros(1, dtype=np.int64), np.empty(rows, dtype=np.int64), np.empty(rows, dtype=np.int64),
-                np.empty(rows + 1, dtype=np.int64), np.empty(rows, dtype=np.int64))
+                np.empty(rows + 1, dtype=np.int64), np.empty(rows, dtype=np.int64), np.empty(rows, dtype=np.int64),
+                np.empty(rows, dtype=np.int64), np.empty(_BLOCK, dtype=np.int64), np.empty(_BLOCK, dtype=np.int64))
 
     @njit(cache=True, nogil=True)
     def _sparse_stats(data, w, cards, colmiss, x, y, g, ng, sp, tab, rowc, colc):  # pragma: no cover
         """G, X^2, dof, n, observed strata, m and the strata met of one test, visiting only the
         cells that occur (for tables of many more cells than rows).
 
-        Rows are grouped by stratum (a hash of the stratum code, then a counting sort); each stratum
-        is counted into a table of x by y that is cleared cell by cell after use. X^2 adds the cells
-        that occur and, for the cells of present levels that do not, their expected counts, which
-        sum to the stratum's rows less the expected counts of the cells that occur. The sums are
-        added in another order than `_flat_statistics_nb`'s, so the statistics agree with it to
-        rounding (relative 1e-12); dof, n, the strata and m are the same integers.
-        `sp` holds the scratch arrays (`_sparse_scratch`); `tab`, `rowc` and `colc` are zero on entry
-        and on return.
+        Rows are grouped by stratum (the stratum code indexes a table directly when the strata are few
+        enough, else through a hash, then a counting sort); each stratum is counted into a table of x
+        by y that is cleared cell by cell after use. X^2 adds the cells that occur and, for the cells
+        of present levels that do not, their expected counts, which sum to the stratum's rows less the
+        expected counts of the cells that occur. The sums are added in another order than
+        `_flat_statistics_nb`'s, so the statistics agree with it to rounding (relative 1e-12); dof, n,
+        the strata and m are the same integers. `sp` holds the scratch arrays (`_sparse_scratch`);
+        `tab`, `rowc` and `colc` are zero on entry and on return.
         """
-        hkey, hid, hstamp, stamp_box, rid, rs, start, perm = sp
+        hkey, hid, hstamp, stamp_box, rid, rs, start, px, py, pw, code, bad = sp
         n_rows = data.shape[1]
         ky = cards[y]
         checked = colmiss[x] or colmiss[y]
+        strata_possible = 1
         for j in range(ng):
             if colmiss[g[j]]:
                 checked = True
-        mask = hkey.shape[0] - 1
+            strata_possible *= cards[g[j]]
+        size = hkey.shape[0]
+        direct = strata_possible <= size  # the stratum code is its own slot: no probing, no key to compare
+        mask = size - 1
         bits = 0
-        while (1 << bits) < hkey.shape[0]:
+        while (1 << bits) < size:
             bits += 1
         shift = np.uint64(64 - bits)
         mult = np.uint64(0x9E3779B97F4A7C15)
@@ -566,31 +571,46 @@ if HAVE_NUMBA:
         ys = data[y]
         n_strata = 0
         nv = 0
-        for r in range(n_rows):
+        for lo in range(0, n_rows, _BLOCK):
+            hi = min(n_rows, lo + _BLOCK)
+            m = hi - lo
+            if ng > 0:
+                zc = data[g[0], lo:hi]
+                for r in range(m):
+                    code[r] = np.int64(zc[r])
+                for j in range(1, ng):
+                    zc = data[g[j], lo:hi]
+                    c = cards[g[j]]
+                    for r in range(m):
+                        code[r] = code[r] * c + np.int64(zc[r])
+            else:
+                for r in range(m):
+                    code[r] = 0
             if checked:
-                if xs[r] < 0 or ys[r] < 0:
-                    continue
-                skip = False
+                for r in range(m):
+                    bad[r] = np.int64(xs[lo + r] | ys[lo + r])
                 for j in range(ng):
-                    if data[g[j], r] < 0:
-                        skip = True
-                        break
-                if skip:
+                    zc = data[g[j], lo:hi]
+                    for r in range(m):
+                        bad[r] |= np.int64(zc[r])
+            for r in range(m):
+                if checked and bad[r] < 0:
                     continue
-            sc = np.int64(0)
-            for j in range(ng):
-                sc = sc * cards[g[j]] + np.int64(data[g[j], r])
-            h = np.int64((np.uint64(sc) * mult) >> shift)
-            while hstamp[h] == cur and hkey[h] != sc:
-                h = (h + 1) & mask
-            if hstamp[h] != cur:
-                hstamp[h] = cur
-                hkey[h] = sc
-                hid[h] = n_strata
-                n_strata += 1
-            rid[nv] = r
-            rs[nv] = hid[h]
-            nv += 1
+                sc = code[r]
+                if direct:
+                    h = sc
+                else:
+                    h = np.int64((np.uint64(sc) * mult) >> shift)
+                    while hstamp[h] == cur and hkey[h] != sc:
+                        h = (h + 1) & mask
+                if hstamp[h] != cur:
+                    hstamp[h] = cur
+                    hkey[h] = sc
+                    hid[h] = n_strata
+                    n_strata += 1
+                rid[nv] = lo + r
+                rs[nv] = hid[h]
+                nv += 1
         if n_strata == 0:
             return 0.0, 0.0, 0, 0, 0, 0, 0
         for k in range(n_strata + 1):
@@ -601,9 +621,13 @@ if HAVE_NUMBA:
             start[k + 1] += start[k]
         for i in range(nv):
             k = rs[i]
-            perm[start[k]] = rid[i]
-            start[k] += 1
-        # start[k] now ends stratum k
+            at = start[k]
+            r = rid[i]
+            px[at] = xs[r]
+            py[at] = ys[r]
+            pw[at] = 1 if w is None else np.int64(w[r])
+            start[k] = at + 1
+        # start[k] now ends stratum k; px, py, pw hold the rows stratum by stratum
         g_sum = 0.0
         chi2 = 0.0
         dof = 0
@@ -617,10 +641,9 @@ if HAVE_NUMBA:
             rp = 0
             cp = 0
             for i in range(a, b):
-                r = perm[i]
-                c = 1.0 if w is None else np.float64(w[r])
-                xi = xs[r]
-                yi = ys[r]
+                c = np.float64(pw[i])
+                xi = px[i]
+                yi = py[i]
                 if c > 0.0:
                     if rowc[xi] == 0.0:
                         rp += 1
@@ -637,11 +660,10 @@ if HAVE_NUMBA:
                 m = min(rp, cp) - 1
                 e_seen = 0.0
                 for i in range(a, b):
-                    r = perm[i]
-                    cell = xs[r] * ky + ys[r]
+                    cell = px[i] * ky + py[i]
                     o = tab[cell]
                     if o > 0.0:
-                        e = rowc[xs[r]] * colc[ys[r]] / tot
+                        e = rowc[px[i]] * colc[py[i]] / tot
                         d = o - e
                         chi2 += d * d / e
                         g_sum += o * np.log(o / e)
@@ -649,10 +671,9 @@ if HAVE_NUMBA:
                         tab[cell] = 0.0
                 chi2 += max(tot - e_seen, 0.0)  # the cells of present levels that do not occur: (0 - e)^2 / e
             for i in range(a, b):
-                r = perm[i]
-                tab[xs[r] * ky + ys[r]] = 0.0
-                rowc[xs[r]] = 0.0
-                colc[ys[r]] = 0.0
+                tab[px[i] * ky + py[i]] = 0.0
+                rowc[px[i]] = 0.0
+                colc[py[i]] = 0.0
             a = b
         g_sum, dof, m = _closing(g_sum, dof, observed, m)
         return g_sum, chi2, dof, n, observed, m, n_strata
