@@ -344,6 +344,24 @@ _INDEX_LIMIT = 1 << 62  # largest cell code the kernels index (as `counting._INT
 if HAVE_NUMBA:
 
     @njit(cache=True, nogil=True)
+    def _stratum_block(data, cards, g, ng, lo, hi, code):  # pragma: no cover
+        """The stratum code ``(z0 * c1 + z1) * c2 + ...`` of rows ``lo:hi`` into ``code[:hi - lo]``, in the
+        integer type of `code` (0 without a conditioning set)."""
+        m = hi - lo
+        if ng == 0:
+            for r in range(m):
+                code[r] = 0
+            return
+        zc = data[g[0], lo:hi]
+        for r in range(m):
+            code[r] = zc[r]
+        for j in range(1, ng):
+            zc = data[g[j], lo:hi]
+            c = code.dtype.type(cards[g[j]])
+            for r in range(m):
+                code[r] = code[r] * c + code.dtype.type(zc[r])
+
+    @njit(cache=True, nogil=True)
     def _count_block_tests(data, w, cards, colmiss, x, y, g, ng, possible, lanes, table, code, bad):  # pragma: no cover
         """Dense counts of one test into ``table[:lanes * possible]`` (zeroed here), summed to int64."""
         n_rows = data.shape[1]
@@ -361,14 +379,7 @@ if HAVE_NUMBA:
             m = stop - start
             # cell code: ((z0 * c1 + z1) * c2 + ...) * kxy + x * ky + y
             if ng > 0:
-                zc = data[g[0], start:stop]
-                for r in range(m):
-                    code[r] = np.int32(zc[r])
-                for j in range(1, ng):
-                    zc = data[g[j], start:stop]
-                    c = np.int32(cards[g[j]])
-                    for r in range(m):
-                        code[r] = code[r] * c + np.int32(zc[r])
+                _stratum_block(data, cards, g, ng, start, stop, code)
                 xc = data[x, start:stop]
                 yc = data[y, start:stop]
                 ukxy = np.int32(kxy)
@@ -574,18 +585,7 @@ if HAVE_NUMBA:
         for lo in range(0, n_rows, _BLOCK):
             hi = min(n_rows, lo + _BLOCK)
             m = hi - lo
-            if ng > 0:
-                zc = data[g[0], lo:hi]
-                for r in range(m):
-                    code[r] = np.int64(zc[r])
-                for j in range(1, ng):
-                    zc = data[g[j], lo:hi]
-                    c = cards[g[j]]
-                    for r in range(m):
-                        code[r] = code[r] * c + np.int64(zc[r])
-            else:
-                for r in range(m):
-                    code[r] = 0
+            _stratum_block(data, cards, g, ng, lo, hi, code)
             if checked:
                 for r in range(m):
                     bad[r] = np.int64(xs[lo + r] | ys[lo + r])
