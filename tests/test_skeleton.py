@@ -79,6 +79,48 @@ def test_jobs_one_and_two_agree():
     assert one.tests.equals(two.tests)  # NaN-safe
 
 
+def _slow_warm_up(_shared, task):
+    """A worker warm-up that outlasts the search (a worker still starting)."""
+    import time
+
+    time.sleep(20)
+    return task
+
+
+@pytest.mark.parametrize("workers", ["cold", "warm"])
+def test_shared_levels_agree_whatever_the_workers_state(monkeypatch, workers):
+    """CHILD with every level shared out in many tasks (the thresholds lowered) gives the same skeleton,
+    separating sets and test sequence as one process, whether the worker is still warming up (the run's
+    process takes every task) or warm (both take tasks)."""
+    from pipeline.search import skeleton as sk
+
+    monkeypatch.setattr(sk, "_OPEN_WORK", 0)
+    monkeypatch.setattr(sk, "_TASK_WORK", 1)
+    codes, names, cards, _ = _load("child")
+    st = EngineSettings(method="g")
+    one = pc_stable_skeleton(codes, names, cards, st)
+    warm_up = _slow_warm_up if workers == "cold" else None
+    with parallel_context(jobs=2, warm_up=warm_up) as ctx:
+        two = pc_stable_skeleton(codes, names, cards, st, context=ctx)
+        assert ctx.opened
+        if workers == "cold":
+            assert not any(f.done() for f in ctx._warming)  # the search never waited for the worker
+            ctx._executor.shutdown(kill_workers=True)  # not 20 s more for the sleeping warm-up
+            ctx._warming = []
+    assert one.edges == two.edges
+    assert one.separating_sets == two.separating_sets
+    assert one.tests.equals(two.tests)  # NaN-safe
+
+
+def test_small_levels_open_no_pool():
+    """A search whose levels are all small (CHILD at 5,000 rows) runs in the run's own process: the
+    workers of a two-job context never start."""
+    codes, names, cards, _ = _load("child")
+    with parallel_context(jobs=2) as ctx:
+        pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), context=ctx)
+        assert not ctx.opened
+
+
 def test_required_pair_survives_and_is_reported():
     """A required pair that a test calls independent stays linked and is listed in disagreements."""
     codes, names, cards, _ = _load("asia")
