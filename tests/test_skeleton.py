@@ -177,3 +177,26 @@ def test_row_compression_does_not_change_the_search():
     slow = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g", compress_rows=False, bit_cost=0.0))
     assert fast.edges == slow.edges and fast.separating_sets == slow.separating_sets
     assert fast.tests.results(names) == slow.tests.results(names)
+
+
+def test_distinct_rows_found_once_per_table_file(tmp_path):
+    """The distinct rows of a memory-mapped table are found once per process (the battery and the skeleton
+    stage read the same cache file) and are read-only; a table written anew under the same name is
+    looked at again, and a table in memory every time (CHILD, published benchmark data)."""
+    from pipeline.independence.counting import compress_rows
+    from pipeline.search import skeleton as sk
+
+    codes, _, _, _ = _load("child")
+    path = tmp_path / "codes.npy"
+    np.save(path, codes)
+    first = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    again = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    assert again is first and not first[0].flags.writeable and not first[1].flags.writeable
+    ref = compress_rows(codes)
+    np.testing.assert_array_equal(first[0], ref[0])
+    np.testing.assert_array_equal(first[1], ref[1])
+    np.save(tmp_path / "other.npy", codes[:, ::-1])
+    (tmp_path / "other.npy").replace(path)  # another table under the same name
+    swapped = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    np.testing.assert_array_equal(swapped[0], compress_rows(codes[:, ::-1])[0])
+    assert sk._distinct_rows(codes, 1.0) is not sk._distinct_rows(codes, 1.0)

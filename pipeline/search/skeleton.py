@@ -20,6 +20,7 @@ A level's candidate sets travel as index arrays (`Candidates`) and its tests com
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 from functools import lru_cache
 from itertools import combinations
@@ -189,11 +190,47 @@ class SignalExtras:
                            own_past=list(self.own_past), distinct=packed)
 
 
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """`a` itself when it is read-only already (a memory map of the cache), else a read-only view."""
+    if not a.flags.writeable:
+        return a
+    view = a.view()
+    view.flags.writeable = False
+    return view
+
+
 def _file_of(a: Any) -> Any:
     """The file (and place in it) a memory-mapped array reads, or None."""
     if isinstance(a, np.memmap) and getattr(a, "filename", None):
         return (str(a.filename), int(a.offset), tuple(a.shape))
     return None
+
+
+_PACKED: dict[Any, Any] = {}  # the distinct rows of the last memory-mapped table searched in this process
+
+
+def _distinct_rows(data: np.ndarray, max_ratio: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """`compress_rows(data)`, read-only; kept for a memory-mapped table (named by its file, with the
+    file's inode, size and change time), so the battery and the skeleton stage of a run, which read the
+    same cache entry, find its distinct rows once (and the skeleton goes on with the battery's engine)."""
+    name = _file_of(data)
+    if name is not None:
+        try:
+            st = os.stat(name[0])
+        except OSError:
+            name = None
+        else:
+            name = (*name, st.st_ino, st.st_size, st.st_mtime_ns, str(data.dtype), float(max_ratio))
+    if name is not None and name in _PACKED:
+        return _PACKED[name]
+    packed = compress_rows(data, max_ratio=max_ratio)
+    if packed is not None:
+        for a in packed:
+            a.flags.writeable = False
+    if name is not None:
+        _PACKED.clear()  # one table at a time
+        _PACKED[name] = packed
+    return packed
 
 
 def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any,
@@ -204,14 +241,21 @@ def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, 
     into many chunks would pay that once per chunk. A memory map names its file, which holds one table
     for good (the run's cache entries, `parallel.share_array`, joblib's temporary copies of large
     arrays under unique names), so it is a safe key. The distinct rows a search found (`packed`) are
-    made afresh by each search and never changed, so in the run's own process, which gets the same
-    objects in every task of a search, the objects themselves name them (the cache entry holds them,
-    so their ids are not reused meanwhile). Any other table held in memory gets a new engine.
+    read-only and never changed, so in the run's own process, which gets the same objects in every
+    task of a search (and of the next stage, see `_distinct_rows`), the objects themselves name them
+    (the cache entry holds them, so their ids are not reused meanwhile). Any other table held in
+    memory gets a new engine.
     """
     def build() -> CIEngine | MixedEngine:
+        # the kernels always get read-only tables, as a worker's memory maps are: numba compiles a kernel
+        # once per kind of argument, so one compiled version serves every process and a fresh install
+        # compiles it once (writable tables in the run's process were a second version, compiled and
+        # loaded besides)
+        table = _read_only(data)
+        rows = None if packed is None else (_read_only(packed[0]), packed[1])
         if extras is not None:
-            return extras.engine(data, names, cards, settings, packed)
-        return CIEngine(data, names, cards, settings, distinct=packed)
+            return extras.engine(table, names, cards, settings, rows)
+        return CIEngine(table, names, cards, settings, distinct=rows)
 
     held = (data, *(packed or ()))
     tables = [_file_of(data)]
@@ -283,7 +327,7 @@ def pc_stable_skeleton(
     knowledge = knowledge or Knowledge()
     distinct = weights = None
     if settings.compress_rows and settings.method != "permutation" and HAVE_NUMBA:
-        packed = compress_rows(data, max_ratio=settings.compress_max_ratio)
+        packed = _distinct_rows(data, settings.compress_max_ratio)
         if packed is not None:  # distinct rows found once, shared by every worker
             distinct, weights = packed
     shared = (data, names, list(cards), settings, distinct, weights, extras)
