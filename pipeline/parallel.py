@@ -187,7 +187,8 @@ class ParallelContext:
         """Hand the workers tasks (one in flight per worker) until none is left; an error stops the map."""
         if self._warming:
             wait(self._warming)  # a worker's failed warm-up shows in its first task
-        executor, running = self._executor, {}
+        executor = self._executor
+        running: dict[Any, int] = {}  # future -> task index
         try:
             while True:
                 while len(running) < self.workers and (i := share.take(worker=True)) is not None:
