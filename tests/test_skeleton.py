@@ -200,3 +200,20 @@ def test_distinct_rows_found_once_per_table_file(tmp_path):
     swapped = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
     np.testing.assert_array_equal(swapped[0], compress_rows(codes[:, ::-1])[0])
     assert sk._distinct_rows(codes, 1.0) is not sk._distinct_rows(codes, 1.0)
+
+
+def test_slices_of_one_memory_map_are_different_tables(tmp_path):
+    """Two slices of the same shape of one memory-mapped file (the same file name and offset) are told
+    apart: each gets its own distinct rows, equal to those of its rows in memory (CHILD)."""
+    from pipeline.independence.counting import compress_rows
+    from pipeline.search import skeleton as sk
+
+    codes, _, _, _ = _load("child")
+    np.save(tmp_path / "codes.npy", codes)
+    table = np.load(tmp_path / "codes.npy", mmap_mode="r")
+    left, right = table[:, :2000], table[:, 2000:4000]
+    for part, rows in ((left, codes[:, :2000]), (right, codes[:, 2000:4000]), (left, codes[:, :2000])):
+        found = sk._distinct_rows(part, 1.0)
+        np.testing.assert_array_equal(found[0], compress_rows(rows)[0])
+        np.testing.assert_array_equal(found[1], compress_rows(rows)[1])
+    assert sk._file_of(left) != sk._file_of(right) and sk._file_of(left) == sk._file_of(table[:, :2000])

@@ -174,9 +174,7 @@ class SignalExtras:
         copy): the files of their memory-mapped arrays and the small fields. Arrays held in memory have
         no such name, so their copy's id is used and no engine is reused for them."""
         def name_of(a: Any) -> Any:
-            if isinstance(a, np.memmap) and getattr(a, "filename", None):
-                return (str(a.filename), int(a.offset), tuple(a.shape))
-            return None if a is None else ("object", id(a))
+            return None if a is None else _file_of(a) or ("object", id(a))
 
         return (name_of(self.scores), name_of(self.prev), self.numeric, self.series_length, self.own_past)
 
@@ -200,10 +198,22 @@ def _read_only(a: np.ndarray) -> np.ndarray:
 
 
 def _file_of(a: Any) -> Any:
-    """The file (and place in it) a memory-mapped array reads, or None."""
-    if isinstance(a, np.memmap) and getattr(a, "filename", None):
-        return (str(a.filename), int(a.offset), tuple(a.shape))
-    return None
+    """The file a memory-mapped array reads and exactly which of its bytes, as what (place of the first
+    byte, shape, strides, type), or None. A slice of a memory map keeps its parent's file name and
+    offset, so the place is taken from the array's own address in the mapping."""
+    if not (isinstance(a, np.memmap) and getattr(a, "filename", None)):
+        return None
+    mapping = getattr(a, "_mmap", None)
+    if mapping is None:
+        return None
+    try:
+        start = a.ctypes.data - np.frombuffer(mapping, dtype=np.uint8).ctypes.data
+    except (TypeError, ValueError, BufferError):
+        return None
+    import mmap
+
+    place = start + int(a.offset) - int(a.offset) % mmap.ALLOCATIONGRANULARITY  # the mapping starts there
+    return (str(a.filename), place, tuple(a.shape), tuple(a.strides), a.dtype.str)
 
 
 _PACKED: dict[Any, Any] = {}  # the distinct rows of the last memory-mapped table searched in this process
@@ -220,7 +230,7 @@ def _distinct_rows(data: np.ndarray, max_ratio: float) -> tuple[np.ndarray, np.n
         except OSError:
             name = None
         else:
-            name = (*name, st.st_ino, st.st_size, st.st_mtime_ns, str(data.dtype), float(max_ratio))
+            name = (*name, st.st_ino, st.st_size, st.st_mtime_ns, float(max_ratio))
     if name is not None and name in _PACKED:
         return _PACKED[name]
     packed = compress_rows(data, max_ratio=max_ratio)
