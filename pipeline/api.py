@@ -29,7 +29,7 @@ import pandas as pd
 from . import __version__
 from .config import Config, resolve_auto
 from .errors import ConfigError, DataError
-from .parallel import parallel_context
+from .parallel import ParallelContext, parallel_context
 from .plan import STAGES
 from .progress import Reporter
 from .runner import Runner
@@ -61,6 +61,11 @@ if TYPE_CHECKING:  # networkx loads when a graph is asked for, not on every comm
 
 __all__ = ["RunResult", "run_pipeline", "load_run", "evidence_graph"]
 
+# rows x signals^2 from which local workers start while the timeline stage runs (see `_run_plan`): the
+# 1,000,000 x 40 extract of bench/gen_extract.py (1.6e9) has them warm for its battery; ALARM
+# forward-sampled to 100,000 rows (1.4e8) searches in about 0.3 s of counting, less than one worker's
+# start-up (about a second of processor time), which on two cores only slowed the run's own process
+_AHEAD_WORK = 500_000_000
 _PACKAGES = ["numpy", "pandas", "scipy", "pyarrow", "networkx", "joblib", "pydantic", "graphviz"]
 
 
@@ -377,6 +382,11 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     names = [str(c) for c in codes.columns]
     n_kept = len(codes)
     del codes
+    workers = runner.env.get("workers")
+    if isinstance(workers, ParallelContext):
+        # local workers start ahead of the search (while the timeline stage runs) only for a table large
+        # enough that its search repays their start-up; otherwise the first level large enough opens them
+        workers.ahead = n_kept * len(names) ** 2 >= _AHEAD_WORK
     if len(names) < 2:
         raise DataError(
             f"Only {len(names)} usable column(s) left after cleaning ({', '.join(names) or 'none'}); "

@@ -71,3 +71,34 @@ def test_state_round_trips_through_its_document_and_part():
     back = state_from(doc, TestColumns.from_arrow(marginal.state.tests.columns().to_arrow()))
     assert back.edges == marginal.state.edges and back.level == marginal.state.level
     assert back.tests.columns().results(names) == marginal.state.tests.columns().results(names)
+
+
+def test_failed_checkpoint_write_stops_the_search_and_names_no_later_part(tmp_path, monkeypatch):
+    """Checkpoints are written on a thread while the next level runs: when the write after level 2 of the
+    CHILD search fails, the stage raises that error, and the state on disk still names only complete parts
+    (level 1), with nothing of a later level written; resuming from it gives the uninterrupted tests."""
+    import pytest
+
+    codes, names, cards = _child()
+    settings = EngineSettings(method="g")
+    know = Knowledge()
+    marginal = battery.run(codes, names, cards, settings, know)
+    full = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None)
+    real = skeleton._write_level
+
+    def failing(folder, level):
+        if level.stem == "level-0002":
+            raise OSError(28, "No space left on device")
+        real(folder, level)
+
+    monkeypatch.setattr(skeleton, "_write_level", failing)
+    folder = tmp_path / "cp"
+    with pytest.raises(OSError, match="No space left"):
+        skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=folder)
+    doc = json.loads((folder / "state.json").read_text())
+    assert doc["parts"] == ["level-0001.parquet"]
+    assert sorted(p.name for p in folder.iterdir()) == ["level-0001.json", "level-0001.parquet", "state.json"]
+    monkeypatch.setattr(skeleton, "_write_level", real)
+    resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=folder)
+    assert resumed.tests == full.tests
+    assert resumed.skeleton.edges == full.skeleton.edges

@@ -204,3 +204,37 @@ def test_table_written_into_its_file_has_the_bytes_of_encode(tmp_path):
         back = pq.read_table(path) if name.endswith(".parquet") else pa.ipc.open_file(pa.memory_map(str(path))).read_all()
         assert back.to_pydict() == table.to_pydict()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["t.arrow", "t.parquet"]  # no temporary file left
+
+
+def test_small_run_with_two_jobs_starts_no_worker_and_matches_one_job(tmp_path, monkeypatch):
+    """ASIA (10,000 rows, 8 signals) with `parallel.jobs` 2 is too small to repay a worker's start-up: the pool
+    is not opened ahead nor by the search, and the run's tests and evidence are byte for byte those of one job."""
+    import contextlib
+    import os
+
+    import pipeline.api as api
+    from pipeline import parallel
+
+    if (os.cpu_count() or 1) < 2:
+        pytest.skip("one core: two jobs are capped to one")
+    seen: list = []
+    monkeypatch.setattr(api, "parallel_context", contextlib.contextmanager(
+        lambda *a, **k: _recorded(parallel.parallel_context, seen, *a, **k)))
+    outs = {}
+    for jobs in (1, 2):
+        outs[jobs] = tmp_path / f"run-{jobs}"
+        assert main(["run", "--input", str(ASIA), "--out", str(outs[jobs]), "--quiet", "--set", f"parallel.jobs={jobs}",
+                     "--set", "test.method=g"]) == 0
+    two = seen[2]
+    assert two.jobs == 2 and two.backend == "local"
+    assert two.ahead is False and seen[3] is False  # never opened
+    for name in ("tests.parquet", "evidence.parquet", "marginal.parquet"):
+        assert (outs[1] / name).read_bytes() == (outs[2] / name).read_bytes()
+
+
+def _recorded(make, seen, *args, **kwargs):
+    """The real `parallel_context`, noting the context it yields and whether its pool was opened by the end."""
+    with make(*args, **kwargs) as ctx:
+        seen.append(ctx)
+        yield ctx
+        seen.append(ctx.opened)

@@ -79,6 +79,48 @@ def test_jobs_one_and_two_agree():
     assert one.tests.equals(two.tests)  # NaN-safe
 
 
+def _slow_warm_up(_shared, task):
+    """A worker warm-up that outlasts the search (a worker still starting)."""
+    import time
+
+    time.sleep(20)
+    return task
+
+
+@pytest.mark.parametrize("workers", ["cold", "warm"])
+def test_shared_levels_agree_whatever_the_workers_state(monkeypatch, workers):
+    """CHILD with every level shared out in many tasks (the thresholds lowered) gives the same skeleton,
+    separating sets and test sequence as one process, whether the worker is still warming up (the run's
+    process takes every task) or warm (both take tasks)."""
+    from pipeline.search import skeleton as sk
+
+    monkeypatch.setattr(sk, "_OPEN_WORK", 0)
+    monkeypatch.setattr(sk, "_TASK_WORK", 1)
+    codes, names, cards, _ = _load("child")
+    st = EngineSettings(method="g")
+    one = pc_stable_skeleton(codes, names, cards, st)
+    warm_up = _slow_warm_up if workers == "cold" else None
+    with parallel_context(jobs=2, warm_up=warm_up) as ctx:
+        two = pc_stable_skeleton(codes, names, cards, st, context=ctx)
+        assert ctx.opened
+        if workers == "cold":
+            assert not any(f.done() for f in ctx._warming)  # the search never waited for the worker
+            ctx._executor.shutdown(kill_workers=True)  # not 20 s more for the sleeping warm-up
+            ctx._warming = []
+    assert one.edges == two.edges
+    assert one.separating_sets == two.separating_sets
+    assert one.tests.equals(two.tests)  # NaN-safe
+
+
+def test_small_levels_open_no_pool():
+    """A search whose levels are all small (CHILD at 5,000 rows) runs in the run's own process: the
+    workers of a two-job context never start."""
+    codes, names, cards, _ = _load("child")
+    with parallel_context(jobs=2) as ctx:
+        pc_stable_skeleton(codes, names, cards, EngineSettings(method="g"), context=ctx)
+        assert not ctx.opened
+
+
 def test_required_pair_survives_and_is_reported():
     """A required pair that a test calls independent stays linked and is listed in disagreements."""
     codes, names, cards, _ = _load("asia")
@@ -135,3 +177,43 @@ def test_row_compression_does_not_change_the_search():
     slow = pc_stable_skeleton(codes, names, cards, EngineSettings(method="g", compress_rows=False, bit_cost=0.0))
     assert fast.edges == slow.edges and fast.separating_sets == slow.separating_sets
     assert fast.tests.results(names) == slow.tests.results(names)
+
+
+def test_distinct_rows_found_once_per_table_file(tmp_path):
+    """The distinct rows of a memory-mapped table are found once per process (the battery and the skeleton
+    stage read the same cache file) and are read-only; a table written anew under the same name is
+    looked at again, and a table in memory every time (CHILD, published benchmark data)."""
+    from pipeline.independence.counting import compress_rows
+    from pipeline.search import skeleton as sk
+
+    codes, _, _, _ = _load("child")
+    path = tmp_path / "codes.npy"
+    np.save(path, codes)
+    first = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    again = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    assert again is first and not first[0].flags.writeable and not first[1].flags.writeable
+    ref = compress_rows(codes)
+    np.testing.assert_array_equal(first[0], ref[0])
+    np.testing.assert_array_equal(first[1], ref[1])
+    np.save(tmp_path / "other.npy", codes[:, ::-1])
+    (tmp_path / "other.npy").replace(path)  # another table under the same name
+    swapped = sk._distinct_rows(np.load(path, mmap_mode="r"), 1.0)
+    np.testing.assert_array_equal(swapped[0], compress_rows(codes[:, ::-1])[0])
+    assert sk._distinct_rows(codes, 1.0) is not sk._distinct_rows(codes, 1.0)
+
+
+def test_slices_of_one_memory_map_are_different_tables(tmp_path):
+    """Two slices of the same shape of one memory-mapped file (the same file name and offset) are told
+    apart: each gets its own distinct rows, equal to those of its rows in memory (CHILD)."""
+    from pipeline.independence.counting import compress_rows
+    from pipeline.search import skeleton as sk
+
+    codes, _, _, _ = _load("child")
+    np.save(tmp_path / "codes.npy", codes)
+    table = np.load(tmp_path / "codes.npy", mmap_mode="r")
+    left, right = table[:, :2000], table[:, 2000:4000]
+    for part, rows in ((left, codes[:, :2000]), (right, codes[:, 2000:4000]), (left, codes[:, :2000])):
+        found = sk._distinct_rows(part, 1.0)
+        np.testing.assert_array_equal(found[0], compress_rows(rows)[0])
+        np.testing.assert_array_equal(found[1], compress_rows(rows)[1])
+    assert sk._file_of(left) != sk._file_of(right) and sk._file_of(left) == sk._file_of(table[:, :2000])

@@ -20,6 +20,7 @@ A level's candidate sets travel as index arrays (`Candidates`) and its tests com
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 from functools import lru_cache
 from itertools import combinations
@@ -142,8 +143,16 @@ def level_candidates(pairs: Sequence[tuple[int, int]], adjacency: np.ndarray, ra
 
 
 _CHUNK_SETS = 250_000  # candidate sets per task at most: a task's arrays stay small however big the level
+# candidate sets x table rows per task at least when a level is shared out: about 10-20 ms of counting.
+# On ALARM forward-sampled to 100,000 rows (42,117 distinct) levels 3 and 4 (198 and 40 sets) took
+# 0.04-0.05 s as 8 tasks on two processes and 0.01-0.02 s as one task in the run's process
+_TASK_WORK = 20_000_000
+# candidate sets x table rows of a level that opens the workers when they are not running yet: about a
+# second or two of counting, what a worker's start-up costs (interpreter, numba, scipy.special, the
+# compiled kernels); a smaller level runs whole in the run's own process
+_OPEN_WORK = 2_000_000_000
 
-_WORKER_ENGINES: dict[Any, "CIEngine | MixedEngine"] = {}
+_WORKER_ENGINES: dict[Any, tuple[Any, tuple[Any, ...]]] = {}  # key -> (engine, the arrays it reads)
 
 
 @dataclass(frozen=True)
@@ -165,9 +174,7 @@ class SignalExtras:
         copy): the files of their memory-mapped arrays and the small fields. Arrays held in memory have
         no such name, so their copy's id is used and no engine is reused for them."""
         def name_of(a: Any) -> Any:
-            if isinstance(a, np.memmap) and getattr(a, "filename", None):
-                return (str(a.filename), int(a.offset), tuple(a.shape))
-            return None if a is None else ("object", id(a))
+            return None if a is None else _file_of(a) or ("object", id(a))
 
         return (name_of(self.scores), name_of(self.prev), self.numeric, self.series_length, self.own_past)
 
@@ -181,28 +188,100 @@ class SignalExtras:
                            own_past=list(self.own_past), distinct=packed)
 
 
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """`a` itself when it is read-only already (a memory map of the cache), else a read-only view."""
+    if not a.flags.writeable:
+        return a
+    view = a.view()
+    view.flags.writeable = False
+    return view
+
+
+def _file_of(a: Any) -> Any:
+    """The file a memory-mapped array reads and exactly which of its bytes, as what (place of the first
+    byte, shape, strides, type), or None. A slice of a memory map keeps its parent's file name and
+    offset, so the place is taken from the array's own address in the mapping."""
+    if not (isinstance(a, np.memmap) and getattr(a, "filename", None)):
+        return None
+    mapping = getattr(a, "_mmap", None)
+    if mapping is None:
+        return None
+    try:
+        start = a.ctypes.data - np.frombuffer(mapping, dtype=np.uint8).ctypes.data
+    except (TypeError, ValueError, BufferError):
+        return None
+    import mmap
+
+    place = start + int(a.offset) - int(a.offset) % mmap.ALLOCATIONGRANULARITY  # the mapping starts there
+    return (str(a.filename), place, tuple(a.shape), tuple(a.strides), a.dtype.str)
+
+
+_PACKED: dict[Any, Any] = {}  # the distinct rows of the last memory-mapped table searched in this process
+
+
+def _distinct_rows(data: np.ndarray, max_ratio: float) -> tuple[np.ndarray, np.ndarray] | None:
+    """`compress_rows(data)`, read-only; kept for a memory-mapped table (named by its file, with the
+    file's inode, size and change time), so the battery and the skeleton stage of a run, which read the
+    same cache entry, find its distinct rows once (and the skeleton goes on with the battery's engine)."""
+    name = _file_of(data)
+    if name is not None:
+        try:
+            st = os.stat(name[0])
+        except OSError:
+            name = None
+        else:
+            name = (*name, st.st_ino, st.st_size, st.st_mtime_ns, float(max_ratio))
+    if name is not None and name in _PACKED:
+        return _PACKED[name]
+    packed = compress_rows(data, max_ratio=max_ratio)
+    if packed is not None:
+        for a in packed:
+            a.flags.writeable = False
+    if name is not None:
+        _PACKED.clear()  # one table at a time
+        _PACKED[name] = packed
+    return packed
+
+
 def _worker_engine(data: Any, names: Any, cards: Any, settings: EngineSettings, packed: Any,
                    extras: SignalExtras | None = None) -> CIEngine | MixedEngine:
-    """The engine of a worker process, reused across its tasks when the table is a memory-mapped file.
+    """The engine of a process, reused across its tasks (and levels) while they read the same tables.
 
-    Building an engine and its first call cost tens of milliseconds on big tables; a level split into
-    many chunks would pay that once per chunk. A memory map names its file, which holds one coded
-    table for good (see `parallel.share_array`), so it is a safe key; anything else gets a new engine.
+    Building an engine and its first call cost milliseconds to tens of milliseconds; a level split
+    into many chunks would pay that once per chunk. A memory map names its file, which holds one table
+    for good (the run's cache entries, `parallel.share_array`, joblib's temporary copies of large
+    arrays under unique names), so it is a safe key. The distinct rows a search found (`packed`) are
+    read-only and never changed, so in the run's own process, which gets the same objects in every
+    task of a search (and of the next stage, see `_distinct_rows`), the objects themselves name them
+    (the cache entry holds them, so their ids are not reused meanwhile). Any other table held in
+    memory gets a new engine.
     """
     def build() -> CIEngine | MixedEngine:
+        # the kernels always get read-only tables, as a worker's memory maps are: numba compiles a kernel
+        # once per kind of argument, so one compiled version serves every process and a fresh install
+        # compiles it once (writable tables in the run's process were a second version, compiled and
+        # loaded besides)
+        table = _read_only(data)
+        rows = None if packed is None else (_read_only(packed[0]), packed[1])
         if extras is not None:
-            return extras.engine(data, names, cards, settings, packed)
-        return CIEngine(data, names, cards, settings, distinct=packed)
+            return extras.engine(table, names, cards, settings, rows)
+        return CIEngine(table, names, cards, settings, distinct=rows)
 
-    filename = getattr(data, "filename", None) if isinstance(data, np.memmap) else None
-    if filename is None or packed is not None:
+    held = (data, *(packed or ()))
+    tables = [_file_of(data)]
+    if tables[0] is None and packed is None:
         return build()
-    key = (str(filename), int(data.offset), tuple(data.shape), tuple(names), tuple(cards), settings,
-           None if extras is None else extras.identity())
-    engine = _WORKER_ENGINES.get(key)
-    if engine is None:
-        _WORKER_ENGINES.clear()  # one table at a time per worker
-        engine = _WORKER_ENGINES[key] = build()
+    tables = [_file_of(a) or ("object", id(a)) for a in held]
+    extra = None if extras is None else extras.identity()
+    if extra is not None and any(isinstance(x, tuple) and x[:1] == ("object",) for x in extra[:2]):
+        return build()  # scores or previous windows held in memory
+    key = (tuple(tables), tuple(names), tuple(cards), settings, extra)
+    entry = _WORKER_ENGINES.get(key)
+    if entry is not None:
+        return entry[0]
+    _WORKER_ENGINES.clear()  # one table at a time per process
+    engine = build()
+    _WORKER_ENGINES[key] = (engine, held)
     return engine
 
 
@@ -258,10 +337,11 @@ def pc_stable_skeleton(
     knowledge = knowledge or Knowledge()
     distinct = weights = None
     if settings.compress_rows and settings.method != "permutation" and HAVE_NUMBA:
-        packed = compress_rows(data, max_ratio=settings.compress_max_ratio)
+        packed = _distinct_rows(data, settings.compress_max_ratio)
         if packed is not None:  # distinct rows found once, shared by every worker
             distinct, weights = packed
     shared = (data, names, list(cards), settings, distinct, weights, extras)
+    rows = int(data.shape[1] if distinct is None else distinct.shape[1])  # the rows a test's count visits
     all_pairs = [_pair(a, b) for a, b in combinations(sorted(names), 2)]
     forbidden = frozenset(p for p in all_pairs if knowledge.is_forbidden(*p))
     if resume is None:
@@ -285,7 +365,15 @@ def pc_stable_skeleton(
         if progress is not None:
             progress(level, len(work))
         n_sets = int(work.bounds[-1])
-        chunks = work.split(max(1 if width <= 1 else min(len(work), 4 * width), -(-n_sets // _CHUNK_SETS)))
+        spread = 1 if width <= 1 else min(len(work), 4 * width)
+        if context is not None and context.backend == "local" and width > 1:
+            # on local processes: as many tasks as keep every process busy, but none so small that handing
+            # it over costs more than it saves (a few milliseconds each: the late levels of a search are a
+            # handful of sets); one task runs in this process, and a level opens a pool that is not open
+            # yet only when it is large enough to repay the workers' start-up
+            opens = context.opened or n_sets * rows >= _OPEN_WORK
+            spread = min(spread, max(1, n_sets * rows // _TASK_WORK)) if opens else 1
+        chunks = work.split(max(spread, -(-n_sets // _CHUNK_SETS)))
         del work
         if context is None:  # one engine for the whole search: built (and its kernels readied) once
             if serial is None:

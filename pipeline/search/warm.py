@@ -34,8 +34,9 @@ def warm_worker(_shared: Any, task: int) -> int:
 
     rng = np.random.default_rng(task)
     data = rng.integers(0, 2, size=(5, 256)).astype(np.int8)
+    data.flags.writeable = False  # as the tables of a run are (memory maps): the same compiled kernels
     names = ["a", "b", "c", "d", "e"]
-    engine = CIEngine(data, names, [2] * 5)
+    engine = CIEngine(data, names, [2] * 5, EngineSettings(compress_rows=False))
     for given in ((), ("c",), ("c", "d"), ("c", "d", "e")):
         engine.test("a", "b", given)
     # the kernels a search level uses, over distinct weighted rows and over plain rows
