@@ -264,12 +264,12 @@ def _floor(runs: dict[str, tuple[Path, Path, dict]], cls: dict[str, float] | Non
         lines += ["", "What 10x would need: the run's wall seconds at most a tenth of causal-learn's. Any run pays at "
                   "least the libraries it loads (the row above: numpy, pandas, pyarrow) plus its tests in the kernels "
                   "(every test of the run, battery, skeleton and orientation, in one `test_columns` call, best of 3); "
-                  "the drawing runs beside the page in its own process; with two workers the tests are counted as "
-                  "split evenly between them. The best ratio a run could reach is causal-learn's seconds over that "
+                  "the drawing runs beside the page in its own process; with `parallel.jobs=2` the tests are counted as "
+                  "split evenly between two processes (the best two could do). The best ratio a run could reach is causal-learn's seconds over that "
                   "floor (targets: 10x one worker, 5x for alarm-100k with two). This engine also loads numba and its "
                   f"compiled kernels from numba's cache ({kernels_load:.2f} s: the warm_worker row less `import numpy`); "
                   "the last column counts that too.", "",
-                  "| set | workers | causal-learn s | libraries s | every test in the kernels s | floor s | best ratio possible "
+                  "| set | jobs | causal-learn s | libraries s | every test in the kernels s | floor s | best ratio possible "
                   "| with the kernels' loading |",
                   "|---|---:|---:|---:|---:|---:|---:|---:|"]
         for name, cl, kern in ceiling:
@@ -300,11 +300,12 @@ def main(argv: list[str] | None = None) -> int:
     lines = ["# The whole process: `edgeproof run` beside causal-learn `pc(data, 0.05, \"gsq\", stable=True)`", "",
              f"Machine: {machine()}; load average at start {os.getloadavg()[0]:.1f}.", "",
              "Each figure is one fresh process (edgeproof: `python -m pipeline run --input <csv> --out <folder> "
-             "--quiet` with `--set " + " --set ".join(SETTINGS) + "` and `parallel.jobs`; a fresh stage "
+             "--quiet` with `--set " + " --set ".join(SETTINGS) + "` and `parallel.jobs` (jobs = n: the run's process "
+             "and n - 1 workers; a search too small to repay a worker's start-up runs in the run's process alone); a fresh stage "
              "cache; without PYTHONDONTWRITEBYTECODE, so the project's modules load from bytecode as in an installed copy). Wall seconds include start-up and reading the CSV, for both. Stage seconds are "
              "from the run's manifest (data = ingest + clean + discretise; search = battery + "
              "skeleton). Peak GB: resident memory of the process and its workers, sampled every 50 ms.", "",
-             "| set | rows | workers | edgeproof s | data s | search s | report s | tests | links | peak GB | "
+             "| set | rows | jobs | edgeproof s | data s | search s | report s | tests | links | peak GB | "
              "causal-learn s | links | ratio | target |",
              "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|"]
     notes: list[str] = []
