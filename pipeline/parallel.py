@@ -79,6 +79,11 @@ class _Share:
                 self.to_workers += 1
             return i
 
+    def exhausted(self) -> bool:
+        """Whether every task has been handed out (or the map stopped)."""
+        with self._lock:
+            return self.stopped or self._next >= self._n
+
     def stop(self, error: BaseException | None = None) -> None:
         with self._lock:
             self.stopped = True
@@ -185,8 +190,11 @@ class ParallelContext:
 
     def _feed(self, fn: Callable[[Any, Any], Any], shared: Any, tasks: list[Any], share: _Share) -> None:
         """Hand the workers tasks (one in flight per worker) until none is left; an error stops the map."""
-        if self._warming:
-            wait(self._warming)  # a worker's failed warm-up shows in its first task
+        # a worker's failed warm-up shows in its first task; a map that ended (or failed) meanwhile does
+        # not wait for the warm-up
+        while self._warming and wait(self._warming, timeout=0.05).not_done:
+            if share.exhausted():
+                return
         executor = self._executor
         running: dict[Any, int] = {}  # future -> task index
         try:

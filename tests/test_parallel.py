@@ -23,10 +23,16 @@ def _sleep_warm_up(_shared, task):
     return task
 
 
+def _quick_warm_up(_shared, task):
+    return task
+
+
 def test_results_in_task_order_from_both_processes():
     """Forty tasks on a two-job pool come back in task order, some run by the worker and some by the run's
-    own process."""
-    with parallel_context(jobs=2) as ctx:
+    own process (the worker warm before the map, so a slow start cannot leave it out)."""
+    with parallel_context(jobs=2, warm_up=_quick_warm_up) as ctx:
+        ctx.prepare()
+        ctx._finish_warm_up()
         out = ctx.map(_pid_after, 0.02, list(range(40)))
     assert [t for t, _ in out] == list(range(40))
     assert {p for _, p in out} - {os.getpid()}  # the worker took some
@@ -71,3 +77,14 @@ def test_no_ahead_start_when_told():
         assert not ctx.opened
         assert ctx.map(operator.mul, 2, [1, 2, 3]) == [2, 4, 6]
         assert ctx.opened
+
+
+def test_a_failed_map_does_not_wait_for_a_worker_still_warming_up():
+    """A task of the run's own process that fails while the worker still warms up raises at once: the map
+    returns before the warm-up ends."""
+    with parallel_context(jobs=2, warm_up=_sleep_warm_up) as ctx:
+        with pytest.raises(ZeroDivisionError):
+            ctx.map(operator.truediv, 1.0, [1.0, 0.0, 2.0])
+        assert not any(f.done() for f in ctx._warming)
+        ctx._executor.shutdown(kill_workers=True)  # not 20 s more for the sleeping warm-up
+        ctx._warming = []
