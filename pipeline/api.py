@@ -396,10 +396,6 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
     # `time.test_series`), and their copies from earlier windows when `time.lags` asks for them
     kept = names
     time_doc = runner.get("timeline.json")
-    # published once the timeline stage has run: the discretise stage's entry is written meanwhile
-    for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json"):
-        _link_or_copy(runner.path(name), out / name)
-    _link_or_copy(runner.path("timeline.parquet"), out / "timeline.parquet")
     names, cards = list(time_doc["names"]), [int(c) for c in time_doc["cards"]]
     if len(names) < 2:
         raise DataError(
@@ -424,6 +420,10 @@ def _run_plan(runner: Runner, source: Path, files: list[Path], out: Path, rep: R
                                                  [list(t) for t in knowledge.tiers], sorted(knowledge.rejected)])
     _link_or_copy(runner.path("marginal.parquet"), out / "marginal.parquet")  # as the cache holds it
     evidence = runner.get("evidence.parquet")
+    # the data stages' files are published once the search has run: their entries' writers (hundreds of
+    # megabytes on a large extract) finish meanwhile instead of holding up the search
+    for name in ("rejected.parquet", "cleaning.json", "discretised.parquet", "levels.json", "timeline.parquet"):
+        _link_or_copy(runner.path(name), out / name)
     _release_freed_memory()  # the search's tests are written and gone
     stability_info = None
     if cfg.search.resamples > 0:

@@ -403,6 +403,9 @@ class Runner:
         where = (stage.name, name)
         if where in self._mapped:
             return self._mapped[where]
+        written = self._written.get(where)
+        if written is not None and not name.endswith(".npy"):  # bytes this run wrote (or carried): no wait
+            return decode(name, written)  # for that entry's writer, which may still be writing a large table
         value = decode(name, self._bytes(name, before), self.cache.entry(stage.name, self.key(stage)) / name)
         if name.endswith(".npy"):  # one memory map per run: every stage and worker shares it
             self._mapped[where] = value
@@ -485,6 +488,7 @@ class Runner:
                         outputs[name] = value
                 files.append((name, value))
             files += list(carried.items())
+            self._written.update({(stage.name, name): data for name, data in carried.items()})
             # the writer owns the entry's lock and work folder from here on
             self._writing[stage.name] = _EntryWriter(self.cache, stage.name, key, work, entry.pop_all(), files)
         self._fresh.update({(stage.name, name): outputs[name] for name in stage.writes

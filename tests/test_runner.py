@@ -89,6 +89,24 @@ def test_entry_is_not_done_until_written_and_a_reader_waits_for_it(tmp_path, mon
     assert again.get("a.arrow")["s"].tolist() == list("abcde")
 
 
+def test_carried_file_is_read_from_this_runs_bytes_while_the_carrier_is_still_written(tmp_path, monkeypatch):
+    """A later read of a file a stage carries (its producer's bytes, copied into the carrier's entry) is
+    served from the bytes this run holds: it does not wait for the carrier's writer, which may still be
+    encoding a large table (the discretise stage carries the clean stage's small files)."""
+    plan = [PLAN[0], Stage("b", _second, reads=("a.arrow", "a-lines.npy"), writes=("b.parquet",), carries=("a.json",))]
+    gate = _hold_encoding(monkeypatch, "b.parquet")
+    cache = StageCache(tmp_path / CACHE_FOLDER).open()
+    runner = Runner(plan, cache, cfg=None, version="test")
+    try:
+        assert runner.get("a.json") == {"n": 5}  # carried by b, whose entry is still being written
+        assert cache.lookup("b", runner.key(plan[1])) is None
+    finally:
+        gate.set()
+    runner.finish()
+    again = Runner(plan, cache, cfg=None, version="test")  # a later run reads it from b's finished entry
+    assert again.get("a.json") == {"n": 5} and again.stage_record()["b"]["reused"] is True
+
+
 def test_failed_write_raises_at_the_next_wait_and_leaves_no_finished_entry(tmp_path, monkeypatch):
     """A write that fails (disk full) raises `CacheWriteError` naming the entry and the cause when the
     run next waits for it; no finished entry is left, its lock is free, and the next run recomputes it."""
