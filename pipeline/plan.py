@@ -168,6 +168,7 @@ def _skeleton(call: StageCall) -> dict[str, Any]:
         max_order=cfg.search.max_order, orient_graph=cfg.search.orient, collider_rule=cfg.search.collider_rule,
         context=call.env["workers"], checkpoint=call.work, progress=rep.level,
         tests_to=call.work / "tests.parquet",  # written there row group by row group, never held whole
+        checkpoint_every=skeleton.CHECKPOINT_EVERY,
     )
     rep.close()
     return {"evidence.parquet": outcome.evidence, "tests.parquet": outcome.tests}

@@ -102,3 +102,34 @@ def test_failed_checkpoint_write_stops_the_search_and_names_no_later_part(tmp_pa
     resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=folder)
     assert resumed.tests == full.tests
     assert resumed.skeleton.edges == full.skeleton.edges
+
+
+def test_quick_levels_fold_into_the_next_checkpoint_and_resume_the_same(tmp_path, monkeypatch):
+    """With `checkpoint_every`, a level is saved only once that many seconds have passed since the last
+    save: the levels in between go into the next part (a clock that ticks one second per reading makes
+    every other level due), and resuming from such a checkpoint gives the uninterrupted tests. A search
+    quicker than `checkpoint_every` writes no checkpoint and gives the same tests (CHILD, published data)."""
+    import types
+
+    codes, names, cards = _child()
+    settings = EngineSettings(method="g")
+    know = Knowledge()
+    marginal = battery.run(codes, names, cards, settings, know)
+    full = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None)
+    quick = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None,
+                         checkpoint=tmp_path / "quick", checkpoint_every=3600.0)
+    assert quick.tests == full.tests and list((tmp_path / "quick").iterdir()) == []
+    ticks = iter(range(1, 10_000))
+    monkeypatch.setattr(skeleton, "time", types.SimpleNamespace(perf_counter=lambda: float(next(ticks))))
+    folded = tmp_path / "folded"
+    run = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=3,
+                       checkpoint=folded, checkpoint_every=1.5)
+    monkeypatch.undo()
+    doc = json.loads((folded / "state.json").read_text())
+    levels = run.skeleton.levels - 1  # the levels this search ran after the marginal state
+    assert 1 <= len(doc["parts"]) < levels, (doc["parts"], levels)
+    n_parts = sum(pq.read_metadata(folded / p).num_rows for p in doc["parts"])
+    assert n_parts + len(marginal.tests) == doc["n_tests"]  # the skipped levels' tests are in the parts
+    resumed = skeleton.run(codes, names, cards, settings, know, marginal.state, max_order=None, checkpoint=folded)
+    assert resumed.tests == full.tests
+    assert resumed.evidence.equals(full.evidence)

@@ -442,13 +442,16 @@ class TestLog:
         rows = np.asarray(rows, dtype=np.int64)
         ends = self.ends
         part_of = np.searchsorted(ends, rows, side="right")
-        def column(p: TestColumns) -> np.ndarray:
-            return p.text(name) if name in LABELLED else getattr(p, name) if name in _DIRECT else p.values[name]
+        def column(p: TestColumns, at: np.ndarray) -> np.ndarray:  # the field at rows `at` of one table
+            if name in LABELLED:  # the labels of those rows' codes, not of the whole table's
+                return np.asarray(p.labels, dtype=object)[p.codes[name][at]] if p.labels else np.full(at.size, "", dtype=object)
+            return (getattr(p, name) if name in _DIRECT else p.values[name])[at]
 
-        out = np.empty(rows.size, dtype=column(self.parts[0] if self.parts else TestColumns.empty()).dtype)
+        none = np.zeros(0, dtype=np.int64)
+        out = np.empty(rows.size, dtype=column(self.parts[0] if self.parts else TestColumns.empty(), none).dtype)
         for k in np.unique(part_of).tolist():
             sel = part_of == k
-            out[sel] = column(self.parts[k])[rows[sel] - (ends[k - 1] if k else 0)]
+            out[sel] = column(self.parts[k], rows[sel] - (ends[k - 1] if k else 0))
         return out
 
     def results(self, names: Sequence[str]) -> list[CITestResult]:

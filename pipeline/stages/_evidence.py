@@ -289,30 +289,32 @@ def evidence_frame(
                   "correction": correction[r], "data_disagrees": disagrees_l[r]}, alpha)
         for r in range(n_pairs)
     ]
-    frame = pd.DataFrame({
-        "var_a": var_a, "var_b": var_b, "linked": linked, "knowledge": know, "pvalue": pvalue,
+    # q-values over every pair that was tested (linked or separated), each at its deciding p-value
+    qvalue = np.full(n_pairs, np.nan)
+    tested = ~np.isnan(pvalue)
+    if tested.any():
+        qvalue[tested] = benjamini_hochberg(pvalue[tested])
+    # every column built with its final type, in the published order: one constructor, no casts after it
+    columns: dict[str, Any] = {
+        "var_a": var_a, "var_b": var_b, "linked": linked, "pvalue": pvalue,
         "statistic": at("statistic", np.nan, np.float64), "dof": at("dof", 0, np.int64), "given": given,
         "n": at("n", 0, np.int64), "level": at("given_sizes", -1, np.int64), "method": method,
-        "n_tests": n_tests, "max_given_size": max_size, "cmi_bits": cmi, "cramers_v": cramers, "sparse": sparse,
-        "degenerate": degenerate, "policy_applied": applied, "data_disagrees": disagrees,
-        "orientation": orientation_col, "stability": [stab.get(p, np.nan) for p in pairs] if stab else np.full(n_pairs, np.nan),
-        "correction": correction, "flags": flag_text, "explanation": explanation,
-    })
+        "n_tests": n_tests, "max_given_size": max_size, "cmi_bits": cmi, "cramers_v": cramers, "qvalue": qvalue,
+        "sparse": sparse, "degenerate": degenerate, "policy_applied": applied, "knowledge": know,
+        "data_disagrees": disagrees, "orientation": orientation_col,
+        "stability": np.array([stab.get(p, np.nan) for p in pairs], dtype=np.float64) if stab else np.full(n_pairs, np.nan),
+        "flags": flag_text, "explanation": explanation,
+    }
+    if not n_pairs:
+        return pd.DataFrame(columns=EVIDENCE_COLUMNS).astype(_EMPTY_TYPES)
+    return pd.DataFrame(columns, copy=False)
 
-    if frame.empty:
-        frame = pd.DataFrame(columns=EVIDENCE_COLUMNS)
-    # q-values over every pair that was tested (linked or separated), each at its deciding p-value
-    tested = frame["pvalue"].notna()
-    frame["qvalue"] = np.nan
-    if tested.any():
-        frame.loc[tested, "qvalue"] = benjamini_hochberg(frame.loc[tested, "pvalue"].to_numpy())
-    frame = frame[EVIDENCE_COLUMNS]
-    return frame.astype(
-        {"linked": "bool", "dof": "int64", "n": "int64", "level": "int64", "n_tests": "int64",
-         "max_given_size": "int64", "sparse": "bool", "degenerate": "bool", "policy_applied": "bool",
-         "data_disagrees": "bool", "pvalue": "float64", "statistic": "float64", "cmi_bits": "float64",
-         "cramers_v": "float64", "qvalue": "float64", "stability": "float64"}
-    )
+
+# the types of an evidence table without pairs (its text columns are of no type)
+_EMPTY_TYPES = {"linked": "bool", "dof": "int64", "n": "int64", "level": "int64", "n_tests": "int64",
+                "max_given_size": "int64", "sparse": "bool", "degenerate": "bool", "policy_applied": "bool",
+                "data_disagrees": "bool", "pvalue": "float64", "statistic": "float64", "cmi_bits": "float64",
+                "cramers_v": "float64", "qvalue": "float64", "stability": "float64"}
 
 
 def _residual_words(row: dict[str, object], alpha: float) -> str:
