@@ -1,7 +1,7 @@
 """The whole process as a user runs it: `edgeproof run ...` in a fresh process beside causal-learn.
 
-Run as ``.venv/bin/python bench/bench_whole.py [--quick] [--only NAME ...]``; prints Markdown and
-writes bench/results/whole.md. Every edgeproof run is ``python -m pipeline run --input <csv> --out
+Run as ``.venv/bin/python bench/bench_whole.py [--quick] [--only NAME ...]``; prints Markdown, and a
+whole run (neither option) also writes bench/results/whole.md. Every edgeproof run is ``python -m pipeline run --input <csv> --out
 <folder> --quiet`` with the settings of the comparison (below) in a fresh process with a fresh stage
 cache; causal-learn is ``pc(data, 0.05, "gsq", stable=True)`` in a fresh process that reads the same
 CSV. Wall times include start-up and reading the file for both. Peak memory is the largest sum of
@@ -462,7 +462,10 @@ def main(argv: list[str] | None = None) -> int:
             lines += [f"| {n} | {t:,} | {h:,} | {h / max(t, 1):.0f} |" for n, t, h in sizes]
     lines += ["", f"Bench wall time {time.perf_counter() - started:.0f} s; load average at the end "
               f"{os.getloadavg()[0]:.1f}.", *notes, ""]
-    emit("whole", "\n".join(lines))
+    if args.only is None and not args.quick:
+        emit("whole", "\n".join(lines))  # the results file holds whole runs only
+    else:
+        sys.stdout.write("\n".join(lines))  # a partial run is printed, and leaves the results file as it was
     return 0
 
 
