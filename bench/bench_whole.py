@@ -209,6 +209,30 @@ def _kernel_seconds(run: Path, csv: Path, phases: tuple[str, ...] = ("skeleton",
     return float(np.median(times)) if stat == "median" else min(times)
 
 
+def _repeated(csv: Path, out: Path, jobs: int, repeat: int) -> tuple[dict, tuple[float, float, int], list[float], list[float]]:
+    """`repeat` rounds of one edgeproof run (each into its own folder, so with a fresh stage cache) then one
+    causal-learn run, interleaved: the edgeproof run of median wall time (kept at `out`), causal-learn's
+    median wall time with its seconds inside pc and links, and every wall time of both."""
+    mine, theirs = [], []
+    for i in range(repeat):
+        folder = out if i == 0 else out.parent / f"repeat-{i}" / "run"
+        mine.append((edgeproof(csv, folder, jobs=jobs), folder))
+        theirs.append(causal_learn(csv))
+    order = sorted(range(repeat), key=lambda i: mine[i][0]["wall"])
+    middle = order[(repeat - 1) // 2]
+    ours, folder = mine[middle]
+    if folder != out:  # the median run's folder takes the first one's place
+        shutil.rmtree(out.parent / ".edgeproof-cache", ignore_errors=True)
+        shutil.rmtree(out)
+        shutil.move(str(folder), str(out))
+        shutil.move(str(folder.parent / ".edgeproof-cache"), str(out.parent / ".edgeproof-cache"))
+    for i in range(1, repeat):
+        shutil.rmtree(out.parent / f"repeat-{i}", ignore_errors=True)
+    walls = sorted(t[0] for t in theirs)
+    cl = next(t for t in theirs if t[0] == walls[(repeat - 1) // 2])
+    return ours, cl, [m[0]["wall"] for m in mine], [t[0] for t in theirs]
+
+
 def _row(name: str, rows: int, jobs: int, ours: dict, cl: tuple[float, float, int] | None, target: float | None) -> str:
     st = ours["stages"]
     data = st.get("ingest", 0) + st.get("clean", 0) + st.get("discretise", 0)
@@ -287,6 +311,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true", help="the 10,000-row sets only, no 1,000,000-row extract")
     ap.add_argument("--only", nargs="+", default=None, help="set names to run (e.g. hepar2-like alarm)")
     ap.add_argument("--extract-rows", type=int, default=1_000_000)
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="rounds of each whole run and of causal-learn, interleaved; medians are reported (default 3)")
     ap.add_argument("--dense-signals", type=int, default=50)
     ap.add_argument("--search-signals", type=int, default=85,
                     help="signals of the dense set whose search stages alone are measured (85: about 12 million tests)")
@@ -317,37 +343,47 @@ def main(argv: list[str] | None = None) -> int:
         cl_walls: dict[str, float] = {}
         cases = [(n, lambda n=n: _generated(n, root), 10.0) for n in ("hepar2-like", "barley-like")]
         cases += [(n, lambda n=n: _published(n, root), None) for n in ("asia", "child", "insurance", "alarm")]
+        spread: list[str] = []
         for name, make, target in cases:
             if not want(name):
                 continue
             csv = make()
             out = root / name / "run"
-            ours = edgeproof(csv, out)
-            cl = causal_learn(csv)
+            ours, cl, mine, theirs = _repeated(csv, out, 1, args.repeat)
             runs[name] = (csv, out, ours)
             cl_walls[name] = cl[0]
             lines.append(_row(name, 10_000, 1, ours, cl, target))
+            spread.append(f"| {name} | {', '.join(f'{w:.1f}' for w in mine)} | {', '.join(f'{w:.1f}' for w in theirs)} |")
         if not args.quick and want("alarm-100k"):
             csv = _alarm_forward(root, 100_000)
             out = root / "alarm-100k" / "run"
-            ours = edgeproof(csv, out, jobs=2)
-            cl = causal_learn(csv)
+            ours, cl, mine, theirs = _repeated(csv, out, 2, args.repeat)
             runs["alarm-100k"] = (csv, out, ours)
             cl_walls["alarm-100k"] = cl[0]
             lines.append(_row("alarm forward-sampled", 100_000, 2, ours, cl, 5.0))
+            spread.append(f"| alarm-100k | {', '.join(f'{w:.1f}' for w in mine)} | {', '.join(f'{w:.1f}' for w in theirs)} |")
         lines += ["", "Targets of issue 16: at least 10x on HEPAR2 and BARLEY (one worker), at least 5x on "
                   "ALARM forward-sampled to 100,000 rows (two workers).", ""]
+        if args.repeat > 1:
+            lines += [f"Each row is the median of {args.repeat} rounds (an edgeproof run, then a causal-learn run), "
+                      "for both sides: the ratio is of the two medians. Every round's wall seconds:", "",
+                      "| set | edgeproof s | causal-learn s |", "|---|---|---|", *spread, ""]
 
         # cached rerun: the same input and settings into a new folder beside the first
         lines += ["## A cached rerun", "", "The same command into a new run folder beside the first (the "
                   "stage cache is found); target: under 1 s plus the report.", "",
+                  f"Median of {args.repeat} reruns (each round's figure in brackets).", "",
                   "| set | first run s | rerun s | its report s | rerun minus report s | target |",
                   "|---|---:|---:|---:|---:|---|"]
         for name, (csv, out, ours) in runs.items():
-            again = edgeproof(csv, out.parent / "rerun", jobs=2 if name == "alarm-100k" else 1)
+            # the median of `repeat` reruns by their seconds besides the report
+            agains = [edgeproof(csv, out.parent / f"rerun-{i}", jobs=2 if name == "alarm-100k" else 1)
+                      for i in range(args.repeat)]
+            again = sorted(agains, key=lambda a: a["wall"] - a["stages"].get("report", 0.0))[(args.repeat - 1) // 2]
             rest = again["wall"] - again["stages"].get("report", 0.0)
+            every = ", ".join(f"{a['wall'] - a['stages'].get('report', 0.0):.2f}" for a in agains)
             lines.append(f"| {name} | {ours['wall']:.1f} | {again['wall']:.1f} | {again['stages'].get('report', 0):.1f} | "
-                         f"{rest:.2f} | {'met' if rest < 1.0 else 'missed'} (< 1 s) |")
+                         f"{rest:.2f} ({every}) | {'met' if rest < 1.0 else 'missed'} (< 1 s) |")
 
         # the skeleton stage beside the time its tests take in the kernels
         lines += ["", "## The skeleton stage beside its tests in the kernels", "",
@@ -383,33 +419,47 @@ def main(argv: list[str] | None = None) -> int:
             gen_extract.write_csv(csv, args.extract_rows, seed=0)
             cfg = root / "extract.yaml"
             cfg.write_text(yaml.safe_dump(gen_extract.config_dict()), encoding="utf-8")
-            cmd = [sys.executable, "-m", "pipeline", "run", "--input", str(csv), "--config", str(cfg), "--out",
-                   str(root / "extract" / "run"), "--quiet", "--set", "parallel.jobs=2"]
-            wall, peak, _ = timed(cmd)
-            st = {k: float(v.get("seconds", 0)) for k, v in json.loads(
-                (root / "extract" / "run" / "manifest.json").read_text())["stages"].items()}
-            data = st.get("ingest", 0) + st.get("clean", 0) + st.get("discretise", 0)
-            # the floor beside it: the same file read by pyarrow's multithreaded CSV reader alone, in a
-            # fresh process right after the run (import excluded)
             floor_code = ("import sys, time\nimport pyarrow.csv as pacsv\nt0 = time.perf_counter()\n"
                           "pacsv.read_csv(sys.argv[1])\nprint(time.perf_counter() - t0)\n")
-            floor = subprocess.run([sys.executable, "-c", floor_code, str(csv)], capture_output=True, text=True,
-                                   check=True, env=dict(os.environ, ARROW_DEFAULT_MEMORY_POOL="system"))
-            read_s = float(floor.stdout.split()[0])
+            rounds = []
+            for i in range(args.repeat):  # each round: a fresh run (its own stage cache), then the CSV read alone
+                out = root / f"extract-{i}" / "run"
+                cmd = [sys.executable, "-m", "pipeline", "run", "--input", str(csv), "--config", str(cfg), "--out",
+                       str(out), "--quiet", "--set", "parallel.jobs=2"]
+                wall, peak, _ = timed(cmd)
+                st = {k: float(v.get("seconds", 0)) for k, v in json.loads(
+                    (out / "manifest.json").read_text())["stages"].items()}
+                shutil.rmtree(out.parent)
+                # the floor beside it: the same file read by pyarrow's multithreaded CSV reader alone, in a
+                # fresh process right after the run (import excluded), with the program's allocator
+                floor = subprocess.run([sys.executable, "-c", floor_code, str(csv)], capture_output=True, text=True,
+                                       check=True, env=dict(os.environ, ARROW_DEFAULT_MEMORY_POOL="system"))
+                rounds.append((wall, peak, st, float(floor.stdout.split()[0])))
             lines += ["", f"## The generated {args.extract_rows:,} x 40 extract end to end, two workers", "",
                       "`python -m pipeline run --input extract.csv --config extract.yaml --set parallel.jobs=2` "
-                      "(bench/gen_extract.py, seed 0, its configuration). Targets: under 60 s and 4 GB; ingest + "
-                      "clean + discretise under 4 s. Stage seconds include writing the stage's cache entry. "
-                      "CSV read: `pyarrow.csv.read_csv` of the same file alone, in a fresh process right after "
-                      "the run, with the allocator the program gives Arrow (the floor of ingest).", "",
-                      "| wall s | CSV read | ingest | clean | discretise | data total | timeline | battery | skeleton "
-                      "| report | peak GB | targets |",
-                      "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|",
-                      f"| {wall:.1f} | {read_s:.1f} | {st.get('ingest', 0):.1f} | {st.get('clean', 0):.1f} | "
-                      f"{st.get('discretise', 0):.1f} | {data:.1f} | {st.get('timeline', 0):.1f} | "
-                      f"{st.get('battery', 0):.1f} | {st.get('skeleton', 0):.1f} | {st.get('report', 0):.1f} | "
-                      f"{peak:.2f} | end to end {'met' if wall < 60 and peak < 4 else 'missed'}; data stages "
-                      f"{'met' if data < 4 else 'missed'} |"]
+                      f"(bench/gen_extract.py, seed 0, its configuration), {args.repeat} rounds, each with a fresh "
+                      "stage cache. Targets: under 60 s and 4 GB; ingest + clean + discretise under 4 s, judged on "
+                      "the medians. Stage seconds include waiting for the stage's cache entry when a later step "
+                      "needs it. CSV read: `pyarrow.csv.read_csv` of the same file alone, in a fresh process right "
+                      "after the run, with the allocator the program gives Arrow (the floor of ingest).", "",
+                      "| round | wall s | CSV read | ingest | clean | discretise | data total | timeline | battery | skeleton "
+                      "| report | peak GB |",
+                      "|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+            datas = []
+            for i, (wall, peak, st, read_s) in enumerate(rounds, 1):
+                data = st.get("ingest", 0) + st.get("clean", 0) + st.get("discretise", 0)
+                datas.append(data)
+                lines.append(f"| {i} | {wall:.1f} | {read_s:.1f} | {st.get('ingest', 0):.1f} | {st.get('clean', 0):.1f} | "
+                             f"{st.get('discretise', 0):.1f} | {data:.1f} | {st.get('timeline', 0):.1f} | "
+                             f"{st.get('battery', 0):.1f} | {st.get('skeleton', 0):.1f} | {st.get('report', 0):.1f} | "
+                             f"{peak:.2f} |")
+            wall_m = float(np.median([r[0] for r in rounds]))
+            peak_m = float(np.median([r[1] for r in rounds]))
+            data_m = float(np.median(datas))
+            lines += ["", f"Medians: wall {wall_m:.1f} s, peak {peak_m:.2f} GB, data stages {data_m:.1f} s. Targets: end "
+                      f"to end {'met' if wall_m < 60 and peak_m < 4 else 'missed'}; data stages "
+                      f"{'met' if data_m < 4 else 'missed'} (under 4 s in {sum(d < 4 for d in datas)} of "
+                      f"{len(datas)} rounds)."]
 
         if want("dense"):
             sizes_p = (12, args.dense_signals if not args.quick else 40)
