@@ -6,8 +6,10 @@ row removed here is in `Cleaned.quarantined` with its reason, so nothing is lost
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
@@ -90,9 +92,9 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
     """
     table = ingested.table
     _check_column_specs(table, cfg)
-    typed = {
-        name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean) for name in table
-    }
+    names = list(table.columns)
+    typed = dict(zip(names, _each_column(
+        lambda name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean), names, table.size)))
     bad_rows, bad_reasons = _text_in_numeric(typed, ingested, cfg)
     keep = np.ones(len(table), dtype=bool)
     keep[bad_rows] = False
@@ -115,6 +117,23 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
     categories = {renamed.get(n, n): v for n, v in categories.items()}
     return Cleaned(cleaned.table, cleaned.kinds, cleaned.columns, cleaned.quarantined, cleaned.summary, times,
                    categories)
+
+
+# cells from which the columns are typed and counted on threads: most of that work is in numpy sorts,
+# pandas hash tables and Arrow kernels, which release the interpreter lock
+_THREADED_FROM = 2_000_000
+
+
+def _each_column(fn: Callable[[Any], Any], items: list[Any], cells: int) -> list[Any]:
+    """``[fn(item) for item in items]``, on as many threads as cores (up to 4) for a table of at least
+    `_THREADED_FROM` cells. Results keep the items' order, and the first item (in that order) whose call
+    fails raises. On the 1,000,000 x 40 extract of `bench/gen_extract.py`, counting the distinct values
+    of its 28 numeric columns took 0.41-0.47 s on two threads against 0.85-1.03 s in turn."""
+    workers = min(4, os.cpu_count() or 1)
+    if cells < _THREADED_FROM or workers < 2 or len(items) < 2:
+        return [fn(item) for item in items]
+    with ThreadPoolExecutor(workers, thread_name_prefix="edgeproof-clean") as pool:
+        return list(pool.map(fn, items))
 
 
 def _utc_nanoseconds(values: pd.Series) -> np.ndarray:
@@ -232,11 +251,16 @@ def _apply_rules(
     records: list[dict[str, Any]] = []
     has_features = bool(derived)
     every_row = bool(keep.all())
-    for name, col in list(typed.items()) + list(derived.items()):
-        values = col.values if every_row else col.values[keep]
-        values = values.reset_index(drop=True)
+    columns = list(typed.items()) + list(derived.items())
+
+    def decided(item: tuple[str, _rules.Typed]) -> tuple[Any, ...]:
+        col = item[1]
+        values = (col.values if every_row else col.values[keep]).reset_index(drop=True)
         codes = None if col.codes is None else (col.codes if every_row else col.codes[keep])
-        reason, values, facts = _rules.decide(col, values, cfg.clean, has_features, codes)
+        return (codes, *_rules.decide(col, values, cfg.clean, has_features, codes))
+
+    for (name, col), (codes, reason, values, facts) in zip(
+            columns, _each_column(decided, columns, int(keep.sum()) * len(columns))):
         action = "dropped" if reason else ("derived" if name in derived else "kept")
         if reason is None:
             if col.kind == "categorical" and facts["distinct"] > cfg.limits.max_levels:
