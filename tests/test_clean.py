@@ -363,3 +363,45 @@ def test_distinct_floats_equals_numpy_unique(distinct):
     expected = np.unique(arr + 0.0).size  # + 0.0 turns -0.0 into 0.0
     assert distinct_floats(arr) == expected
     assert distinct_floats(arr[:1000]) == np.unique(arr[:1000] + 0.0).size
+
+
+def test_columns_on_threads_give_what_they_give_in_turn(tmp_path, monkeypatch):
+    """A table past `_THREADED_FROM` cells is typed and counted on threads: the same cleaned table,
+    kinds, summary and quarantine as in turn, over every kind of column (numbers, text, booleans,
+    a timestamp with derived features, an identifier, a constant, rare levels pooled, text in a
+    numeric column quarantined); and of two columns that fail, the first in the table's order raises,
+    as in turn (invented data)."""
+    n = 3_000
+    rng = np.random.default_rng(11)
+    data = {
+        "zone": rng.choice(["north", "south", "east", "rare"], n, p=[0.4, 0.4, 0.1995, 0.0005]),
+        "latency": rng.normal(200, 30, n).round(2).astype(object),
+        "flag": rng.choice(["true", "false"], n),
+        "at": pd.date_range("2026-11-01", periods=n, freq="5min").astype(str),
+        "ticket": np.arange(n),
+        "site": ["s1"] * n,
+        "load": rng.integers(0, 5, n),
+    }
+    data["latency"][[5, 17]] = "n/a?"
+    cfg = _cfg(clean={"rare_level_min_count": 5, "timestamp_features": True, "text_in_numeric": "quarantine"})
+    ingested = _frame_csv(tmp_path, pd.DataFrame(data), cfg)
+    got = {}
+    for threaded_from in (10**12, 0):
+        monkeypatch.setattr(clean, "_THREADED_FROM", threaded_from)
+        got[threaded_from] = clean.run(ingested, cfg)
+    one, threads = got[10**12], got[0]
+    pd.testing.assert_frame_equal(one.table, threads.table)
+    pd.testing.assert_frame_equal(one.quarantined, threads.quarantined)
+    assert one.kinds == threads.kinds and one.columns == threads.columns and one.summary == threads.summary
+    assert len(one.quarantined) == 2 and "ticket" not in one.kinds and "site" not in one.kinds
+    assert _record(one, "zone")["pooled_levels"] == 1
+    bad = pd.DataFrame({"a": ["x", "y"] * 20, "b": ["1", "3"] * 20, "c": ["1", "2"] * 20})
+    cfg = _cfg(columns={"b": {"type": "boolean"}, "c": {"type": "boolean"}})
+    ingested = _frame_csv(tmp_path, bad, cfg)
+    errors = []
+    for threaded_from in (10**12, 0):
+        monkeypatch.setattr(clean, "_THREADED_FROM", threaded_from)
+        with pytest.raises((ConfigError, DataError)) as err:
+            clean.run(ingested, cfg)
+        errors.append((type(err.value), str(err.value)))
+    assert errors[0] == errors[1] and "Column `b`" in errors[0][1]
