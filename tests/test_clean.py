@@ -366,7 +366,7 @@ def test_distinct_floats_equals_numpy_unique(distinct):
 
 
 def test_columns_on_threads_give_what_they_give_in_turn(tmp_path, monkeypatch):
-    """A table past `_THREADED_FROM` cells is typed and counted on threads: the same cleaned table,
+    """A table past `_THREADED_FROM` cells is typed and counted on `parallel.jobs` threads: the same cleaned table,
     kinds, summary and quarantine as in turn, over every kind of column (numbers, text, booleans,
     a timestamp with derived features, an identifier, a constant, rare levels pooled, text in a
     numeric column quarantined); and of two columns that fail, the first in the table's order raises,
@@ -383,20 +383,36 @@ def test_columns_on_threads_give_what_they_give_in_turn(tmp_path, monkeypatch):
         "load": rng.integers(0, 5, n),
     }
     data["latency"][[5, 17]] = "n/a?"
-    cfg = _cfg(clean={"rare_level_min_count": 5, "timestamp_features": True, "text_in_numeric": "quarantine"})
+    cfg = _cfg(clean={"rare_level_min_count": 5, "timestamp_features": True, "text_in_numeric": "quarantine"},
+               parallel={"jobs": 2})
     ingested = _frame_csv(tmp_path, pd.DataFrame(data), cfg)
+    import threading
+
+    from pipeline.stages import _data_clean
+
+    threads_seen: list[set[str]] = []
+    real_decide = _data_clean.decide
+
+    def decide(*args, **kwargs):  # which threads decide the columns (the pool's name, without its number)
+        threads_seen[-1].add(threading.current_thread().name.rsplit("_", 1)[0])
+        return real_decide(*args, **kwargs)
+
+    monkeypatch.setattr(_data_clean, "decide", decide)
     got = {}
-    for threaded_from in (10**12, 0):
+    for threaded_from in (0, 10**12):
         monkeypatch.setattr(clean, "_THREADED_FROM", threaded_from)
+        threads_seen.append(set())
         got[threaded_from] = clean.run(ingested, cfg)
+    assert threads_seen[1] == {"MainThread"}
     one, threads = got[10**12], got[0]
+    assert threads_seen[0] == {"edgeproof-columns"}  # the second really ran on the pool's threads
     pd.testing.assert_frame_equal(one.table, threads.table)
     pd.testing.assert_frame_equal(one.quarantined, threads.quarantined)
     assert one.kinds == threads.kinds and one.columns == threads.columns and one.summary == threads.summary
     assert len(one.quarantined) == 2 and "ticket" not in one.kinds and "site" not in one.kinds
     assert _record(one, "zone")["pooled_levels"] == 1
     bad = pd.DataFrame({"a": ["x", "y"] * 20, "b": ["1", "3"] * 20, "c": ["1", "2"] * 20})
-    cfg = _cfg(columns={"b": {"type": "boolean"}, "c": {"type": "boolean"}})
+    cfg = _cfg(columns={"b": {"type": "boolean"}, "c": {"type": "boolean"}}, parallel={"jobs": 2})
     ingested = _frame_csv(tmp_path, bad, cfg)
     errors = []
     for threaded_from in (10**12, 0):

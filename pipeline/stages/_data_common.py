@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import difflib
 import math
-from collections.abc import Iterable, Sequence
+import os
+from collections.abc import Callable, Iterable, Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -57,6 +59,19 @@ INFINITY_WORDS = frozenset(
 )
 TRUE_WORDS = frozenset({"true", "yes", "y", "t"})
 FALSE_WORDS = frozenset({"false", "no", "n", "f"})
+
+
+def map_threads(fn: Callable[[Any], Any], items: Sequence[Any], jobs: int) -> list[Any]:
+    """``[fn(item) for item in items]`` on up to `parallel.jobs` threads (-1: every core), in order; the
+    first item (in that order) whose call fails raises. For per-column work whose time goes to numpy,
+    pandas or Arrow calls that release the interpreter lock (sorts, hash tables, kernels)."""
+    width = min((os.cpu_count() or 1) if jobs == -1 else max(1, int(jobs)), len(items))
+    if width <= 1:
+        return [fn(x) for x in items]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(width, thread_name_prefix="edgeproof-columns") as pool:
+        return list(pool.map(fn, items))
 
 
 def empty_rejected() -> pd.DataFrame:

@@ -6,8 +6,6 @@ row removed here is in `Cleaned.quarantined` with its reason, so nothing is lost
 
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
@@ -17,7 +15,7 @@ import pandas as pd
 from ..config import ColumnSpec, Config
 from ..errors import ConfigError, DataError, LimitError
 from . import _data_clean as _rules
-from ._data_common import close_matches, empty_rejected, render_rows, source_of_rows
+from ._data_common import close_matches, empty_rejected, map_threads, render_rows, source_of_rows
 from .ingest import Ingested
 
 __all__ = ["Cleaned", "run"]
@@ -94,7 +92,8 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
     _check_column_specs(table, cfg)
     names = list(table.columns)
     typed = dict(zip(names, _each_column(
-        lambda name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean), names, table.size)))
+        lambda name: _rules.infer(name, table[name], cfg.columns.get(name), cfg.clean), names, table.size,
+        cfg.parallel.jobs)))
     bad_rows, bad_reasons = _text_in_numeric(typed, ingested, cfg)
     keep = np.ones(len(table), dtype=bool)
     keep[bad_rows] = False
@@ -119,21 +118,15 @@ def run(ingested: Ingested, cfg: Config) -> Cleaned:
                    categories)
 
 
-# cells from which the columns are typed and counted on threads: most of that work is in numpy sorts,
-# pandas hash tables and Arrow kernels, which release the interpreter lock
+# cells from which the columns are typed and counted on `parallel.jobs` threads (smaller tables in turn)
 _THREADED_FROM = 2_000_000
 
 
-def _each_column(fn: Callable[[Any], Any], items: list[Any], cells: int) -> list[Any]:
-    """``[fn(item) for item in items]``, on as many threads as cores (up to 4) for a table of at least
-    `_THREADED_FROM` cells. Results keep the items' order, and the first item (in that order) whose call
-    fails raises. On the 1,000,000 x 40 extract of `bench/gen_extract.py`, counting the distinct values
-    of its 28 numeric columns took 0.41-0.47 s on two threads against 0.85-1.03 s in turn."""
-    workers = min(4, os.cpu_count() or 1)
-    if cells < _THREADED_FROM or workers < 2 or len(items) < 2:
-        return [fn(item) for item in items]
-    with ThreadPoolExecutor(workers, thread_name_prefix="edgeproof-clean") as pool:
-        return list(pool.map(fn, items))
+def _each_column(fn: Callable[[Any], Any], items: list[Any], cells: int, jobs: int) -> list[Any]:
+    """`map_threads` for a table of at least `_THREADED_FROM` cells. On the 1,000,000 x 40 extract of
+    `bench/gen_extract.py`, counting the distinct values of its 28 numeric columns took 0.41-0.47 s on
+    two threads against 0.85-1.03 s in turn."""
+    return map_threads(fn, items, jobs if cells >= _THREADED_FROM else 1)
 
 
 def _utc_nanoseconds(values: pd.Series) -> np.ndarray:
@@ -260,7 +253,7 @@ def _apply_rules(
         return (codes, *_rules.decide(col, values, cfg.clean, has_features, codes))
 
     for (name, col), (codes, reason, values, facts) in zip(
-            columns, _each_column(decided, columns, int(keep.sum()) * len(columns))):
+            columns, _each_column(decided, columns, int(keep.sum()) * len(columns), cfg.parallel.jobs)):
         action = "dropped" if reason else ("derived" if name in derived else "kept")
         if reason is None:
             if col.kind == "categorical" and facts["distinct"] > cfg.limits.max_levels:

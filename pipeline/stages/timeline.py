@@ -18,7 +18,6 @@ knows a later copy cannot cause an earlier one.
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Mapping
 
@@ -27,6 +26,7 @@ import pandas as pd
 
 from ..config import Config
 from ..errors import ConfigError, DataError
+from ._data_common import map_threads
 
 if TYPE_CHECKING:  # the residual test's module (and scipy under it) loads when a stage runs, not on import
     from ..independence.residual import Timeline
@@ -209,21 +209,6 @@ def _time_column(times: pd.DataFrame, cfg: Config) -> tuple[str | None, str]:
     return str(times.columns[0]), "detected: the first column that parses as timestamps"
 
 
-def _map_threads(fn: Any, items: list[Any], jobs: int) -> list[Any]:
-    """`fn` over `items` on up to `parallel.jobs` threads (-1: every core), in order. The rank sorts behind
-    the normal scores release the GIL, so the columns of a wide extract are scored side by side."""
-    width = (os.cpu_count() or 1) if jobs == -1 else max(1, int(jobs))
-    width = min(width, len(items))
-    if width <= 1:
-        return [fn(x) for x in items]
-    from concurrent.futures import ThreadPoolExecutor
-
-    import scipy.stats  # noqa: F401  (imported once here, not by the threads side by side)
-
-    with ThreadPoolExecutor(width) as pool:
-        return list(pool.map(fn, items))
-
-
 def _series_columns(table: pd.DataFrame, kinds: dict[str, str], t: np.ndarray, cfg: Config) -> tuple[list[str], str]:
     declared = cfg.time.series
     if declared is not None:
@@ -351,9 +336,13 @@ def run(table: pd.DataFrame, times: pd.DataFrame, kinds: dict[str, str], codes: 
               and methods.get(c, "quantile") != "categorical"]
     scores: dict[str, np.ndarray] = {}
     if scored:  # the scores' module loads the compiled kernels: not for an extract of categories only
+        import scipy.stats  # noqa: F401  (imported once here, not by the threads side by side)
+
         from ..independence.residual import normal_scores
 
-        scores = dict(zip(scored, _map_threads(normal_scores, [values[c] for c in scored], cfg.parallel.jobs)))
+        # the rank sorts behind the normal scores release the interpreter lock: a wide extract's
+        # columns are scored side by side
+        scores = dict(zip(scored, map_threads(normal_scores, [values[c] for c in scored], cfg.parallel.jobs)))
     base_scores = [scores.get(c) for c in signals]
     per_signal = {}
     for name, c, s in zip(signals, base_codes, base_scores):
